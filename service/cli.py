@@ -1,0 +1,251 @@
+"""``tallyward`` command line: serve, migrate, imports, keys (and later fit, replay, evaluate).
+
+Configured by the same ``TALLYWARD_*`` environment variables as the service.
+"""
+
+from __future__ import annotations
+
+import argparse
+import gzip
+import io
+import os
+import sys
+import time
+from collections.abc import Iterator, Sequence
+from pathlib import Path
+from typing import Any, TextIO
+
+import orjson
+
+from .config import Settings, get_settings
+from .errors import TallywardError
+
+
+def table(rows: Sequence[Sequence[Any]], headers: Sequence[str], *, out: TextIO | None = None) -> None:
+    """Print a plain aligned table."""
+    out = out or sys.stdout
+    cells = [[str(h) for h in headers]] + [["" if v is None else str(v) for v in r] for r in rows]
+    widths = [max(len(r[i]) for r in cells) for i in range(len(headers))]
+
+    def line(r: Sequence[str]) -> str:
+        return "  ".join(v.rjust(w) if _numeric(v) else v.ljust(w) for v, w in zip(r, widths)).rstrip()
+
+    print(line(cells[0]), file=out)
+    print("  ".join("-" * w for w in widths), file=out)
+    for r in cells[1:]:
+        print(line(r), file=out)
+
+
+def _numeric(v: str) -> bool:
+    return v.replace(".", "", 1).replace("-", "", 1).replace(",", "").replace("%", "").isdigit()
+
+
+def _engine(settings: Settings):  # type: ignore[no-untyped-def]
+    from .db import make_engine
+
+    return make_engine(settings)
+
+
+# ----------------------------------------------------------------------------- commands
+
+
+def cmd_migrate(args: argparse.Namespace, settings: Settings) -> int:
+    from . import migrate
+
+    migrate.upgrade(settings.database_url)
+    print(f"schema at head {migrate.head_revision(settings.database_url)} ({_safe_url(settings)})",
+          file=sys.stderr)
+    return 0
+
+
+def _safe_url(settings: Settings) -> str:
+    from sqlalchemy.engine import make_url
+
+    return make_url(settings.database_url).render_as_string(hide_password=True)
+
+
+def cmd_serve(args: argparse.Namespace, settings: Settings) -> int:
+    import uvicorn
+
+    from . import migrate
+
+    migrate.upgrade(settings.database_url)
+    uvicorn.run("service.main:app_from_env", factory=True, host=args.host, port=args.port,
+                workers=args.workers, log_level="warning", access_log=False)
+    return 0
+
+
+def cmd_import_detectors(args: argparse.Namespace, settings: Settings) -> int:
+    from .registry import import_feature_collection
+
+    doc = orjson.loads(Path(args.file).read_bytes())
+    result = import_feature_collection(_engine(settings), doc)
+    print(f"detectors: {result['created']} created, {result['updated']} updated, "
+          f"{len(result['errors'])} rejected")
+    for err in result["errors"]:
+        print(f"  feature {err['index']}: {err['error']}", file=sys.stderr)
+    return 0 if not result["errors"] else 1
+
+
+def open_text(path: str) -> TextIO:
+    """A text stream of a CSV file, gzip-compressed or not (decided by its first bytes)."""
+    raw = open(path, "rb")  # noqa: SIM115 - returned to the caller
+    magic = raw.read(2)
+    raw.seek(0)
+    if magic == b"\x1f\x8b":
+        return io.TextIOWrapper(gzip.GzipFile(fileobj=raw), encoding="utf-8-sig", newline="")
+    return io.TextIOWrapper(raw, encoding="utf-8-sig", newline="")
+
+
+def csv_chunks(stream: TextIO, *, chunk: int) -> Iterator[tuple[int, bytes]]:
+    """(first data line number, CSV bytes with header) chunks of a counts CSV."""
+    header = stream.readline()
+    if not header:
+        raise TallywardError("the file is empty; expected the header detector_id,start,count")
+    lines: list[str] = []
+    line_no = 2
+    first = line_no
+    for line in stream:
+        lines.append(line)
+        line_no += 1
+        if len(lines) >= chunk:
+            yield first, (header + "".join(lines)).encode()
+            lines = []
+            first = line_no
+    if lines:
+        yield first, (header + "".join(lines)).encode()
+
+
+def cmd_import_counts(args: argparse.Namespace, settings: Settings) -> int:
+    from tqdm import tqdm
+
+    from . import ingest
+
+    engine = _engine(settings)
+    size = os.path.getsize(args.file)
+    total = ingest.BatchResult()
+    started = time.perf_counter()
+    stream = open_text(args.file)
+    raw = stream.buffer.raw if hasattr(stream.buffer, "raw") else None  # type: ignore[attr-defined]
+    bar = tqdm(total=size, unit="B", unit_scale=True, desc="import counts", file=sys.stderr,
+               disable=args.quiet)
+    seen_items = 0
+    last_pos = 0
+    for first_line, body in csv_chunks(stream, chunk=args.chunk):
+        items = ingest.parse_csv_batch(body, max_items=args.chunk + 1)
+        result = ingest.ingest_items(engine, items, future_tolerance_s=settings.future_tolerance_s,
+                                     after_store=getattr(args, "after_store", None))
+        for r in result.rejected:
+            r["line"] = first_line + r["index"]
+        total.merge(result, index_offset=seen_items)
+        seen_items += len(items)
+        pos = _file_pos(raw, stream)
+        bar.update(pos - last_pos)
+        last_pos = pos
+    bar.close()
+    elapsed = time.perf_counter() - started
+    table([[f"{total.accepted:,}", f"{total.duplicate:,}", f"{len(total.conflicts):,}",
+            f"{len(total.rejected):,}", f"{elapsed:.1f}",
+            f"{(seen_items / elapsed if elapsed else 0):,.0f}"]],
+          ["accepted", "duplicate", "conflict", "rejected", "seconds", "rows/s"])
+    for r in total.rejected[:20]:
+        print(f"  line {r['line']}: {r['error']}", file=sys.stderr)
+    if len(total.rejected) > 20:
+        print(f"  ... and {len(total.rejected) - 20:,} more rejected rows", file=sys.stderr)
+    return 0 if not total.rejected else 1
+
+
+def _file_pos(raw: Any, stream: Any) -> int:
+    fileobj = getattr(stream.buffer, "fileobj", None)
+    try:
+        if fileobj is not None:
+            return fileobj.tell()
+        return stream.buffer.tell()
+    except (OSError, ValueError):
+        return 0
+
+
+def cmd_keys(args: argparse.Namespace, settings: Settings) -> int:
+    from . import security
+    from .timefmt import format_utc
+
+    engine = _engine(settings)
+    if args.keys_cmd == "create":
+        print(security.create_key(engine, name=args.name, role=args.role))
+        return 0
+    if args.keys_cmd == "revoke":
+        security.revoke_key(engine, args.name)
+        print(f"revoked {args.name}", file=sys.stderr)
+        return 0
+    rows = [[k["name"], k["role"], format_utc(k["created_s"]),
+             format_utc(k["revoked_s"]) if k["revoked_s"] else "active"]
+            for k in security.list_keys(engine)]
+    table(rows, ["name", "role", "created", "revoked"])
+    return 0
+
+
+# ----------------------------------------------------------------------------- parser
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(prog="tallyward", description=__doc__.splitlines()[0])
+    sub = p.add_subparsers(dest="command", required=True)
+
+    s = sub.add_parser("serve", help="run the HTTP service (migrates first)")
+    s.add_argument("--host", default="127.0.0.1")
+    s.add_argument("--port", type=int, default=8000)
+    s.add_argument("--workers", type=int, default=1)
+    s.set_defaults(func=cmd_serve)
+
+    s = sub.add_parser("migrate", help="upgrade the database schema to head")
+    s.set_defaults(func=cmd_migrate)
+
+    s = sub.add_parser("import-detectors", help="create/update detectors from a GeoJSON file")
+    s.add_argument("file")
+    s.set_defaults(func=cmd_import_detectors)
+
+    s = sub.add_parser("import-counts", help="store counts from a CSV (or .csv.gz) file")
+    s.add_argument("file")
+    s.add_argument("--chunk", type=int, default=10_000, help="rows per transaction")
+    s.add_argument("--quiet", action="store_true", help="no progress bar")
+    s.set_defaults(func=cmd_import_counts)
+
+    s = sub.add_parser("keys", help="API keys")
+    ks = s.add_subparsers(dest="keys_cmd", required=True)
+    k = ks.add_parser("create", help="create a key and print it (shown only this once)")
+    k.add_argument("--role", required=True, choices=["ingest", "read", "operate", "admin"])
+    k.add_argument("--name", required=True)
+    ks.add_parser("list", help="list keys")
+    k = ks.add_parser("revoke", help="revoke a key by name")
+    k.add_argument("name")
+    s.set_defaults(func=cmd_keys)
+
+    for extend in _EXTENSIONS:
+        extend(sub)
+    return p
+
+
+_EXTENSIONS: list[Any] = []
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    args = build_parser().parse_args(argv)
+    try:
+        settings = get_settings()
+    except Exception as exc:  # noqa: BLE001 - settings errors name the variable
+        print(f"configuration error: {exc}", file=sys.stderr)
+        return 2
+    try:
+        return int(args.func(args, settings) or 0)
+    except TallywardError as exc:
+        print(f"error: {exc.message}", file=sys.stderr)
+        return 1
+    except FileNotFoundError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return 1
+    except KeyboardInterrupt:
+        return 130
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,77 @@
+"""One settings object for the service, the CLI and the workers.
+
+Every setting is read from an environment variable with the prefix ``TALLYWARD_``
+(for example ``TALLYWARD_DATABASE_URL``). Bad values fail at start-up with a message
+naming the variable, never later in a request.
+"""
+
+from __future__ import annotations
+
+from functools import lru_cache
+from typing import Literal
+
+from pydantic import Field, field_validator
+from pydantic_settings import BaseSettings, SettingsConfigDict
+
+
+class Settings(BaseSettings):
+    model_config = SettingsConfigDict(env_prefix="TALLYWARD_", extra="ignore")
+
+    database_url: str = Field(
+        "sqlite:///tallyward.db",
+        description="SQLAlchemy URL. Default: a SQLite file in the working folder. "
+        "Production: postgresql+psycopg://user@host/db",
+    )
+    auth: Literal["required", "loopback-open"] = Field(
+        "required",
+        description="'required': every request needs an API key. 'loopback-open' (DEMO ONLY): "
+        "requests from 127.0.0.1/::1 need no key; all others still do.",
+    )
+    max_batch_items: int = Field(10_000, ge=1, le=1_000_000, description="Most items in one count batch.")
+    max_body_bytes: int = Field(
+        4 * 1024 * 1024, ge=1024, description="Largest request body accepted (bytes); larger gets 413."
+    )
+    future_tolerance_s: int = Field(
+        300, ge=0, description="How far past the server clock an interval start may be (seconds)."
+    )
+    clock: Literal["wall", "data"] = Field(
+        "wall",
+        description="'wall': missing data is judged against the server clock (live). "
+        "'data': against the latest interval seen across the network (replays of history).",
+    )
+    false_alerts_per_week: float = Field(
+        0.05, gt=0, le=50, description="Expected false alerts per detector per week under normal traffic."
+    )
+    missing_grace_s: int = Field(
+        600, ge=0, description="How long after an interval ends before it counts as missing (seconds)."
+    )
+    close_after_intervals: int = Field(
+        3, ge=1, description="Normal intervals in a row that close an alert episode."
+    )
+    fit_window_days: int = Field(56, ge=7, le=730, description="History window for baseline fits (days).")
+    fit_half_life_days: float | None = Field(
+        None, gt=0, description="Exponential forgetting half-life for fits (days); unset = equal weights."
+    )
+    fit_min_completeness: float = Field(
+        0.8, gt=0, le=1, description="Days with a smaller share of intervals present are left out of fits."
+    )
+    scoring: Literal["inline", "off"] = Field(
+        "inline", description="'inline': score counts in the request that stores them. 'off': store only."
+    )
+    log_level: str = Field("INFO", description="Python log level for the JSON logs.")
+
+    @field_validator("database_url")
+    @classmethod
+    def _known_backend(cls, value: str) -> str:
+        if not (value.startswith("sqlite") or value.startswith("postgresql")):
+            raise ValueError(
+                "TALLYWARD_DATABASE_URL must be a sqlite:/// or postgresql+psycopg:// URL"
+            )
+        if value.startswith("postgresql://"):
+            value = "postgresql+psycopg://" + value[len("postgresql://") :]
+        return value
+
+
+@lru_cache
+def get_settings() -> Settings:
+    return Settings()

@@ -1,0 +1,153 @@
+"""The application factory: routers, middleware, error handlers."""
+
+from __future__ import annotations
+
+import logging
+import time
+import uuid
+from typing import Any
+
+import orjson
+from fastapi import FastAPI, Request
+from fastapi.exceptions import RequestValidationError
+from fastapi.responses import Response
+from sqlalchemy import Engine
+from sqlalchemy.exc import OperationalError
+from starlette.exceptions import HTTPException as StarletteHTTPException
+from starlette.types import ASGIApp, Message, Receive, Scope, Send
+
+from . import __version__, logs
+from .api import counts, detectors, health
+from .config import Settings, get_settings
+from .db import make_engine
+from .errors import PayloadTooLarge, TallywardError, Unavailable
+
+log = logging.getLogger("tallyward.http")
+
+DESCRIPTION = """Tallyward ingests vehicle-detector interval counts, learns each detector's
+time-of-day rhythm, and raises advisory alerts for likely detector faults, traffic events and
+communications loss. Alerts are statistical evidence, not proof: verify in the field before
+acting; never use Tallyward as a safety system or to control traffic devices."""
+
+
+def _json(status: int, body: dict[str, Any], headers: dict[str, str] | None = None) -> Response:
+    return Response(orjson.dumps(body), status_code=status, media_type="application/json",
+                    headers=headers)
+
+
+class BodyLimit:
+    """Rejects bodies over the limit with 413 before they are parsed, chunked ones included."""
+
+    def __init__(self, app: ASGIApp, max_bytes: int) -> None:
+        self.app = app
+        self.max_bytes = max_bytes
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+            return
+        limit = self.max_bytes
+        for name, value in scope.get("headers", []):
+            if name == b"content-length":
+                try:
+                    declared = int(value)
+                except ValueError:
+                    declared = -1
+                if declared > limit or declared < 0:
+                    await self._reject(scope, receive, send, declared)
+                    return
+        seen = 0
+
+        async def limited_receive() -> Message:
+            nonlocal seen
+            message = await receive()
+            if message["type"] == "http.request":
+                seen += len(message.get("body", b""))
+                if seen > limit:
+                    raise PayloadTooLarge(
+                        f"request body is over the {limit:,}-byte limit; send smaller batches",
+                        detail={"max_body_bytes": limit})
+            return message
+
+        await self.app(scope, limited_receive, send)
+
+    async def _reject(self, scope: Scope, receive: Receive, send: Send, declared: int) -> None:
+        message = (f"request body of {declared:,} bytes is over the {self.max_bytes:,}-byte limit; "
+                   "send smaller batches") if declared >= 0 else "Content-Length is not a number"
+        status = 413 if declared >= 0 else 400
+        response = _json(status, {"error": "payload_too_large" if status == 413 else "bad_request",
+                                  "message": message, "detail": {"max_body_bytes": self.max_bytes}},
+                         headers={"Connection": "close"})
+        await response(scope, receive, send)
+
+
+def create_app(settings: Settings | None = None, *, engine: Engine | None = None) -> FastAPI:
+    settings = settings or get_settings()
+    logs.configure(settings.log_level)
+    app = FastAPI(title="Tallyward", version=__version__, description=DESCRIPTION,
+                  docs_url="/docs", openapi_url="/openapi.json")
+    app.state.settings = settings
+    app.state.engine = engine or make_engine(settings)
+    app.state.after_store = None
+    app.state.after_commit = None
+
+    @app.exception_handler(TallywardError)
+    async def _tallyward_error(_: Request, exc: TallywardError) -> Response:
+        headers = None
+        if isinstance(exc, Unavailable):
+            headers = {"Retry-After": str(exc.retry_after_s)}
+        return _json(exc.status_code, exc.to_dict(), headers)
+
+    @app.exception_handler(RequestValidationError)
+    async def _validation_error(_: Request, exc: RequestValidationError) -> Response:
+        problems = []
+        for err in exc.errors():
+            where = ".".join(str(p) for p in err.get("loc", ()) if p != "body")
+            problems.append({"field": where, "message": err.get("msg", "invalid")})
+        text = "; ".join(f"{p['field']}: {p['message']}" if p["field"] else p["message"]
+                         for p in problems)
+        return _json(422, {"error": "validation_failed", "message": text, "detail": problems})
+
+    @app.exception_handler(StarletteHTTPException)
+    async def _http_error(_: Request, exc: StarletteHTTPException) -> Response:
+        code = {404: "not_found", 405: "method_not_allowed"}.get(exc.status_code, "http_error")
+        return _json(exc.status_code, {"error": code, "message": str(exc.detail)})
+
+    @app.exception_handler(OperationalError)
+    async def _db_down(_: Request, exc: OperationalError) -> Response:
+        log.warning("database unavailable", extra={"fields": {"error": str(exc.orig)[:200]}})
+        return _json(503, {"error": "unavailable",
+                           "message": "the database is busy or unreachable; retry shortly"},
+                     {"Retry-After": "2"})
+
+    @app.middleware("http")
+    async def _access_log(request: Request, call_next):  # type: ignore[no-untyped-def]
+        started = time.perf_counter()
+        request_id = request.headers.get("x-request-id") or uuid.uuid4().hex[:16]
+        try:
+            response = await call_next(request)
+        except PayloadTooLarge as exc:
+            response = _json(413, exc.to_dict(), {"Connection": "close"})
+        except Exception:
+            log.exception("unhandled error", extra={"fields": {"path": request.url.path,
+                                                               "request_id": request_id}})
+            response = _json(500, {"error": "internal_error",
+                                   "message": "an unexpected error; it has been logged",
+                                   "request_id": request_id})
+        response.headers["X-Request-Id"] = request_id
+        log.info("request", extra={"fields": {
+            "method": request.method, "path": request.url.path, "status": response.status_code,
+            "ms": round((time.perf_counter() - started) * 1000, 2), "request_id": request_id}})
+        return response
+
+    app.include_router(health.router)
+    app.include_router(detectors.import_router)
+    app.include_router(detectors.router)
+    app.include_router(counts.router)
+    app.add_middleware(BodyLimit, max_bytes=settings.max_body_bytes)
+    return app
+
+
+def app_from_env() -> FastAPI:
+    """Entry point for ``uvicorn --factory service.main:app_from_env``."""
+    return create_app(get_settings())

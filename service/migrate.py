@@ -1,0 +1,37 @@
+"""Schema upgrades through Alembic, callable from the CLI, the server start and tests."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from alembic import command
+from alembic.config import Config
+from alembic.runtime.migration import MigrationContext
+from alembic.script import ScriptDirectory
+from sqlalchemy import Engine
+
+MIGRATIONS = Path(__file__).resolve().parent.parent / "migrations"
+
+
+def alembic_config(database_url: str) -> Config:
+    cfg = Config()
+    cfg.set_main_option("script_location", str(MIGRATIONS))
+    cfg.set_main_option("sqlalchemy.url", database_url.replace("%", "%%"))
+    return cfg
+
+
+def upgrade(database_url: str, revision: str = "head") -> None:
+    command.upgrade(alembic_config(database_url), revision)
+
+
+def downgrade(database_url: str, revision: str = "base") -> None:
+    command.downgrade(alembic_config(database_url), revision)
+
+
+def head_revision(database_url: str) -> str | None:
+    return ScriptDirectory.from_config(alembic_config(database_url)).get_current_head()
+
+
+def current_revision(engine: Engine) -> str | None:
+    with engine.connect() as conn:
+        return MigrationContext.configure(conn).get_current_revision()
