@@ -28,7 +28,7 @@ def table(rows: Sequence[Sequence[Any]], headers: Sequence[str], *, out: TextIO 
     widths = [max(len(r[i]) for r in cells) for i in range(len(headers))]
 
     def line(r: Sequence[str]) -> str:
-        return "  ".join(v.rjust(w) if _numeric(v) else v.ljust(w) for v, w in zip(r, widths)).rstrip()
+        return "  ".join(v.rjust(w) if _numeric(v) else v.ljust(w) for v, w in zip(r, widths, strict=True)).rstrip()
 
     print(line(cells[0]), file=out)
     print("  ".join("-" * w for w in widths), file=out)

@@ -20,7 +20,7 @@ from . import __version__, logs
 from .api import counts, detectors, health
 from .config import Settings, get_settings
 from .db import make_engine
-from .errors import PayloadTooLarge, TallywardError, Unavailable
+from .errors import TallywardError, Unavailable
 
 log = logging.getLogger("tallyward.http")
 
@@ -56,23 +56,41 @@ class BodyLimit:
                 if declared > limit or declared < 0:
                     await self._reject(scope, receive, send, declared)
                     return
+        if scope.get("method") not in ("POST", "PUT", "PATCH"):
+            await self.app(scope, receive, send)
+            return
+        # Read the body up to the limit before the app sees it, so chunked bodies without a
+        # Content-Length are refused as early as declared ones.
+        parts: list[bytes] = []
         seen = 0
-
-        async def limited_receive() -> Message:
-            nonlocal seen
+        while True:
             message = await receive()
-            if message["type"] == "http.request":
-                seen += len(message.get("body", b""))
-                if seen > limit:
-                    raise PayloadTooLarge(
-                        f"request body is over the {limit:,}-byte limit; send smaller batches",
-                        detail={"max_body_bytes": limit})
-            return message
+            if message["type"] == "http.disconnect":
+                return
+            chunk = message.get("body", b"")
+            seen += len(chunk)
+            if seen > limit:
+                await self._reject(scope, receive, send, seen, streamed=True)
+                return
+            parts.append(chunk)
+            if not message.get("more_body", False):
+                break
+        body = b"".join(parts)
+        delivered = False
 
-        await self.app(scope, limited_receive, send)
+        async def replay() -> Message:
+            nonlocal delivered
+            if not delivered:
+                delivered = True
+                return {"type": "http.request", "body": body, "more_body": False}
+            return await receive()
 
-    async def _reject(self, scope: Scope, receive: Receive, send: Send, declared: int) -> None:
-        message = (f"request body of {declared:,} bytes is over the {self.max_bytes:,}-byte limit; "
+        await self.app(scope, replay, send)
+
+    async def _reject(self, scope: Scope, receive: Receive, send: Send, declared: int, *,
+                      streamed: bool = False) -> None:
+        size = f"more than {self.max_bytes:,} bytes" if streamed else f"{declared:,} bytes"
+        message = (f"request body of {size} is over the {self.max_bytes:,}-byte limit; "
                    "send smaller batches") if declared >= 0 else "Content-Length is not a number"
         status = 413 if declared >= 0 else 400
         response = _json(status, {"error": "payload_too_large" if status == 413 else "bad_request",
@@ -126,8 +144,6 @@ def create_app(settings: Settings | None = None, *, engine: Engine | None = None
         request_id = request.headers.get("x-request-id") or uuid.uuid4().hex[:16]
         try:
             response = await call_next(request)
-        except PayloadTooLarge as exc:
-            response = _json(413, exc.to_dict(), {"Connection": "close"})
         except Exception:
             log.exception("unhandled error", extra={"fields": {"path": request.url.path,
                                                                "request_id": request_id}})

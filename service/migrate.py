@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 from pathlib import Path
 
 from alembic import command
@@ -10,7 +11,19 @@ from alembic.runtime.migration import MigrationContext
 from alembic.script import ScriptDirectory
 from sqlalchemy import Engine
 
-MIGRATIONS = Path(__file__).resolve().parent.parent / "migrations"
+
+def _migrations_dir() -> Path:
+    """The Alembic folder: beside the package in a checkout, or in the working folder
+    (a container copies it there), or where TALLYWARD_MIGRATIONS_DIR says."""
+    for candidate in (os.environ.get("TALLYWARD_MIGRATIONS_DIR"),
+                      Path(__file__).resolve().parent.parent / "migrations",
+                      Path.cwd() / "migrations"):
+        if candidate and (Path(candidate) / "env.py").exists():
+            return Path(candidate)
+    raise FileNotFoundError("the migrations folder was not found; set TALLYWARD_MIGRATIONS_DIR")
+
+
+MIGRATIONS = _migrations_dir()
 
 
 def alembic_config(database_url: str) -> Config:

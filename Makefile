@@ -1,0 +1,29 @@
+# Two commands on a fresh machine: `make demo` (the main job on embedded SQLite) and `make test`.
+# Each creates its own virtual environment in .venv and installs what it needs.
+PYTHON ?= python3
+VENV := .venv
+BIN := $(VENV)/bin
+STAMP := $(VENV)/.installed
+
+.PHONY: demo test bench lint clean
+
+$(STAMP): pyproject.toml
+	$(PYTHON) -m venv $(VENV)
+	$(BIN)/pip install --quiet --upgrade pip
+	$(BIN)/pip install --quiet -e ".[test]"
+	touch $(STAMP)
+
+demo: $(STAMP)
+	$(BIN)/tallyward demo
+
+test: $(STAMP)
+	$(BIN)/python -m pytest
+
+bench: $(STAMP)
+	$(BIN)/python bench/bench.py
+
+lint: $(STAMP)
+	$(BIN)/ruff check service tests bench
+
+clean:
+	rm -rf $(VENV) demo_run tallyward.db tallyward.db-wal tallyward.db-shm

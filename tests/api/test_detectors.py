@@ -1,0 +1,75 @@
+"""The detector registry: create, update, list, GeoJSON import, and clear refusals."""
+
+from __future__ import annotations
+
+import pytest
+
+from tests.conftest import auth
+from tests.factories import count_items, detector_payload
+
+
+def test_put_detector_creates_then_updates(client, keys) -> None:
+    """PUT creates (201) and then updates (200) the same detector."""
+    h = auth(keys["admin"])
+    r = client.put("/v1/detectors/ELM-NB-1", json=detector_payload(), headers=h)
+    assert r.status_code == 201, r.text
+    assert r.json()["location"] == {"type": "Point", "coordinates": [-97.51, 35.21]}
+    r = client.put("/v1/detectors/ELM-NB-1", json=detector_payload(lanes=3), headers=h)
+    assert r.status_code == 200 and r.json()["lanes"] == 3
+    listed = client.get("/v1/detectors", headers=auth(keys["read"])).json()
+    assert listed["count"] == 1 and listed["data"][0]["group"] == "G-ELM-NB"
+
+
+@pytest.mark.parametrize(("change", "field"), [
+    ({"interval_s": 301}, "interval_s"),
+    ({"interval_s": 7200}, "interval_s"),
+    ({"lanes": 0}, "lanes"),
+    ({"timezone": "Mars/Olympus"}, "timezone"),
+    ({"road_class": "highway"}, "road_class"),
+    ({"holiday_calendar": "XX"}, "holiday_calendar"),
+    ({"location": {"type": "Point", "coordinates": [200, 10]}}, "location"),
+    ({"colour": "red"}, "colour"),
+])
+def test_put_detector_rejects_bad_fields(client, keys, change, field) -> None:
+    """Bad registry fields get 422 naming the field."""
+    r = client.put("/v1/detectors/X1", json=detector_payload(**change), headers=auth(keys["admin"]))
+    assert r.status_code == 422, r.text
+    assert field in r.json()["message"]
+
+
+def test_put_detector_interval_locked_once_counts_exist(client, keys) -> None:
+    """The interval cannot change under stored counts."""
+    h = auth(keys["admin"])
+    client.put("/v1/detectors/D1", json=detector_payload(), headers=h)
+    client.post("/v1/counts", json={"counts": count_items("D1", n=2)}, headers=h)
+    r = client.put("/v1/detectors/D1", json=detector_payload(interval_s=900), headers=h)
+    assert r.status_code == 422 and "cannot change" in r.json()["message"]
+
+
+def test_get_unknown_detector_is_404(client, keys) -> None:
+    """An unknown detector id is a 404 with its name."""
+    r = client.get("/v1/detectors/NOPE", headers=auth(keys["read"]))
+    assert r.status_code == 404 and "NOPE" in r.json()["message"]
+
+
+def test_import_feature_collection_stores_valid_features_and_lists_bad(client, keys) -> None:
+    """A GeoJSON import stores good features and names each bad one by index."""
+    good = {"type": "Feature", "geometry": {"type": "Point", "coordinates": [-97.5, 35.2]},
+            "properties": {"detector_id": "A1", **{k: v for k, v in detector_payload().items()
+                                                   if k != "location"}}}
+    bad = {"type": "Feature", "geometry": None,
+           "properties": {"detector_id": "A2", "interval_s": 7, "timezone": "UTC"}}
+    doc = {"type": "FeatureCollection", "features": [good, bad, dict(good)]}
+    r = client.post("/v1/detectors:import", json=doc, headers=auth(keys["admin"]))
+    assert r.status_code == 200, r.text
+    body = r.json()
+    assert body["created"] == 1
+    assert [e["index"] for e in body["errors"]] == [1, 2]
+    assert "interval_s" in body["errors"][0]["error"]
+    assert "twice" in body["errors"][1]["error"]
+
+
+def test_import_rejects_document_that_is_not_a_feature_collection(client, keys) -> None:
+    """A non-FeatureCollection document is a 400 naming RFC 7946."""
+    r = client.post("/v1/detectors:import", json={"type": "Feature"}, headers=auth(keys["admin"]))
+    assert r.status_code == 400 and "FeatureCollection" in r.json()["message"]
