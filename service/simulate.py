@@ -150,14 +150,14 @@ PROFILES: dict[str, TimeOfDayProfile] = {
     for p in (
         TimeOfDayProfile(
             name="freeway_inbound",
-            weekday=DayShape(floor=0.10, bumps=((13.0, 4.0, 1.0), (7.6, 0.85, 0.75), (17.2, 1.1, 0.45))),
+            weekday=DayShape(floor=0.10, bumps=((13.0, 3.8, 0.75), (7.6, 0.85, 0.85), (17.2, 1.1, 0.55))),
             saturday=_FREEWAY_WEEKEND[0],
             sunday_holiday=_FREEWAY_WEEKEND[1],
             **_FREEWAY_DAYS,
         ),
         TimeOfDayProfile(
             name="freeway_outbound",
-            weekday=DayShape(floor=0.10, bumps=((13.0, 4.0, 1.0), (7.5, 0.9, 0.45), (17.1, 1.05, 0.75))),
+            weekday=DayShape(floor=0.10, bumps=((13.0, 3.8, 0.75), (7.5, 0.9, 0.5), (17.1, 1.05, 0.85))),
             saturday=_FREEWAY_WEEKEND[0],
             sunday_holiday=_FREEWAY_WEEKEND[1],
             **_FREEWAY_DAYS,
