@@ -1,0 +1,158 @@
+"""Tallyward benchmarks: figures and ratios against the ideal, printed in one run.
+
+    .venv/bin/python bench/bench.py [--only ingest|fit|score] [--pg URL]
+
+ingest  HTTP ingest through a real uvicorn into SQLite (1,000-count batches, one client)
+        vs a bare sqlite3 executemany of the same rows into the same schema.
+Medians of several repeats; this machine is small and noisy, so read ratios first.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import shutil
+import socket
+import sqlite3
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+from datetime import UTC, datetime, timedelta
+from pathlib import Path
+
+import httpx
+import orjson
+
+REPO = Path(__file__).resolve().parent.parent
+sys.path.insert(0, str(REPO))
+
+from service import migrate, security  # noqa: E402
+from service.config import Settings  # noqa: E402
+from service.db import make_engine  # noqa: E402
+from tests.factories import make_detector  # noqa: E402
+
+BATCH = 1000
+
+
+def free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def make_batches(n_detectors: int, n_batches: int) -> list[list[dict]]:
+    """Batches of 1,000 counts: every detector's next intervals, as a controller would send."""
+    start = datetime(2026, 9, 7, 5, 0, tzinfo=UTC)
+    per_det = BATCH // n_detectors
+    batches = []
+    for b in range(n_batches):
+        items = []
+        for d in range(n_detectors):
+            for k in range(per_det):
+                t = start + timedelta(seconds=300 * (b * per_det + k))
+                items.append({"detector_id": f"B{d:04d}", "start": t.strftime("%Y-%m-%dT%H:%M:%SZ"),
+                              "count": (d * 7 + k) % 90})
+        batches.append(items)
+    return batches
+
+
+def fresh_db(folder: Path, name: str, n_detectors: int) -> str:
+    url = f"sqlite:///{folder / name}"
+    migrate.upgrade(url)
+    engine = make_engine(Settings(database_url=url))
+    for d in range(n_detectors):
+        make_detector(engine, f"B{d:04d}")
+    engine.dispose()
+    return url
+
+
+def http_ingest(url: str, batches: list[list[dict]]) -> float:
+    engine = make_engine(Settings(database_url=url))
+    key = security.create_key(engine, name=f"bench-{time.monotonic_ns()}", role="ingest")
+    engine.dispose()
+    port = free_port()
+    env = {**{k: v for k, v in os.environ.items() if not k.startswith("TALLYWARD_")},
+           "TALLYWARD_DATABASE_URL": url, "TALLYWARD_LOG_LEVEL": "WARNING"}
+    proc = subprocess.Popen([sys.executable, "-m", "service.cli", "serve", "--port", str(port)],
+                            cwd=REPO, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    try:
+        base = f"http://127.0.0.1:{port}"
+        for _ in range(300):
+            try:
+                httpx.get(base + "/v1/health", timeout=1)
+                break
+            except httpx.HTTPError:
+                time.sleep(0.1)
+        bodies = [orjson.dumps({"counts": b}) for b in batches]
+        headers = {"Authorization": f"Bearer {key}", "Content-Type": "application/json"}
+        with httpx.Client(base_url=base, timeout=60) as c:
+            t0 = time.perf_counter()
+            for body in bodies:
+                r = c.post("/v1/counts", content=body, headers=headers)
+                assert r.status_code == 200, r.text
+            elapsed = time.perf_counter() - t0
+        return sum(len(b) for b in batches) / elapsed
+    finally:
+        proc.terminate()
+        proc.wait(10)
+
+
+def bare_executemany(path: Path, batches: list[list[dict]]) -> float:
+    from service.timefmt import parse_rfc3339
+
+    rows = [[(i["detector_id"], parse_rfc3339(i["start"]), i["count"], 0.0) for i in b]
+            for b in batches]
+    conn = sqlite3.connect(path, isolation_level=None)
+    conn.execute("PRAGMA journal_mode=WAL")
+    conn.execute("PRAGMA synchronous=NORMAL")
+    conn.execute("PRAGMA foreign_keys=ON")
+    sql = ("INSERT INTO counts (detector_id, start_s, count, received_s) VALUES (?, ?, ?, ?) "
+           "ON CONFLICT (detector_id, start_s) DO NOTHING")
+    t0 = time.perf_counter()
+    for batch in rows:
+        conn.execute("BEGIN IMMEDIATE")
+        conn.executemany(sql, batch)
+        conn.execute("COMMIT")
+    elapsed = time.perf_counter() - t0
+    conn.close()
+    return sum(len(b) for b in rows) / elapsed
+
+
+def bench_ingest(repeats: int) -> None:
+    print("== ingest: HTTP (uvicorn, 1 worker, 1 client, 1,000-count batches) into SQLite ==")
+    batches = make_batches(100, 100)
+    http_rates, bare_rates = [], []
+    with tempfile.TemporaryDirectory() as tmp:
+        folder = Path(tmp)
+        template = Path(fresh_db(folder, "template.db", 100).removeprefix("sqlite:///"))
+        for r in range(repeats):
+            a = folder / f"http{r}.db"
+            shutil.copy(template, a)
+            http_rates.append(http_ingest(f"sqlite:///{a}", batches))
+            b = folder / f"bare{r}.db"
+            shutil.copy(template, b)
+            bare_rates.append(bare_executemany(b, batches))
+    h, b = statistics.median(http_rates), statistics.median(bare_rates)
+    print(f"  HTTP ingest          {h:>10,.0f} counts/s   (median of {repeats}: "
+          + ", ".join(f"{x:,.0f}" for x in http_rates) + ")")
+    print(f"  bare executemany     {b:>10,.0f} counts/s   (median of {repeats}: "
+          + ", ".join(f"{x:,.0f}" for x in bare_rates) + ")")
+    print(f"  ratio bare/HTTP      {b / h:>10.2f}x   (target <= 3x; target HTTP >= 20,000 counts/s)")
+
+
+SECTIONS = {"ingest": bench_ingest}
+
+
+def main() -> None:
+    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    p.add_argument("--only", choices=list(SECTIONS), action="append")
+    p.add_argument("--repeats", type=int, default=3)
+    args = p.parse_args()
+    for name in args.only or list(SECTIONS):
+        SECTIONS[name](args.repeats)
+
+
+if __name__ == "__main__":
+    main()
