@@ -184,6 +184,68 @@ def cmd_keys(args: argparse.Namespace, settings: Settings) -> int:
     return 0
 
 
+def _time_arg(text: str | None) -> int | None:
+    from .timefmt import parse_rfc3339
+
+    if text is None:
+        return None
+    try:
+        return parse_rfc3339(text)
+    except ValueError as exc:
+        raise TallywardError(str(exc)) from None
+
+
+def cmd_fit(args: argparse.Namespace, settings: Settings) -> int:
+    from tqdm import tqdm
+
+    from . import fitting
+
+    engine = _engine(settings)
+    ids = args.detector or fitting.all_detector_ids(engine)
+    started = time.perf_counter()
+    with tqdm(total=len(ids), unit="det", desc="fit baselines", file=sys.stderr,
+              disable=args.quiet) as bar:
+        results = fitting.fit_many(settings, engine, detector_ids=ids,
+                                   as_of_s=_time_arg(args.as_of), workers=args.workers,
+                                   progress=bar.update)
+    elapsed = time.perf_counter() - started
+    by_status: dict[str, int] = {}
+    for r in results:
+        by_status[r["status"]] = by_status.get(r["status"], 0) + 1
+    table([[by_status.get("fitted", 0), by_status.get("insufficient_history", 0),
+            by_status.get("failed", 0), f"{elapsed:.1f}", args.workers]],
+          ["fitted", "insufficient", "failed", "seconds", "workers"])
+    problems = [r for r in results if r["status"] != "fitted"]
+    if problems:
+        table([[r["detector_id"], r["status"], r.get("reason") or ""] for r in problems[:30]],
+              ["detector", "status", "reason"])
+    return 0 if not by_status.get("failed") else 1
+
+
+def cmd_replay(args: argparse.Namespace, settings: Settings) -> int:
+    from tqdm import tqdm
+
+    from .replay import ReplayError, replay, wait_for_scoring
+
+    try:
+        with tqdm(unit="count", desc="replay", file=sys.stderr, disable=args.quiet) as bar:
+            summary = replay(args.feed, url=args.url, key=args.key, speed=args.speed,
+                             from_s=_time_arg(args.from_), until_s=_time_arg(args.until),
+                             batch=args.batch, progress=bar.update)
+    except ReplayError as exc:
+        print(f"replay stopped: {exc}", file=sys.stderr)
+        return 1
+    table([[f"{summary.rows:,}", summary.batches, f"{summary.accepted:,}",
+            f"{summary.duplicate:,}", summary.conflict, summary.rejected, summary.retries,
+            f"{summary.seconds:.1f}"]],
+          ["rows", "batches", "accepted", "duplicate", "conflict", "rejected", "retries", "seconds"])
+    if args.wait_scored:
+        backlog = wait_for_scoring(args.url)
+        if backlog:
+            print(f"scoring backlog still {backlog} after waiting", file=sys.stderr)
+    return 0 if not summary.rejected else 1
+
+
 # ----------------------------------------------------------------------------- parser
 
 
@@ -219,6 +281,27 @@ def build_parser() -> argparse.ArgumentParser:
     k = ks.add_parser("revoke", help="revoke a key by name")
     k.add_argument("name")
     s.set_defaults(func=cmd_keys)
+
+    s = sub.add_parser("fit", help="fit baselines (expected counts by time of day and day type)")
+    s.add_argument("--detector", action="append", help="detector id (repeat); default: all")
+    s.add_argument("--as-of", help="RFC 3339 end of the history window; default: latest count")
+    s.add_argument("--workers", type=int, default=max(1, min(4, os.cpu_count() or 1)))
+    s.add_argument("--quiet", action="store_true")
+    s.set_defaults(func=cmd_fit)
+
+    s = sub.add_parser("replay", help="post a recorded feed through the HTTP API in time order")
+    s.add_argument("feed", help="feed folder (with counts.csv.gz) or a counts CSV file")
+    s.add_argument("--url", default="http://127.0.0.1:8000")
+    s.add_argument("--key", default=os.environ.get("TALLYWARD_KEY"),
+                   help="API key (role ingest); default $TALLYWARD_KEY")
+    s.add_argument("--speed", default="max", help="max, or a factor such as 60x")
+    s.add_argument("--from", dest="from_", help="RFC 3339: first interval to send")
+    s.add_argument("--until", help="RFC 3339: send intervals before this")
+    s.add_argument("--batch", type=int, default=5000, help="items per batch at max speed")
+    s.add_argument("--wait-scored", action="store_true",
+                   help="afterwards, wait until the service has scored everything")
+    s.add_argument("--quiet", action="store_true")
+    s.set_defaults(func=cmd_replay)
 
     for extend in _EXTENSIONS:
         extend(sub)

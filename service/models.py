@@ -17,6 +17,7 @@ from sqlalchemy import (
     MetaData,
     String,
     Table,
+    Text,
 )
 
 NAMING = {
@@ -86,4 +87,92 @@ api_keys = Table(
     Column("created_s", Float, nullable=False),
     Column("revoked_s", Float, nullable=True),
     CheckConstraint("role IN ('ingest', 'read', 'operate', 'admin')", name="role_known"),
+)
+
+baselines = Table(
+    "baselines",
+    metadata,
+    Column("baseline_id", Integer, primary_key=True, autoincrement=True),
+    Column("detector_id", String(64), ForeignKey("detectors.detector_id", ondelete="CASCADE"),
+           nullable=False),
+    Column("fitted_s", Float, nullable=False),
+    Column("as_of_s", BigInteger, nullable=False),
+    Column("window_start_s", BigInteger, nullable=False),
+    Column("window_end_s", BigInteger, nullable=False),
+    Column("model", Text, nullable=False),  # JSON: baseline.Baseline.to_dict()
+    Column("summary", Text, nullable=False),  # JSON: what a person reads about the fit
+    Index("ix_baselines_detector_id_baseline_id", "detector_id", "baseline_id"),
+)
+
+# Per-detector scoring bookkeeping. Ingest lowers ``dirty_from_s`` in the same transaction
+# that stores counts; scorers claim dirty rows and raise ``scored_through_s``.
+detector_state = Table(
+    "detector_state",
+    metadata,
+    Column("detector_id", String(64), ForeignKey("detectors.detector_id", ondelete="CASCADE"),
+           primary_key=True),
+    Column("baseline_id", Integer, ForeignKey("baselines.baseline_id", ondelete="SET NULL"),
+           nullable=True),
+    Column("score_from_s", BigInteger, nullable=True),
+    Column("dirty_from_s", BigInteger, nullable=True),
+    Column("claimed_from_s", BigInteger, nullable=True),  # what a scorer took from dirty_from_s
+    Column("lease_until_s", Float, nullable=True),  # until when that scorer's claim holds
+    Column("scored_through_s", BigInteger, nullable=True),
+    Column("warm_state", Text, nullable=True),
+    Column("updated_s", Float, nullable=False),
+    Index("ix_detector_state_dirty_from_s", "dirty_from_s"),
+)
+
+# Flagged intervals only (sparse): alert episodes are rebuilt from these.
+evidence = Table(
+    "evidence",
+    metadata,
+    Column("detector_id", String(64), ForeignKey("detectors.detector_id", ondelete="CASCADE"),
+           primary_key=True),
+    Column("start_s", BigInteger, primary_key=True),
+    Column("kind", String(20), primary_key=True),
+    Column("log_p", Float, nullable=False),
+    Column("observed", Float, nullable=True),
+    Column("expected", Float, nullable=True),
+)
+
+alerts = Table(
+    "alerts",
+    metadata,
+    Column("alert_id", Integer, primary_key=True, autoincrement=True),
+    Column("seq", BigInteger, nullable=False, unique=True),
+    Column("subject", String(80), nullable=False),  # detector id, or "group:<id>" for a group alert
+    Column("detector_id", String(64), ForeignKey("detectors.detector_id", ondelete="CASCADE"),
+           nullable=True),
+    Column("group_id", String(64), nullable=True),
+    Column("kind", String(20), nullable=False),
+    Column("cause", String(20), nullable=False),
+    Column("status", String(10), nullable=False),
+    Column("withdrawn", Integer, nullable=False, default=0),
+    Column("start_s", BigInteger, nullable=False),
+    Column("end_s", BigInteger, nullable=False),
+    Column("closed_s", BigInteger, nullable=True),
+    Column("observed", Float, nullable=True),
+    Column("expected", Float, nullable=True),
+    Column("log_p", Float, nullable=True),
+    Column("n_intervals", Integer, nullable=False),
+    Column("detectors", Text, nullable=True),  # JSON list, for group alerts
+    Column("part_of", Integer, nullable=True),  # a detector's share of a group alert (hidden)
+    Column("baseline_id", Integer, nullable=True),
+    Column("summary", Text, nullable=False),
+    Column("acknowledged_by", String(100), nullable=True),
+    Column("acknowledged_s", Float, nullable=True),
+    Column("ack_note", Text, nullable=True),
+    Column("created_s", Float, nullable=False),
+    Column("updated_s", Float, nullable=False),
+    Index("ix_alerts_subject_kind_start_s", "subject", "kind", "start_s", unique=True),
+    Index("ix_alerts_detector_id_end_s", "detector_id", "end_s"),
+    Index("ix_alerts_group_id", "group_id"),
+)
+
+counters = Table(
+    "counters",
+    metadata,
+    Column("name", String(40), primary_key=True),
+    Column("value", BigInteger, nullable=False),
 )
