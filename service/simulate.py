@@ -60,11 +60,18 @@ ROAD_CLASSES = ("freeway", "arterial", "local")
 FACILITIES = ("mainline", "ramp", "approach", "road")
 DAY_TYPES = ("weekday", "saturday", "sunday_holiday")
 ACTIONS = ("zero", "scale", "scale_range", "freeze", "absent", "intermittent")
-ALERT_KINDS = ("no_counts", "low_volume", "high_volume", "over_capacity", "repeated_value", "no_data")
+ALERT_KINDS = (
+    "no_counts",
+    "low_volume",
+    "high_volume",
+    "over_capacity",
+    "repeated_value",
+    "no_data",
+)
 CAUSES = ("detector", "traffic", "communications")
 
 #: Seasonal trend: ``1 + A cos(2 pi (day_of_year - peak) / 365.25)``; traffic peaks in July and
-#: falls about 5 % across the eight weeks of the scenario (a typical autumn decline, common practice).
+#: falls about 5 % across the eight weeks of the scenario (an autumn decline; common practice).
 SEASONAL_AMPLITUDE = 0.06
 SEASONAL_PEAK_DAY_OF_YEAR = 196.0
 
@@ -93,7 +100,7 @@ class DayShape:
     bumps: tuple[tuple[float, float, float], ...]
 
     def share(self, hour_local: np.ndarray) -> np.ndarray:
-        """Share of the day's vehicles per hour at local clock hour ``hour_local`` (integrates to 1)."""
+        """Share of the day's vehicles per hour at local clock hour ``hour_local`` (sums to 1)."""
         hour_local = np.asarray(hour_local, dtype=np.float64)
         value = np.full(hour_local.shape, self.floor)
         total = self.floor * 24.0
@@ -150,28 +157,36 @@ PROFILES: dict[str, TimeOfDayProfile] = {
     for p in (
         TimeOfDayProfile(
             name="freeway_inbound",
-            weekday=DayShape(floor=0.10, bumps=((13.0, 3.8, 0.75), (7.6, 0.85, 0.85), (17.2, 1.1, 0.55))),
+            weekday=DayShape(
+                floor=0.10, bumps=((13.0, 3.8, 0.75), (7.6, 0.85, 0.85), (17.2, 1.1, 0.55))
+            ),
             saturday=_FREEWAY_WEEKEND[0],
             sunday_holiday=_FREEWAY_WEEKEND[1],
             **_FREEWAY_DAYS,
         ),
         TimeOfDayProfile(
             name="freeway_outbound",
-            weekday=DayShape(floor=0.10, bumps=((13.0, 3.8, 0.75), (7.5, 0.9, 0.5), (17.1, 1.05, 0.85))),
+            weekday=DayShape(
+                floor=0.10, bumps=((13.0, 3.8, 0.75), (7.5, 0.9, 0.5), (17.1, 1.05, 0.85))
+            ),
             saturday=_FREEWAY_WEEKEND[0],
             sunday_holiday=_FREEWAY_WEEKEND[1],
             **_FREEWAY_DAYS,
         ),
         TimeOfDayProfile(
             name="ramp_on_am",
-            weekday=DayShape(floor=0.05, bumps=((13.0, 4.0, 0.7), (7.5, 0.8, 1.0), (17.2, 1.1, 0.35))),
+            weekday=DayShape(
+                floor=0.05, bumps=((13.0, 4.0, 0.7), (7.5, 0.8, 1.0), (17.2, 1.1, 0.35))
+            ),
             saturday=_SURFACE_WEEKEND[0],
             sunday_holiday=_SURFACE_WEEKEND[1],
             **_FREEWAY_DAYS,
         ),
         TimeOfDayProfile(
             name="ramp_off_pm",
-            weekday=DayShape(floor=0.05, bumps=((13.0, 4.0, 0.7), (7.6, 0.9, 0.35), (17.2, 1.0, 1.0))),
+            weekday=DayShape(
+                floor=0.05, bumps=((13.0, 4.0, 0.7), (7.6, 0.9, 0.35), (17.2, 1.0, 1.0))
+            ),
             saturday=_SURFACE_WEEKEND[0],
             sunday_holiday=_SURFACE_WEEKEND[1],
             **_FREEWAY_DAYS,
@@ -190,7 +205,9 @@ PROFILES: dict[str, TimeOfDayProfile] = {
             # Night shares near 0.06 %/h: on a few hundred vehicles a day most night-time
             # 15-minute intervals are empty.
             name="local",
-            weekday=DayShape(floor=0.002, bumps=((13.0, 3.0, 1.0), (7.4, 0.9, 0.45), (16.8, 1.2, 0.55))),
+            weekday=DayShape(
+                floor=0.002, bumps=((13.0, 3.0, 1.0), (7.4, 0.9, 0.45), (16.8, 1.2, 0.55))
+            ),
             saturday=DayShape(floor=0.002, bumps=((13.5, 3.0, 1.0),)),
             sunday_holiday=DayShape(floor=0.002, bumps=((14.0, 2.8, 1.0),)),
             weekday_factors=(0.98, 1.0, 1.0, 1.0, 1.05),
@@ -279,7 +296,9 @@ def utc_offsets_s(start_s: np.ndarray, timezone: str) -> np.ndarray:
     tz = ZoneInfo(timezone)
     offsets = np.array(
         [
-            int(datetime.fromtimestamp(int(b) * 900, UTC).astimezone(tz).utcoffset().total_seconds())
+            int(
+                datetime.fromtimestamp(int(b) * 900, UTC).astimezone(tz).utcoffset().total_seconds()
+            )
             for b in buckets
         ],
         dtype=np.int64,
@@ -310,9 +329,7 @@ def format_rfc3339(start_s: np.ndarray, timezone: str) -> np.ndarray:
     start_s = np.asarray(start_s, dtype=np.int64)
     unique, inverse = np.unique(start_s, return_inverse=True)
     tz = ZoneInfo(timezone)
-    text = np.array(
-        [datetime.fromtimestamp(int(s), tz).isoformat() for s in unique], dtype=object
-    )
+    text = np.array([datetime.fromtimestamp(int(s), tz).isoformat() for s in unique], dtype=object)
     return text[inverse.reshape(-1)]
 
 
@@ -538,13 +555,21 @@ def default_detectors() -> list[DetectorSpec]:
         return 36.100 + mp * 0.01449
 
     # Kestrel Freeway runs north-south; downtown lies to the north, so northbound is inbound.
-    for direction, mp, volume in (("nb", 3.1, 44000), ("nb", 5.4, 51000), ("sb", 5.4, 50000), ("sb", 3.1, 43000)):
+    for direction, mp, volume in (
+        ("nb", 3.1, 44000),
+        ("nb", 5.4, 51000),
+        ("sb", 5.4, 50000),
+        ("sb", 3.1, 43000),
+    ):
         group = f"kfw-{direction}-{round(mp * 10):03d}"
         for lane in range(3):
             specs.append(
                 _station(
                     detector_id=f"{group}-l{lane + 1}",
-                    label=f"Kestrel Fwy {direction.upper()} at MP {mp:.1f}, lane {lane + 1} ({lane_names[lane]})",
+                    label=(
+                        f"Kestrel Fwy {direction.upper()} at MP {mp:.1f}, "
+                        f"lane {lane + 1} ({lane_names[lane]})"
+                    ),
                     group=group,
                     road_class="freeway",
                     facility="mainline",
@@ -582,7 +607,10 @@ def default_detectors() -> list[DetectorSpec]:
             specs.append(
                 _station(
                     detector_id=f"{group}-x{exit_no}",
-                    label=f"Kestrel Fwy {direction.upper()} {kind}-ramp at Exit {exit_no} ({cross_streets[exit_no]})",
+                    label=(
+                        f"Kestrel Fwy {direction.upper()} {kind}-ramp "
+                        f"at Exit {exit_no} ({cross_streets[exit_no]})"
+                    ),
                     group=group,
                     road_class="freeway",
                     facility="ramp",
@@ -623,21 +651,40 @@ def default_detectors() -> list[DetectorSpec]:
             )
     # Signalized approaches: lanes of one approach form a group.
     approaches = (
-        ("bra3", "Brannock Ave & Third St", -100.470, 36.176, 300, {
-            "nb": (("lt", 2400), ("t1", 7600), ("t2", 6900)),
-            "sb": (("lt", 2100), ("t1", 7300), ("t2", 6600)),
-            "eb": (("lt", 1500), ("t1", 4800), ("rt", 1900)),
-            "wb": (("lt", 1300), ("t1", 4500), ("rt", 2200)),
-        }),
-        ("fencal", "Fenwright Rd & Calder St", -100.495, 36.163, 900, {
-            "eb": (("lt", 2000), ("t1", 6800), ("t2", 6400), ("rt", 1700)),
-            "wb": (("lt", 1800), ("t1", 6500), ("t2", 6100), ("rt", 1900)),
-            "nb": (("lt", 1200), ("th", 4200), ("rt", 1400)),
-            "sb": (("lt", 1100), ("th", 3900), ("rt", 1500)),
-        }),
+        (
+            "bra3",
+            "Brannock Ave & Third St",
+            -100.470,
+            36.176,
+            300,
+            {
+                "nb": (("lt", 2400), ("t1", 7600), ("t2", 6900)),
+                "sb": (("lt", 2100), ("t1", 7300), ("t2", 6600)),
+                "eb": (("lt", 1500), ("t1", 4800), ("rt", 1900)),
+                "wb": (("lt", 1300), ("t1", 4500), ("rt", 2200)),
+            },
+        ),
+        (
+            "fencal",
+            "Fenwright Rd & Calder St",
+            -100.495,
+            36.163,
+            900,
+            {
+                "eb": (("lt", 2000), ("t1", 6800), ("t2", 6400), ("rt", 1700)),
+                "wb": (("lt", 1800), ("t1", 6500), ("t2", 6100), ("rt", 1900)),
+                "nb": (("lt", 1200), ("th", 4200), ("rt", 1400)),
+                "sb": (("lt", 1100), ("th", 3900), ("rt", 1500)),
+            },
+        ),
     )
-    lane_words = {"lt": "left-turn lane", "rt": "right-turn lane", "th": "through lane",
-                  "t1": "through lane 1", "t2": "through lane 2"}
+    lane_words = {
+        "lt": "left-turn lane",
+        "rt": "right-turn lane",
+        "th": "through lane",
+        "t1": "through lane 1",
+        "t2": "through lane 2",
+    }
     offsets = {"nb": (0.0, -0.0004), "sb": (0.0, 0.0004), "eb": (-0.0005, 0.0), "wb": (0.0005, 0.0)}
     for prefix, name, lon, lat, interval_s, legs in approaches:
         for leg, lanes in legs.items():
@@ -663,10 +710,34 @@ def default_detectors() -> list[DetectorSpec]:
         ("qry-01-eb", "Quarry Rd east of Brisco Rd, eastbound", "qry", 1, -100.620, 36.140, 450),
         ("qry-01-wb", "Quarry Rd east of Brisco Rd, westbound", "qry", 1, -100.620, 36.1402, 470),
         ("qry-02-eb", "Quarry Rd at Hatchet Creek, eastbound", "qry", 1, -100.655, 36.138, 380),
-        ("lnp-01-nb", "Linden Pike north of Fenwright Rd, northbound", "lnp", 1, -100.400, 36.250, 700),
-        ("lnp-01-sb", "Linden Pike north of Fenwright Rd, southbound", "lnp", 1, -100.4002, 36.250, 650),
+        (
+            "lnp-01-nb",
+            "Linden Pike north of Fenwright Rd, northbound",
+            "lnp",
+            1,
+            -100.400,
+            36.250,
+            700,
+        ),
+        (
+            "lnp-01-sb",
+            "Linden Pike north of Fenwright Rd, southbound",
+            "lnp",
+            1,
+            -100.4002,
+            36.250,
+            650,
+        ),
         ("lnp-02-nb", "Linden Pike at Cobb Hollow, northbound", "lnp", 1, -100.396, 36.281, 600),
-        ("oml-01", "Old Mill Ln near the grain elevator, both directions", None, 2, -100.580, 36.220, 280),
+        (
+            "oml-01",
+            "Old Mill Ln near the grain elevator, both directions",
+            None,
+            2,
+            -100.580,
+            36.220,
+            280,
+        ),
     ):
         specs.append(
             _station(
@@ -717,8 +788,11 @@ def expected_rate(spec: DetectorSpec, start_s: np.ndarray) -> np.ndarray:
     share = np.empty(start_s.shape, dtype=np.float64)
     day_factor = np.empty(days.shape, dtype=np.float64)
     seasonal = np.empty(days.shape, dtype=np.float64)
-    shapes = {"weekday": profile.weekday, "saturday": profile.saturday,
-              "sunday_holiday": profile.sunday_holiday}
+    shapes = {
+        "weekday": profile.weekday,
+        "saturday": profile.saturday,
+        "sunday_holiday": profile.sunday_holiday,
+    }
     for k, number in enumerate(days):
         day = date(1970, 1, 1) + timedelta(days=int(number))
         kind = day_type_of(day, holiday_calendar=spec.holiday_calendar)
@@ -734,8 +808,11 @@ def expected_rate(spec: DetectorSpec, start_s: np.ndarray) -> np.ndarray:
         rows = inverse == k
         share[rows] = shapes[kind].share(hour_mid[rows])
     return (
-        spec.base_daily_volume * share * (spec.interval_s / 3600.0)
-        * day_factor[inverse] * seasonal[inverse]
+        spec.base_daily_volume
+        * share
+        * (spec.interval_s / 3600.0)
+        * day_factor[inverse]
+        * seasonal[inverse]
     )
 
 
@@ -757,46 +834,65 @@ def _scenario_injections(
     def at(y: int, m: int, d: int, hh: int = 0, mm: int = 0) -> int:
         return int(datetime(y, m, d, hh, mm, tzinfo=ZoneInfo(timezone)).timestamp())
 
+    day_start, offline_start = at(2026, 11, 23), at(2026, 11, 24, 10, 15)
+    # fmt: off
     plan = (
         # id, kind, cause, detectors, start, end, action, factors, description
-        ("H01", "no_counts", "detector", ("kfw-nb-054-l2",), at(2026, 10, 22), at(2026, 10, 23),
-         "zero", (), "Dead loop card for a whole Thursday: zeros on one freeway lane."),
-        ("H02", "high_volume", "detector", ("bra3-nb-t1",), at(2026, 10, 27, 13), at(2026, 10, 27, 18),
-         "scale_range", (2.0, 3.0), "Chattering loop for an afternoon: counts x2-3 on one approach lane."),
-        ("H03", "no_data", "communications", members.get("lnp", ()), at(2026, 11, 4, 2), at(2026, 11, 4, 6),
-         "absent", (), "Linden Pike cabinet modem down overnight: no reports from the group for 4 h."),
-        ("H04", "repeated_value", "detector", ("kfw-sb-off-x4",), at(2026, 11, 7, 8), at(2026, 11, 7, 14),
-         "freeze", (), "Polling fault on a Saturday morning: one off-ramp repeats one count for 6 h."),
-        ("T01", "no_counts", "detector", ("kfw-sb-054-l1",), at(2026, 11, 17, 17, 10), at(2026, 11, 18, 11),
-         "zero", (), "Freeway lane stuck at zero from the PM peak until the next morning."),
-        ("T02", "no_counts", "detector", ("bra3-wb-t1",), at(2026, 11, 19, 1, 40), at(2026, 11, 19, 18),
-         "zero", (), "Approach lane stuck at zero from 01:40; noticeable only once morning traffic builds."),
-        ("T03", "high_volume", "detector", ("fencal-wb-t1",), at(2026, 11, 18, 10), at(2026, 11, 18, 15, 30),
-         "scale_range", (2.0, 3.0), "Crosstalk on a 15-minute through lane: counts x2-3 for 5.5 h."),
-        ("T04", "over_capacity", "detector", ("kfw-sb-031-l2",), at(2026, 11, 20, 15), at(2026, 11, 20, 19),
-         "scale_range", (2.6, 3.0), "Chattering freeway lane through the PM peak: x2.6-3, beyond lane capacity."),
-        ("T05", "no_counts", "detector", ("fencal-eb-t2",), at(2026, 11, 20, 9), at(2026, 11, 21, 12),
-         "zero", (), "One lane of the eastbound through pair dead; its neighbour t1 counts normally."),
-        ("T06", "repeated_value", "detector", ("kfw-nb-on-x5",), at(2026, 11, 21, 13), at(2026, 11, 22, 9),
-         "freeze", (), "Frozen controller: one on-ramp repeats the same nonzero count for 20 h."),
-        ("T07", "no_data", "communications", ("bra3-sb-t1",), at(2026, 11, 23), at(2026, 11, 24),
-         "intermittent", (0.33,), "Flaky serial link: about a third of one lane's reports lost in short bursts all day."),
-        ("T08", "no_data", "communications", members.get("bra3-eb", ()), at(2026, 11, 24, 10, 15),
-         at(2026, 11, 24, 11, 15), "absent", (), "Brannock & Third eastbound controller offline for an hour."),
-        ("T09", "low_volume", "detector", ("orx-wb-s2",), at(2026, 11, 16, 6), at(2026, 11, 18, 6),
-         "scale", (0.55,), "Loop sensitivity drift: one station counts 55 % of its traffic for two days."),
-        ("T10", "low_volume", "traffic", ("orx-eb-s2", "orx-eb-s3", "orx-eb-s4"), at(2026, 11, 25, 16, 20),
-         at(2026, 11, 25, 17, 5), "scale", (0.40, 0.30, 0.35),
-         "Crash blocking a lane near station 3 in the PM peak: stations 2-4 drop to 30-40 % for 45 min."),
-        ("T11", "high_volume", "traffic", ("orx-eb-s2", "orx-eb-s3", "orx-eb-s4"), at(2026, 11, 25, 17, 5),
-         at(2026, 11, 25, 17, 25), "scale", (1.6, 1.5, 1.5),
-         "Queue discharge after the crash clears: stations 2-4 x1.5-1.6 for 20 min (upstream one most)."),
-        ("T12", "high_volume", "traffic", members.get("fencal-nb", ()), at(2026, 11, 28, 17, 30),
-         at(2026, 11, 28, 20), "scale", (2.2, 2.2, 2.2),
+        ("H01", "no_counts", "detector", ("kfw-nb-054-l2",),
+         at(2026, 10, 22), at(2026, 10, 23), "zero", (),
+         "Dead loop card for a whole Thursday: zeros on one freeway lane."),
+        ("H02", "high_volume", "detector", ("bra3-nb-t1",),
+         at(2026, 10, 27, 13), at(2026, 10, 27, 18), "scale_range", (2.0, 3.0),
+         "Chattering loop for an afternoon: counts x2-3 on one approach lane."),
+        ("H03", "no_data", "communications", members.get("lnp", ()),
+         at(2026, 11, 4, 2), at(2026, 11, 4, 6), "absent", (),
+         "Linden Pike cabinet modem down overnight: no reports from the group for 4 h."),
+        ("H04", "repeated_value", "detector", ("kfw-sb-off-x4",),
+         at(2026, 11, 7, 8), at(2026, 11, 7, 14), "freeze", (),
+         "Polling fault on a Saturday morning: one off-ramp repeats one count for 6 h."),
+        ("T01", "no_counts", "detector", ("kfw-sb-054-l1",),
+         at(2026, 11, 17, 17, 10), at(2026, 11, 18, 11), "zero", (),
+         "Freeway lane stuck at zero from the PM peak until the next morning."),
+        ("T02", "no_counts", "detector", ("bra3-wb-t1",),
+         at(2026, 11, 19, 1, 40), at(2026, 11, 19, 18), "zero", (),
+         "Approach lane stuck at zero from 01:40; noticeable only once morning traffic builds."),
+        ("T03", "high_volume", "detector", ("fencal-wb-t1",),
+         at(2026, 11, 18, 10), at(2026, 11, 18, 15, 30), "scale_range", (2.0, 3.0),
+         "Crosstalk on a 15-minute through lane: counts x2-3 for 5.5 h."),
+        ("T04", "over_capacity", "detector", ("kfw-sb-031-l2",),
+         at(2026, 11, 20, 15), at(2026, 11, 20, 19), "scale_range", (2.6, 3.0),
+         "Chattering freeway lane through the PM peak: x2.6-3, beyond lane capacity."),
+        ("T05", "no_counts", "detector", ("fencal-eb-t2",),
+         at(2026, 11, 20, 9), at(2026, 11, 21, 12), "zero", (),
+         "One lane of the eastbound through pair dead; its neighbour t1 counts normally."),
+        ("T06", "repeated_value", "detector", ("kfw-nb-on-x5",),
+         at(2026, 11, 21, 13), at(2026, 11, 22, 9), "freeze", (),
+         "Frozen controller: one on-ramp repeats the same nonzero count for 20 h."),
+        ("T07", "no_data", "communications", ("bra3-sb-t1",),
+         day_start, day_start + 86400, "intermittent", (0.33,),
+         "Flaky serial link: about a third of one lane's reports lost in short bursts all day."),
+        ("T08", "no_data", "communications", members.get("bra3-eb", ()),
+         offline_start, offline_start + 3600, "absent", (),
+         "Brannock & Third eastbound controller offline for an hour."),
+        ("T09", "low_volume", "detector", ("orx-wb-s2",),
+         at(2026, 11, 16, 6), at(2026, 11, 18, 6), "scale", (0.55,),
+         "Loop sensitivity drift: one station counts 55 % of its traffic for two days."),
+        ("T10", "low_volume", "traffic", ("orx-eb-s2", "orx-eb-s3", "orx-eb-s4"),
+         at(2026, 11, 25, 16, 20), at(2026, 11, 25, 17, 5), "scale", (0.40, 0.30, 0.35),
+         "Crash blocking a lane near station 3 in the PM peak: stations 2-4 drop to "
+         "30-40 % for 45 min."),
+        ("T11", "high_volume", "traffic", ("orx-eb-s2", "orx-eb-s3", "orx-eb-s4"),
+         at(2026, 11, 25, 17, 5), at(2026, 11, 25, 17, 25), "scale", (1.6, 1.5, 1.5),
+         "Queue discharge after the crash clears: stations 2-4 x1.5-1.6 for 20 min "
+         "(upstream one most)."),
+        ("T12", "high_volume", "traffic", members.get("fencal-nb", ()),
+         at(2026, 11, 28, 17, 30), at(2026, 11, 28, 20), "scale", (2.2,),
          "Arena event on Saturday evening: Calder St northbound approach x2.2 for 2.5 h."),
-        ("T13", "no_counts", "detector", ("qry-01-eb",), at(2026, 11, 22, 22), at(2026, 11, 24, 12),
-         "zero", (), "Rural count station stuck at zero from Sunday night; night zeros are normal here."),
+        ("T13", "no_counts", "detector", ("qry-01-eb",),
+         at(2026, 11, 22, 22), at(2026, 11, 24, 12), "zero", (),
+         "Rural count station stuck at zero from Sunday night; night zeros are normal here."),
     )
+    # fmt: on
     injections = []
     for ident, kind, cause, ids, start, end, action, factors, description in plan:
         if not ids or any(i not in group_of for i in ids):
@@ -883,8 +979,9 @@ def generate_network(
     -------
     Network
     """
-    specs = sorted(detectors if detectors is not None else default_detectors(),
-                   key=lambda s: s.detector_id)
+    specs = sorted(
+        detectors if detectors is not None else default_detectors(), key=lambda s: s.detector_id
+    )
     ids = [s.detector_id for s in specs]
     if len(set(ids)) != len(ids):
         raise ValueError("duplicate detector_id")
@@ -897,7 +994,8 @@ def generate_network(
     n_hours = (end_s - history_start_s) // 3600
 
     scenario = [
-        inj for inj in _scenario_injections(specs, timezone=timezone, test_start_s=test_start_s)
+        inj
+        for inj in _scenario_injections(specs, timezone=timezone, test_start_s=test_start_s)
         if history_start_s <= inj.start_s and inj.end_s <= end_s
     ]
     injections = scenario if inject else []
@@ -935,7 +1033,10 @@ def generate_network(
         lone[1:] &= ~lone[:-1]
         for inj in scenario:
             if spec.detector_id in inj.detector_ids and inj.action in ("absent", "intermittent"):
-                lone &= ~((starts >= inj.start_s - spec.interval_s) & (starts < inj.end_s + spec.interval_s))
+                lone &= ~(
+                    (starts >= inj.start_s - spec.interval_s)
+                    & (starts < inj.end_s + spec.interval_s)
+                )
         present &= ~lone
 
         for inj in injections:
@@ -953,13 +1054,17 @@ def generate_network(
                 present[np.flatnonzero(window)[lost]] = False
             else:
                 if inj.action == "scale":
-                    factor = np.full(int(window.sum()), inj.factors[inj.detector_ids.index(spec.detector_id)])
+                    factor = np.full(
+                        int(window.sum()), inj.factors[inj.detector_ids.index(spec.detector_id)]
+                    )
                 else:
                     factor = inject_rng.uniform(inj.factors[0], inj.factors[1], int(window.sum()))
                 if np.all(factor <= 1.0):
                     counts[window] = inject_rng.binomial(counts[window], factor)
                 else:
-                    counts[window] += inject_rng.poisson(rate[window] * np.maximum(factor - 1.0, 0.0))
+                    counts[window] += inject_rng.poisson(
+                        rate[window] * np.maximum(factor - 1.0, 0.0)
+                    )
         parts_index.append(np.full(int(present.sum()), index, dtype=np.int32))
         parts_start.append(starts[present])
         parts_count.append(counts[present])
@@ -1022,10 +1127,14 @@ def truth_document(network: Network) -> dict:
         "scenario": network.scenario,
         "seed": network.seed,
         "timezone": tz,
-        "history": {"start": _rfc3339_one(network.history_start_s, tz),
-                    "end": _rfc3339_one(network.test_start_s, tz)},
-        "test": {"start": _rfc3339_one(network.test_start_s, tz),
-                 "end": _rfc3339_one(network.end_s, tz)},
+        "history": {
+            "start": _rfc3339_one(network.history_start_s, tz),
+            "end": _rfc3339_one(network.test_start_s, tz),
+        },
+        "test": {
+            "start": _rfc3339_one(network.test_start_s, tz),
+            "end": _rfc3339_one(network.end_s, tz),
+        },
         "background": {
             "lone_missing": "isolated single intervals missing on every detector (absent rows)",
             "model": "Poisson x gamma day factor (per group and local day) x gamma hour factor",
@@ -1100,8 +1209,11 @@ def write_feed(network: Network, folder: str | Path) -> dict:
     for name, payload in payloads.items():
         path = folder / name
         path.write_bytes(payload)
-        files[name] = {"path": str(path), "bytes": len(payload),
-                       "sha256": hashlib.sha256(payload).hexdigest()}
+        files[name] = {
+            "path": str(path),
+            "bytes": len(payload),
+            "sha256": hashlib.sha256(payload).hexdigest(),
+        }
     return {"files": files, "rows": int(network.count.size), "detectors": len(network.detectors)}
 
 
@@ -1157,8 +1269,11 @@ def read_counts_arrays(
         index.append(position[detector_id])
         start.append(seen[text])
         count.append(value)
-    return (np.array(index, dtype=np.int32), np.array(start, dtype=np.int64),
-            np.array(count, dtype=np.int64))
+    return (
+        np.array(index, dtype=np.int32),
+        np.array(start, dtype=np.int64),
+        np.array(count, dtype=np.int64),
+    )
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -1169,8 +1284,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     args = parser.parse_args(argv)
     network = generate_network(seed=args.seed)
     report = write_feed(network, args.out)
-    print(f"{report['detectors']} detectors, {report['rows']} rows, "
-          f"{len(network.injections)} injections")
+    print(
+        f"{report['detectors']} detectors, {report['rows']} rows, "
+        f"{len(network.injections)} injections"
+    )
     for name, info in report["files"].items():
         print(f"{name}: {info['bytes']} bytes sha256 {info['sha256']}")
     return 0
