@@ -480,6 +480,8 @@ class Network:
     scenario : str
     timezone : str
         Zone of the period bounds.
+    lone_missing_fraction : float
+        Probability of a lone missing interval (see :func:`generate_network`).
 
     Rows are sorted by start then detector; missing intervals are absent rows.
     """
@@ -495,6 +497,7 @@ class Network:
     seed: int = DEFAULT_SEED
     scenario: str = SCENARIO
     timezone: str = TIMEZONE
+    lone_missing_fraction: float = LONE_MISSING_FRACTION
     _index_of: dict[str, int] = field(default_factory=dict, repr=False)
 
     def __post_init__(self) -> None:
@@ -1084,6 +1087,7 @@ def generate_network(
         end_s=end_s,
         seed=seed,
         timezone=timezone,
+        lone_missing_fraction=lone_missing_fraction,
     )
 
 
@@ -1136,6 +1140,7 @@ def truth_document(network: Network) -> dict:
             "end": _rfc3339_one(network.end_s, tz),
         },
         "background": {
+            "lone_missing_fraction": network.lone_missing_fraction,
             "lone_missing": "isolated single intervals missing on every detector (absent rows)",
             "model": "Poisson x gamma day factor (per group and local day) x gamma hour factor",
         },
