@@ -5,6 +5,8 @@ from __future__ import annotations
 import logging
 import time
 import uuid
+from collections.abc import AsyncIterator
+from contextlib import asynccontextmanager
 from typing import Any
 
 import orjson
@@ -17,7 +19,8 @@ from starlette.exceptions import HTTPException as StarletteHTTPException
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from . import __version__, logs
-from .api import counts, detectors, health
+from .alerting import Scorer, mark_dirty
+from .api import alerts, baselines, counts, detectors, health
 from .config import Settings, get_settings
 from .db import make_engine
 from .errors import TallywardError, Unavailable
@@ -102,11 +105,25 @@ class BodyLimit:
 def create_app(settings: Settings | None = None, *, engine: Engine | None = None) -> FastAPI:
     settings = settings or get_settings()
     logs.configure(settings.log_level)
+    engine = engine or make_engine(settings)
+
+    @asynccontextmanager
+    async def lifespan(app: FastAPI) -> AsyncIterator[None]:
+        scorer = None
+        if settings.scoring == "inline":
+            scorer = Scorer(engine, settings).start()
+            app.state.after_commit = lambda _result: scorer.wake.set()
+        try:
+            yield
+        finally:
+            if scorer is not None:
+                scorer.stop()
+
     app = FastAPI(title="Tallyward", version=__version__, description=DESCRIPTION,
-                  docs_url="/docs", openapi_url="/openapi.json")
+                  docs_url="/docs", openapi_url="/openapi.json", lifespan=lifespan)
     app.state.settings = settings
-    app.state.engine = engine or make_engine(settings)
-    app.state.after_store = None
+    app.state.engine = engine
+    app.state.after_store = mark_dirty
     app.state.after_commit = None
 
     @app.exception_handler(TallywardError)
@@ -160,6 +177,9 @@ def create_app(settings: Settings | None = None, *, engine: Engine | None = None
     app.include_router(detectors.import_router)
     app.include_router(detectors.router)
     app.include_router(counts.router)
+    app.include_router(baselines.router)
+    app.include_router(alerts.router)
+    app.include_router(alerts.detector_router)
     app.add_middleware(BodyLimit, max_bytes=settings.max_body_bytes)
     return app
 

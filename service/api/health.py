@@ -8,6 +8,7 @@ from fastapi import APIRouter, Response
 from sqlalchemy import func, select, text
 
 from .. import migrate, models
+from ..alerting import scoring_backlog
 from ..db import read_transaction
 from ..deps import EngineDep, SettingsDep
 from ..timefmt import format_utc
@@ -38,7 +39,7 @@ def health(engine: EngineDep, settings: SettingsDep, response: Response) -> dict
             stored, exact = _counts_stored(conn)
             latest = conn.execute(select(func.max(models.counts.c.start_s))).scalar()
             detectors = conn.execute(select(func.count()).select_from(models.detectors)).scalar_one()
-            backlog = _scoring_backlog(conn)
+            backlog = scoring_backlog(conn, settings)
     except Exception as exc:  # noqa: BLE001 - health reports any database failure
         response.status_code = 503
         return {"status": "unavailable", "database": "unreachable", "error": type(exc).__name__,
@@ -58,10 +59,3 @@ def health(engine: EngineDep, settings: SettingsDep, response: Response) -> dict
         "clock": settings.clock,
     }
 
-
-def _scoring_backlog(conn) -> int:  # type: ignore[no-untyped-def]
-    table = getattr(models, "detector_state", None)
-    if table is None:
-        return 0
-    return conn.execute(select(func.count()).select_from(table)
-                        .where(table.c.dirty_from_s.is_not(None))).scalar_one()
