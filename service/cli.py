@@ -246,6 +246,63 @@ def cmd_replay(args: argparse.Namespace, settings: Settings) -> int:
     return 0 if not summary.rejected else 1
 
 
+def cmd_demo(args: argparse.Namespace, settings: Settings) -> int:
+    from .demo import main_demo
+
+    return main_demo(args.feed, args.folder, workers=args.workers)
+
+
+def cmd_evaluate(args: argparse.Namespace, settings: Settings) -> int:
+    from . import evaluate
+
+    truth = evaluate.load_truth(args.truth)
+    alerts = evaluate.fetch_alerts(args.url, args.key)
+    report = evaluate.evaluate(truth, alerts, intervals=evaluate.detector_intervals(args.url,
+                                                                                    args.key))
+    if args.json:
+        print(orjson.dumps(report, option=orjson.OPT_INDENT_2).decode())
+    else:
+        evaluate.print_report(report)
+    return 0
+
+
+def cmd_score(args: argparse.Namespace, settings: Settings) -> int:
+    from .alerting import score_pass
+
+    engine = _engine(settings)
+    total = 0
+    while True:
+        n = score_pass(engine, settings)
+        total += n
+        if n == 0:
+            if not args.loop:
+                break
+            time.sleep(args.idle)
+    print(f"scored {total} detector passes", file=sys.stderr)
+    return 0
+
+
+def cmd_plot(args: argparse.Namespace, settings: Settings) -> int:
+    import httpx
+
+    from .plots import plot_day
+
+    headers = {"Authorization": f"Bearer {args.key}"} if args.key else {}
+    with httpx.Client(base_url=args.url, headers=headers, timeout=30) as c:
+        r = c.get(f"/v1/detectors/{args.detector}/baseline", params={"date": args.date})
+        if r.status_code != 200:
+            raise TallywardError(f"baseline: {r.status_code} {r.text[:300]}")
+        doc = r.json()
+        lo, hi = doc["data"][0]["start"], doc["data"][-1]["start"]
+        counts = c.get("/v1/counts", params={"detector_id": args.detector, "from": lo,
+                                             "until": hi}).json()["data"]
+        alerts = c.get("/v1/alerts", params={"detector_id": args.detector, "limit": 1000}).json()
+    out = plot_day(doc, counts, [a for a in alerts["data"] if not a["withdrawn"]],
+                   title=f"{args.detector} on {args.date}", out=args.out)
+    print(out)
+    return 0
+
+
 # ----------------------------------------------------------------------------- parser
 
 
@@ -303,12 +360,33 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--quiet", action="store_true")
     s.set_defaults(func=cmd_replay)
 
-    for extend in _EXTENSIONS:
-        extend(sub)
+    s = sub.add_parser("demo", help="the main job on the demo network (embedded SQLite)")
+    s.add_argument("--feed", help="feed folder; default seed_feed/")
+    s.add_argument("--folder", help="working folder; default ./demo_run")
+    s.add_argument("--workers", type=int, default=2)
+    s.set_defaults(func=cmd_demo)
+
+    s = sub.add_parser("evaluate", help="score a service's alerts against a feed's truth file")
+    s.add_argument("--truth", required=True)
+    s.add_argument("--url", default="http://127.0.0.1:8000")
+    s.add_argument("--key", default=os.environ.get("TALLYWARD_KEY"))
+    s.add_argument("--json", action="store_true", help="print the report as JSON")
+    s.set_defaults(func=cmd_evaluate)
+
+    s = sub.add_parser("score", help="score pending counts (a worker beside the service)")
+    s.add_argument("--loop", action="store_true", help="keep running")
+    s.add_argument("--idle", type=float, default=1.0)
+    s.set_defaults(func=cmd_score)
+
+    s = sub.add_parser("plot", help="PNG of a detector's day against its baseline band")
+    s.add_argument("detector")
+    s.add_argument("--date", required=True, help="local date YYYY-MM-DD")
+    s.add_argument("--out", required=True, help="PNG path")
+    s.add_argument("--url", default="http://127.0.0.1:8000")
+    s.add_argument("--key", default=os.environ.get("TALLYWARD_KEY"))
+    s.set_defaults(func=cmd_plot)
+
     return p
-
-
-_EXTENSIONS: list[Any] = []
 
 
 def main(argv: Sequence[str] | None = None) -> int:
