@@ -79,10 +79,11 @@ def _truncate(url: str) -> None:
     with engine.begin() as conn:
         tables = [r[0] for r in conn.execute(text(
             "SELECT tablename FROM pg_tables WHERE schemaname = 'public' "
-            "AND tablename <> 'alembic_version'"))]
+            "AND tablename NOT IN ('alembic_version', 'counters')"))]
         if tables:
             conn.execute(text("TRUNCATE " + ", ".join(f'"{t}"' for t in tables)
                               + " RESTART IDENTITY CASCADE"))
+        conn.execute(text("UPDATE counters SET value = 0"))
     engine.dispose()
 
 
