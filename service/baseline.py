@@ -15,34 +15,42 @@ days high or low) and ``h`` an independent gamma interval factor with variance `
 (the remaining interval-level excess). ``day_alpha = interval_alpha = 0`` is the Poisson model.
 
 Time-of-day profile
-    ``log mu`` is one free parameter per bin with a cyclic second-difference penalty
-    ``lambda * sum((beta[b-1] - 2 beta[b] + beta[b+1])**2)`` (midnight wraps round), fitted by
-    penalised Poisson maximum likelihood from sufficient statistics only: per-bin weighted totals and
-    exposures, so months of history cost no more than one day. This was preferred to a Fourier basis
-    with harmonics chosen by BIC because (a) a sharp 15-minute peak needs almost every harmonic and a
-    truncated series rings around it (Gibbs), whereas (b) the penalty's pull is divided by each bin's
-    Fisher information ``e * mu``, so busy bins follow their data (a peak stays sharp) while quiet
-    bins borrow strength from their neighbours, and every rate is ``exp(beta) > 0`` even in bins whose
-    totals are zero.
+    ``log mu`` is one free parameter per bin, fitted by penalised Poisson maximum likelihood from
+    sufficient statistics only (per-bin weighted totals and exposures), so months of history cost
+    no more than one day. Smoothness comes from a prior on the cyclic second differences
+    ``d[b] = beta[b-1] - 2 beta[b] + beta[b+1]`` (midnight wraps round): Student t with
+    :data:`SMOOTHNESS_DF` degrees of freedom and precision ``lambda``. Near zero it acts like the
+    usual quadratic penalty ``lambda/2 sum(d^2)``; its heavy tails (as in Kitagawa 1987, JASA
+    82:1032-1041, for trends with jumps) make a sharp 15-minute peak cheap, so it is not blurred
+    into its neighbours, which a single quadratic penalty does whenever the rest of the day asks
+    for strong smoothing. The penalty's pull is also divided by each bin's Fisher information
+    ``e * mu``, so busy bins follow their data and quiet ones borrow from their neighbours; every
+    rate is ``exp(beta) > 0``, also in bins whose totals are zero. This was preferred to a Fourier
+    basis with harmonics chosen by BIC, which needs almost every harmonic for a 15-minute peak and
+    rings around it (Gibbs).
 
 Choice of smoothness
     ``lambda`` maximises the Laplace approximate marginal likelihood (LAML, the REML analogue for
-    GLMs; Wood 2011, JRSS B 73:3-36): ``l(beta) - lambda/2 beta'P beta + (n-1)/2 log(lambda)
-    - 1/2 log|H|``. Bins are stored in a folded order (0, n-1, 1, n-2, ...) in which the cyclic
-    penalty is a band of half-width 4, so the Hessian ``H = diag(w) + lambda P`` has a banded
-    Cholesky factor costing O(n) and giving ``log|H|`` for free. (GCV/UBRE would also need
-    ``trace(H^-1 W)`` at every trial ``lambda``.) Interval-level overdispersion enters as fixed
-    quasi-likelihood variance weights ``1 / (1 + interval_alpha * mu)`` from the previous round.
+    GLMs; Wood 2011, JRSS B 73:3-36) at the posterior mode: ``l(beta) + log p(d) +
+    (n-1)/2 log(lambda) - 1/2 log|H|`` with ``H = diag(w) + lambda D'VD`` and ``V`` the t prior's
+    scale-mixture weights. Bins are stored in a folded order (0, n-1, 1, n-2, ...) in which the
+    cyclic ``D'VD`` is a band of half-width 4, so ``H`` has a banded Cholesky factor costing O(n)
+    and giving ``log|H|`` for free (GCV/UBRE would also need ``trace(H^-1 W)`` at every trial
+    ``lambda``). Interval-level overdispersion enters as fixed quasi-likelihood variance weights
+    ``1 / (1 + interval_alpha * mu)`` from the previous round.
 
 Overdispersion
-    ``interval_alpha`` comes from interval counts given each day's estimated factor
-    (Pearson chi-square equal to its degrees of freedom, Breslow 1984); ``day_alpha`` by negative
-    binomial (NB2) maximum likelihood on daily totals against the sum of expected volumes over the
-    day's observed bins, after rescaling each total by its interval-level variance inflation (so the
-    first two moments are those of NB2). Each component is tested against Poisson by the Dean (1992)
-    score statistic ``sum((y - m)^2 - y) / sqrt(2 sum m^2)`` with a leverage correction; the
-    distribution is "negative_binomial" when the Bonferroni combination of the two one-sided
-    p-values is below :data:`OVERDISPERSION_LEVEL`, otherwise "poisson" with both alphas 0.
+    ``interval_alpha`` comes from interval counts given each day's estimated factor (Pearson
+    chi-square equal to its degrees of freedom, Breslow 1984); ``day_alpha`` by negative binomial
+    (NB2) maximum likelihood on daily totals against the sum of expected volumes over the day's
+    observed bins, after rescaling each total by its interval-level variance inflation (so the
+    first two moments are those of NB2). The interval level is tested against Poisson by the
+    Dean (1992) score statistic ``sum((y - m)^2 - y) / sqrt(2 sum m^2)`` with the Dean & Lawless
+    (1989) leverage correction, the day level by the Pearson chi-square of the (rescaled) daily
+    totals, whose reference suits a few large counts. The distribution is "negative_binomial"
+    when the Bonferroni combination of the two one-sided p-values is below
+    :data:`OVERDISPERSION_LEVEL`, otherwise "poisson" with both alphas 0; a component whose own
+    test is not significant (at half that level) gets alpha 0.
 
 Robustness
     Fit, then trim and refit (:data:`ROBUST_ROUNDS` rounds, each trim decided afresh from the
@@ -107,7 +115,7 @@ TRIM_RESIDUAL = 4.5  # |NB deviance residual| beyond which one interval is trimm
 ZERO_RUN_LOG_P = math.log(1e-6)  # a run of zeros less probable than this is trimmed
 DAY_RATIO_MADS = 5.0  # robust standard deviations of log(observed/expected) for a wild day
 DAY_RATIO_FLOOR = math.log(1.5)  # ... and never closer than a factor 1.5 to the median
-SMOOTHNESS_PRIOR = ("t", 4.0)  # Student-t prior on second differences of log rates
+SMOOTHNESS_DF = 4.0  # Student-t degrees of freedom of the prior on second differences
 ROBUST_ROUNDS = 2  # trim-and-refit rounds before the final fit
 MIN_USABLE_DAYS = 3  # fewer usable days overall -> insufficient_history
 NO_LEVEL_LOG_VAR = 0.2**2  # own rule of thumb: level variance of a day type seen on no usable day
@@ -427,47 +435,36 @@ def _inverse_diagonal(chol: np.ndarray, pen: _Penalty) -> np.ndarray:
     return out
 
 
-def _log_prior(d: np.ndarray, lam: float, prior: tuple | None) -> float:
+def _log_prior(d: np.ndarray, lam: float, nu: float | None) -> float:
     """Log density of the second differences ``d``, up to terms free of lambda and beta.
 
-    ``prior`` is None (Gaussian with precision ``lam``), ``("huber", k)`` (Gaussian centre and
-    Laplace tails beyond ``k`` standard deviations) or ``("t", nu)`` (Student t).
+    Gaussian with precision ``lam`` when ``nu`` is None, else Student t with ``nu`` degrees of
+    freedom and scale ``1/sqrt(lam)``.
     """
-    if prior is None:
+    if nu is None:
         return -0.5 * lam * float(np.dot(d, d))
-    kind, shape = prior
-    if kind == "huber":
-        z = np.abs(d) * math.sqrt(lam)
-        return -float(np.sum(np.where(z <= shape, 0.5 * z * z, shape * z - 0.5 * shape * shape)))
-    return -0.5 * (shape + 1.0) * float(np.sum(np.log1p(lam * d * d / shape)))
+    return -0.5 * (nu + 1.0) * float(np.sum(np.log1p(lam * d * d / nu)))
 
 
-def _prior_weights(d: np.ndarray, lam: float, prior: tuple | None) -> np.ndarray:
+def _prior_weights(d: np.ndarray, lam: float, nu: float | None) -> np.ndarray:
     """Scale-mixture weights ``v``: the prior's gradient is ``-lam * v * d`` (1 if Gaussian)."""
-    if prior is None:
+    if nu is None:
         return np.ones_like(d)
-    kind, shape = prior
-    if kind == "huber":
-        z = np.abs(d) * math.sqrt(lam)
-        return shape / np.maximum(z, shape)
-    return (shape + 1.0) / (shape + lam * d * d)
+    return (nu + 1.0) / (nu + lam * d * d)
 
 
-def _curvature_share(d: np.ndarray, lam: float, prior: tuple | None) -> np.ndarray | float:
-    """Share of the majoriser's curvature ``lam * v`` that the prior really has (floored).
+def _curvature_share(d: np.ndarray, lam: float, nu: float | None) -> np.ndarray | float:
+    """Share of the majoriser's curvature ``lam * v`` that the t prior really has (floored).
 
-    Newton with the true curvature converges in a few steps where the majoriser (IRLS) would
-    need many; the floor keeps the matrix positive definite on sharp features, where the Huber
-    curvature is 0 and the Student-t curvature negative. A line search keeps every step an ascent.
+    The true second derivative of ``(nu + 1)/2 log(1 + lam d^2/nu)`` is
+    ``lam v (nu - lam d^2)/(nu + lam d^2)``. Newton with it converges in a few steps where the
+    majoriser (IRLS) needs hundreds; the floor keeps the matrix positive definite on sharp
+    features, where the true curvature is negative. A line search keeps every step an ascent.
     """
-    if prior is None:
+    if nu is None:
         return 1.0
-    kind, shape = prior
-    if kind == "huber":
-        z = np.abs(d) * math.sqrt(lam)
-        return np.where(z <= shape, 1.0, _CURVATURE_FLOOR)
     x = lam * d * d
-    return np.maximum((shape - x) / (shape + x), _CURVATURE_FLOOR)
+    return np.maximum((nu - x) / (nu + x), _CURVATURE_FLOOR)
 
 
 def _penalised_newton(totals, exposures, inv_phi, lam, nu, beta, pen, *, tol=1e-6, max_iter=200):
@@ -532,7 +529,7 @@ def penalised_log_rate_fit(
     exposures: Any,
     *,
     interval_alpha: float | Any = 0.0,
-    smoothness_df: float | None = None,
+    smoothness_df: float | None = SMOOTHNESS_DF,
     log_penalty: float | None = None,
     log_penalty_bounds: tuple[float, float] | None = None,
     start: np.ndarray | None = None,
@@ -553,8 +550,9 @@ def penalised_log_rate_fit(
         (Weighted) number of intervals observed in each bin.
     interval_alpha : float or array_like
         Interval-level NB alpha (scalar), or per-bin variance inflation phi when an array.
-    smoothness_df : float, optional
-        Degrees of freedom of the Student-t prior on second differences; None = Gaussian.
+    smoothness_df : float or None
+        Degrees of freedom of the Student-t prior on second differences (default as in
+        :func:`fit_baseline`); None = Gaussian, i.e. the plain quadratic penalty.
     log_penalty : float, optional
         Fixed ``log(lambda)``; searched when omitted.
     log_penalty_bounds : (float, float), optional
@@ -1320,7 +1318,7 @@ def _fit_group(Y, X, weights, groups, scheduled, *, min_completeness, start=None
             search = {"bounds": (rho - 0.75, rho + 0.75), "xatol": 0.1}
         else:
             search = {"log_penalty": rho}
-        prof = _fit_profile(totals, exposures, inv_phi, nu=SMOOTHNESS_PRIOR, start=beta, **search)
+        prof = _fit_profile(totals, exposures, inv_phi, nu=SMOOTHNESS_DF, start=beta, **search)
         beta, mu, rho = prof.beta, np.exp(prof.beta), prof.log_penalty
 
         # dispersion on the days and cells of this fit
@@ -1393,7 +1391,8 @@ def _fit_group(Y, X, weights, groups, scheduled, *, min_completeness, start=None
     w_kept = weights[rows]
     d_eff = float(w_kept.sum() ** 2 / np.sum(w_kept**2))
     smoothing = {
-        "method": "cyclic second-difference penalty on per-bin log rates",
+        "method": "per-bin log rates, cyclic second-difference Student-t prior",
+        "prior_df": SMOOTHNESS_DF,
         "criterion": "LAML",
         "penalty": math.exp(prof.log_penalty),
         "log_penalty": prof.log_penalty,
@@ -1732,7 +1731,7 @@ def daily_profile_summary(baseline: Baseline, *, lanes: int) -> dict:
     Returns
     -------
     dict
-        Per day type: ``daily_volume`` (vehicles/day), ``daily_volume_per_lane``,
+        Keyed by day type: ``daily_volume`` (vehicles/day), ``daily_volume_per_lane``,
         ``hourly_volume`` (24 values, vehicles in each local clock hour), ``peak_hour``
         (``start`` "HH:MM", ``start_s`` seconds after local midnight, ``volume`` vehicles,
         ``share_of_day`` = peak-hour volume / daily volume, the K-factor idea, and
@@ -1742,7 +1741,7 @@ def daily_profile_summary(baseline: Baseline, *, lanes: int) -> dict:
     if isinstance(lanes, bool) or not isinstance(lanes, int | np.integer) or lanes < 1:
         raise ValueError("lanes must be a positive integer")
     per_hour = 3600 // baseline.interval_s
-    out: dict[str, Any] = {"interval_s": baseline.interval_s, "lanes": int(lanes), "day_types": {}}
+    out: dict[str, Any] = {}
     for name in DAY_TYPES:
         expected = np.asarray(baseline.profiles[name].expected, dtype=float)
         daily = float(expected.sum())
@@ -1757,7 +1756,7 @@ def daily_profile_summary(baseline: Baseline, *, lanes: int) -> dict:
             quarters = expected[start_bin:start_bin + per_hour].reshape(4, per_quarter).sum(axis=1)
             phf = float(volume / (4.0 * quarters.max()))
         start_s = start_bin * baseline.interval_s
-        out["day_types"][name] = {
+        out[name] = {
             "fitted_from": baseline.profiles[name].fitted_from,
             "daily_volume": daily,
             "daily_volume_per_lane": daily / int(lanes),
