@@ -142,7 +142,73 @@ def bench_ingest(repeats: int) -> None:
     print(f"  ratio bare/HTTP      {b / h:>10.2f}x   (target <= 3x; target HTTP >= 20,000 counts/s)")
 
 
-SECTIONS = {"ingest": bench_ingest}
+def synthetic_history(n_detectors: int, days: int, seed: int = 11):
+    """5-minute counts with two peaks, a weekend shape and gamma day factors (numpy only)."""
+    import numpy as np
+
+    rng = np.random.default_rng(seed)
+    start = int(datetime(2026, 9, 7, 5, 0, tzinfo=UTC).timestamp())  # Mon 00:00 -05:00
+    t = start + 300 * np.arange(days * 288, dtype=np.int64)
+    hour = ((t - start) % 86400) / 3600.0
+    dow = ((t - start) // 86400) % 7
+    shape = (0.15 + np.exp(-0.5 * ((hour - 8) / 1.0) ** 2) + 0.9 * np.exp(-0.5 * ((hour - 17) / 1.3) ** 2)
+             + 0.4 * np.exp(-0.5 * ((hour - 12.5) / 2.5) ** 2))
+    shape = np.where(dow >= 5, 0.7 * (0.15 + 0.8 * np.exp(-0.5 * ((hour - 13) / 3) ** 2)), shape)
+    for d in range(n_detectors):
+        level = rng.uniform(5, 60)
+        day_factor = rng.gamma(50, 1 / 50, size=days).repeat(288)
+        yield f"B{d:04d}", t, rng.poisson(level * shape * day_factor)
+
+
+def bench_fit(repeats: int) -> None:
+    from service import baseline as bl
+    from service import fitting
+
+    n_det, days = 1000, 56
+    print(f"== fit: {n_det:,} detectors x {days} days of 5-minute counts "
+          f"({n_det * days * 288 / 1e6:.1f} M counts) in SQLite, `tallyward fit --workers 2` path ==")
+    with tempfile.TemporaryDirectory() as tmp:
+        url = fresh_db(Path(tmp), "fit.db", n_det)
+        conn = sqlite3.connect(url.removeprefix("sqlite:///"), isolation_level=None)
+        conn.execute("PRAGMA journal_mode=WAL")
+        conn.execute("PRAGMA synchronous=OFF")
+        t0 = time.perf_counter()
+        sample = None
+        for det, t, c in synthetic_history(n_det, days):
+            conn.execute("BEGIN")
+            conn.executemany("INSERT INTO counts VALUES (?, ?, ?, 0.0)",
+                             zip([det] * t.size, t.tolist(), c.tolist(), strict=True))
+            conn.execute("COMMIT")
+            if sample is None:
+                sample = (t, c)
+        conn.close()
+        print(f"  (setup: loaded in {time.perf_counter() - t0:.0f} s)")
+        settings = Settings(database_url=url)
+        engine = make_engine(settings)
+        as_of = int(sample[0][-1]) + 300
+        runs = []
+        for _ in range(max(1, repeats - 1)):
+            t0 = time.perf_counter()
+            results = fitting.fit_many(settings, engine, as_of_s=as_of, workers=2)
+            runs.append(time.perf_counter() - t0)
+            assert sum(r["status"] == "fitted" for r in results) == n_det
+        engine.dispose()
+        pure = []
+        for _ in range(20):
+            t0 = time.perf_counter()
+            bl.fit_baseline(sample[0], sample[1], interval_s=300, timezone="America/Chicago",
+                            holiday_calendar="US", as_of_s=as_of)
+            pure.append(time.perf_counter() - t0)
+    total = statistics.median(runs)
+    one = statistics.median(pure)
+    print(f"  fit whole network     {total:>8.1f} s   (median of {len(runs)}: "
+          + ", ".join(f"{x:.1f}" for x in runs) + "; target < 60 s)")
+    print(f"  per detector          {total / n_det * 1000:>8.1f} ms wall with 2 processes")
+    print(f"  pure fit, in memory   {one * 1000:>8.1f} ms per detector (median of 20, one core)")
+    print(f"  ideal (pure fit / 2 cores) {one * n_det / 2:>5.1f} s; ratio {total / (one * n_det / 2):.2f}x")
+
+
+SECTIONS = {"ingest": bench_ingest, "fit": bench_fit}
 
 
 def main() -> None:

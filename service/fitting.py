@@ -8,6 +8,7 @@ work over processes; each opens its own database connection.
 
 from __future__ import annotations
 
+import itertools
 import time
 from collections.abc import Callable, Sequence
 from concurrent.futures import ProcessPoolExecutor, as_completed
@@ -28,13 +29,17 @@ DAY_S = 86_400
 def _load_history(conn: Connection, detector_id: str, lo: int, hi: int
                   ) -> tuple[np.ndarray, np.ndarray]:
     mark = "?" if conn.dialect.name == "sqlite" else "%s"  # the driver's own placeholder
-    rows = conn.exec_driver_sql(
-        f"SELECT start_s, count FROM counts WHERE detector_id = {mark} AND start_s >= {mark} "
-        f"AND start_s < {mark} ORDER BY start_s", (detector_id, lo, hi)).fetchall()
-    if not rows:
-        return np.empty(0, np.int64), np.empty(0, np.int64)
-    arr = np.array(rows, dtype=np.int64)
-    return arr[:, 0], arr[:, 1]
+    # The raw driver cursor: SQLAlchemy Row objects cost ~20x more per value here.
+    cur = conn.connection.driver_connection.cursor()  # type: ignore[union-attr]
+    try:
+        cur.execute(f"SELECT start_s, count FROM counts WHERE detector_id = {mark} AND "
+                    f"start_s >= {mark} AND start_s < {mark} ORDER BY start_s",
+                    (detector_id, lo, hi))
+        flat = np.fromiter(itertools.chain.from_iterable(cur.fetchall()), dtype=np.int64)
+    finally:
+        cur.close()
+    pairs = flat.reshape(-1, 2)
+    return pairs[:, 0].copy(), pairs[:, 1].copy()
 
 
 def _excluded(conn: Connection, detector_id: str, start_s: np.ndarray, lo: int, hi: int
