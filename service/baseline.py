@@ -124,6 +124,7 @@ _CURVATURE_FLOOR = 0.1
 _UNIX_EPOCH_ORDINAL = date(1970, 1, 1).toordinal()
 _OFFSET_PROBE_S = 6 * 3600
 _GRID_CHUNK = 1 << 16
+_SEARCH_STEP = 1.5  # log(lambda) step of the LAML search walk
 
 
 # ---------------------------------------------------------------------------------------------
@@ -597,8 +598,19 @@ def penalised_log_rate_fit(
     return fit.beta, var, smoothing
 
 
-def _fit_profile(totals, exposures, inv_phi, *, nu, log_penalty=None, bounds=None, start=None,
-                 xatol=0.05) -> _ProfileFit:
+def _default_log_penalty(totals: np.ndarray, inv_phi: np.ndarray) -> float:
+    """Starting guess for log(lambda): typical fits land 2-7 above log(mean information)."""
+    return math.log(max(float(np.mean(totals * inv_phi)), 1e-12)) + 4.0
+
+
+def _fit_profile(totals, exposures, inv_phi, *, nu, log_penalty=None, guess=None, bounds=None,
+                 start=None, xatol=0.1) -> _ProfileFit:
+    """Profile fit at a fixed ``log_penalty``, or with ``log(lambda)`` maximising LAML.
+
+    The search walks from ``guess`` in steps of :data:`_SEARCH_STEP` (each fit warm-started
+    from the previous one, so each takes a few Newton steps) until LAML falls, then refines
+    the bracket by bounded Brent; ``bounds`` instead searches that interval by Brent alone.
+    """
     n = totals.size
     pen = _cyclic_penalty(n)
     if not np.all(np.isfinite(totals)) or not np.all(np.isfinite(exposures)):
@@ -607,8 +619,12 @@ def _fit_profile(totals, exposures, inv_phi, *, nu, log_penalty=None, bounds=Non
         raise _FitError("no vehicles counted")
     beta = _start_beta(totals, exposures) if start is None else np.array(start, dtype=float)
     state: dict[str, Any] = {"beta": beta, "best": None}
+    seen: dict[float, float] = {}
 
     def evaluate(rho: float) -> float:
+        rho = float(rho)
+        if rho in seen:
+            return seen[rho]
         lam = math.exp(rho)
         b, objective, chol, w = _penalised_newton(
             totals, exposures, inv_phi, lam, nu, state["beta"], pen
@@ -618,24 +634,33 @@ def _fit_profile(totals, exposures, inv_phi, *, nu, log_penalty=None, bounds=Non
         best = state["best"]
         if best is None or laml > best[0]:
             state["best"] = (laml, rho, b, chol, w)
+        seen[rho] = -laml
         return -laml
 
     if log_penalty is not None:
         evaluate(float(log_penalty))
+    elif bounds is not None:
+        optimize.minimize_scalar(evaluate, bounds=bounds, method="bounded", options={"xatol": xatol})
     else:
-        if bounds is None:
-            scale = math.log(max(float(np.mean(exposures * np.exp(beta) * inv_phi)), 1e-12))
-            bounds = (scale - 6.0, scale + 14.0)
-        for _ in range(4):  # widen when the optimum sits on a bound
-            res = optimize.minimize_scalar(evaluate, bounds=bounds, method="bounded",
-                                           options={"xatol": xatol})
-            width = bounds[1] - bounds[0]
-            if res.x - bounds[0] < 2 * xatol and bounds[0] > -60.0:
-                bounds = (bounds[0] - width, bounds[0] + 2 * xatol)
-            elif bounds[1] - res.x < 2 * xatol and bounds[1] < 80.0:
-                bounds = (bounds[1] - 2 * xatol, bounds[1] + width)
-            else:
-                break
+        rho = _default_log_penalty(totals, inv_phi) if guess is None else float(guess)
+        step = _SEARCH_STEP
+        here = evaluate(rho)
+        if evaluate(rho + step) < here:
+            direction = 1.0
+        elif evaluate(rho - step) < here:
+            direction = -1.0
+        else:
+            direction = 0.0
+        if direction:
+            rho += direction * step
+            here = seen[rho]
+            for _ in range(40):  # LAML is flat far out; 40 steps span e^+-60 in lambda
+                ahead = evaluate(rho + direction * step)
+                if ahead >= here:
+                    break
+                rho, here = rho + direction * step, ahead
+        optimize.minimize_scalar(evaluate, bounds=(rho - step, rho + step), method="bounded",
+                                 options={"xatol": xatol})
     laml, rho, b, chol, w = state["best"]
     return _ProfileFit(beta=b, log_penalty=rho, laml=laml, chol=chol, info=w)
 
@@ -1324,18 +1349,21 @@ def _fit_group(Y, X, weights, groups, scheduled, *, min_completeness, start=None
         totals = weights @ (Y * keep)
         exposures = (weights * g_fit) @ Xk
         final = round_ == ROBUST_ROUNDS
-        if round_ == 0:  # wide, coarse search; then keep lambda while trimming; refine at the end
-            search = {"xatol": 0.25}
-        elif final:
-            search = {"bounds": (rho - 0.75, rho + 0.75), "xatol": 0.1}
+        # a rough fit at a typical lambda is enough to steer the first trimming; lambda is then
+        # chosen on trimmed data with interval-level weights, and kept for the final fit
+        if round_ == 0:
+            search = {"log_penalty": _default_log_penalty(totals, inv_phi)}
+        elif round_ == 1:
+            search = {"guess": rho}
         else:
             search = {"log_penalty": rho}
-        try:
-            prof = _fit_profile(totals, exposures, inv_phi, nu=nu, start=beta, **search)
+        try:  # round 0 is quadratic: convex, a few Newton steps from any start
+            prof = _fit_profile(totals, exposures, inv_phi, nu=nu if round_ else None, start=beta,
+                                **search)
         except _FitError:
             if nu is None:
                 raise
-            nu, search = None, {"xatol": 0.25}  # the quadratic penalty is convex: always fits
+            nu, search = None, {}  # the quadratic penalty is convex: it always fits
             prof = _fit_profile(totals, exposures, inv_phi, nu=None, start=None, **search)
         beta, mu, rho = prof.beta, np.exp(prof.beta), prof.log_penalty
 
