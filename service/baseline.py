@@ -9,10 +9,11 @@ For each day type (weekday, saturday, sunday_holiday) the count of interval ``b`
     y[d, b] ~ Poisson(g[d] * h[d, b] * mu[b] * e[d, b])
 
 where ``mu[b]`` is the expected volume (vehicles per interval) of local time-of-day bin ``b``,
-``e[d, b]`` the number of intervals observed in that bin on that day (0 = missing, 2 for the repeated
-hour of a fall-back day), ``g[d]`` a gamma day factor with mean 1 and variance ``day_alpha`` (whole
-days high or low) and ``h`` an independent gamma interval factor with variance ``interval_alpha``
-(the remaining interval-level excess). ``day_alpha = interval_alpha = 0`` is the Poisson model.
+``e[d, b]`` the number of intervals observed in that bin on that day (0 = missing, 2 for the
+repeated hour of a fall-back day), ``g[d]`` a gamma day factor with mean 1 and variance
+``day_alpha`` (whole days high or low) and ``h`` an independent gamma interval factor with
+variance ``interval_alpha`` (the remaining interval-level excess). ``day_alpha = interval_alpha
+= 0`` is the Poisson model.
 
 Time-of-day profile
     ``log mu`` is one free parameter per bin, fitted by penalised Poisson maximum likelihood from
@@ -36,8 +37,11 @@ Choice of smoothness
     scale-mixture weights. Bins are stored in a folded order (0, n-1, 1, n-2, ...) in which the
     cyclic ``D'VD`` is a band of half-width 4, so ``H`` has a banded Cholesky factor costing O(n)
     and giving ``log|H|`` for free (GCV/UBRE would also need ``trace(H^-1 W)`` at every trial
-    ``lambda``). Interval-level overdispersion enters as fixed quasi-likelihood variance weights
-    ``1 / (1 + interval_alpha * mu)`` from the previous round.
+    ``lambda``). The search walks ``log(lambda)`` in steps of 1.5 from a typical value, warm
+    starting each fit, then refines the bracket by Brent. Interval-level overdispersion enters as
+    fixed quasi-likelihood variance weights ``1 / (1 + interval_alpha * mu)`` from the previous
+    round. The heavy-tailed posterior is not log-concave: the mode found is the one reached from
+    the quadratic-penalty fit of the first round.
 
 Overdispersion
     ``interval_alpha`` comes from interval counts given each day's estimated factor (Pearson
@@ -54,12 +58,14 @@ Overdispersion
 
 Robustness
     Fit, then trim and refit (:data:`ROBUST_ROUNDS` rounds, each trim decided afresh from the
-    latest fit): runs of zeros too improbable under the model (stuck detector), single intervals with
-    an NB deviance residual beyond :data:`TRIM_RESIDUAL` (given the day factor), and whole days whose
-    ratio of observed to expected total is far from the median of their day type (more than
-    :data:`DAY_RATIO_MADS` robust standard deviations and more than a factor 1.5). Days left with
-    less than ``min_completeness`` of their scheduled intervals are dropped. Partial-day inflation
-    (for example two hours of chatter at moderate volume) is not always caught: intervals inside
+    latest fit; the first fit is a quick quadratic-penalty one at a typical lambda, lambda is
+    chosen in the second and kept for the final fit). Trimmed are runs of zeros too improbable
+    under the model (stuck detector), single intervals with an NB deviance residual beyond
+    :data:`TRIM_RESIDUAL` (given the day factor), and whole days whose ratio of observed to
+    expected total is far from the median of their day type (more than :data:`DAY_RATIO_MADS`
+    robust standard deviations and more than a factor 1.5). Days left with less than
+    ``min_completeness`` of their scheduled intervals are dropped. Partial-day inflation (for
+    example two hours of chatter at moderate volume) is not always caught: intervals inside
     alerts already raised should be passed as ``exclude``.
 
 Uncertainty
@@ -157,7 +163,8 @@ def _check_interval(interval_s: Any) -> int:
     interval_s = int(interval_s)
     if interval_s <= 0 or 3600 % interval_s:
         raise ValueError(
-            f"interval_s must divide one hour (3600 s) exactly, e.g. 60, 300 or 900; got {interval_s}"
+            "interval_s must divide one hour (3600 s) exactly, e.g. 60, 300 or 900; "
+            f"got {interval_s}"
         )
     return interval_s
 
@@ -165,7 +172,9 @@ def _check_interval(interval_s: Any) -> int:
 @functools.lru_cache(maxsize=64)
 def _zone(timezone: str) -> ZoneInfo:
     if not isinstance(timezone, str) or not timezone.strip():
-        raise ValueError(f"timezone must be an IANA time zone name such as 'America/Chicago', got {timezone!r}")
+        raise ValueError(
+            f"timezone must be an IANA time zone name such as 'America/Chicago', got {timezone!r}"
+        )
     try:
         return ZoneInfo(timezone)
     except (KeyError, ValueError, OSError):
@@ -195,8 +204,8 @@ def _holiday_days(key: tuple[str, str | None], first_year: int, last_year: int) 
     except (NotImplementedError, KeyError, ValueError, AttributeError):
         name = country if subdivision is None else f"{country}-{subdivision}"
         raise ValueError(
-            f"unknown holiday calendar {name!r}: expected an ISO 3166 country code with an optional "
-            "subdivision known to the holidays package, e.g. 'US' or 'US-CO'"
+            f"unknown holiday calendar {name!r}: expected an ISO 3166 country code with an "
+            "optional subdivision known to the holidays package, e.g. 'US' or 'US-CO'"
         ) from None
     days = np.array(sorted(d.toordinal() - _UNIX_EPOCH_ORDINAL for d in calendar), dtype=np.int64)
     days.setflags(write=False)
@@ -215,7 +224,7 @@ def _offset_segments(first_s: int, last_s: int, zone: ZoneInfo) -> tuple[np.ndar
     bisection, so zoneinfo is called O(range / 6 h) times, never per interval.
     """
     if last_s - first_s > 1000 * 366 * SECONDS_PER_DAY:
-        raise ValueError("interval starts span more than 1000 years; check the units (epoch seconds)")
+        raise ValueError("interval starts span over 1000 years; check the units (epoch seconds)")
     g0 = first_s - first_s % _OFFSET_PROBE_S
     probes = range(g0, last_s + _OFFSET_PROBE_S, _OFFSET_PROBE_S)
     offsets = [_utc_offset_s(zone, t) for t in probes]
@@ -234,7 +243,9 @@ def _offset_segments(first_s: int, last_s: int, zone: ZoneInfo) -> tuple[np.ndar
     return np.array(starts, dtype=np.int64), np.array(values, dtype=np.int64)
 
 
-def _day_type_table(first_day: int, last_day: int, calendar: tuple[str, str | None] | None) -> np.ndarray:
+def _day_type_table(
+    first_day: int, last_day: int, calendar: tuple[str, str | None] | None
+) -> np.ndarray:
     days = np.arange(first_day, last_day + 1, dtype=np.int64)
     weekday = (days + 3) % 7  # 1970-01-01 was a Thursday; Monday = 0
     table = np.zeros(days.size, dtype=np.int8)
@@ -303,7 +314,8 @@ def local_time_grid(
     first_s, last_s = int(t.min()), int(t.max())
     seg_start, seg_offset = _offset_segments(first_s, last_s, zone)
     first_day = (first_s + int(seg_offset.min())) // SECONDS_PER_DAY
-    table = _day_type_table(first_day, (last_s + int(seg_offset.max())) // SECONDS_PER_DAY, calendar)
+    last_day = (last_s + int(seg_offset.max())) // SECONDS_PER_DAY
+    table = _day_type_table(first_day, last_day, calendar)
     bins = np.empty(t.size, dtype=np.int32)
     day_type = np.empty(t.size, dtype=np.int8)
     local_day = np.empty(t.size, dtype=np.int32)
@@ -320,7 +332,9 @@ def local_time_grid(
     return TimeGrid(bin=bins, day_type=day_type, local_day=local_day)
 
 
-def scheduled_intervals(window_start_s: int, window_end_s: int, *, interval_s: int, phase_s: int = 0) -> np.ndarray:
+def scheduled_intervals(
+    window_start_s: int, window_end_s: int, *, interval_s: int, phase_s: int = 0
+) -> np.ndarray:
     """Interval starts a detector should report in ``[window_start_s, window_end_s)``.
 
     Parameters
@@ -640,7 +654,8 @@ def _fit_profile(totals, exposures, inv_phi, *, nu, log_penalty=None, guess=None
     if log_penalty is not None:
         evaluate(float(log_penalty))
     elif bounds is not None:
-        optimize.minimize_scalar(evaluate, bounds=bounds, method="bounded", options={"xatol": xatol})
+        optimize.minimize_scalar(evaluate, bounds=bounds, method="bounded",
+                                 options={"xatol": xatol})
     else:
         rho = _default_log_penalty(totals, inv_phi) if guess is None else float(guess)
         step = _SEARCH_STEP
@@ -680,7 +695,7 @@ def poisson_irls(
     max_iter: int = 100,
     tol: float = 1e-12,
 ) -> tuple[np.ndarray, np.ndarray]:
-    """Poisson GLM with log link and offset ``log(exposure)`` by iteratively reweighted least squares.
+    """Poisson GLM, log link, offset ``log(exposure)``, by iteratively reweighted least squares.
 
     Maximises ``sum(weights * (y*eta - exposure*exp(eta))) - 1/2 coef' penalty coef`` with
     ``eta = X @ coef``.
@@ -1191,7 +1206,9 @@ class Baseline:
         )
         object.__setattr__(self, "_table", stacked + alphas)
 
-    def expected_for(self, day_type: Any, bin: Any) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    def expected_for(
+        self, day_type: Any, bin: Any
+    ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
         """Expected volume and its uncertainty for day-type codes and bins (vectorised).
 
         Parameters
@@ -1209,7 +1226,9 @@ class Baseline:
         code = np.asarray(day_type, dtype=np.intp)
         b = np.asarray(bin, dtype=np.intp)
         expected, log_se, day_alpha, interval_alpha = self._table
-        return expected[code, b], log_se[code, b], day_alpha[code] + 0.0 * b, interval_alpha[code] + 0.0 * b
+        zero = np.zeros(np.broadcast(code, b).shape)
+        return (expected[code, b], log_se[code, b], day_alpha[code] + zero,
+                interval_alpha[code] + zero)
 
     def to_dict(self) -> dict:
         """JSON-safe dictionary (lists, floats, ints, strings)."""
@@ -1601,7 +1620,9 @@ def fit_baseline(
     sel = (t >= window_start) & (t < window_end) & ~ex
     t, y = t[sel], y[sel]
     if t.size == 0:
-        return insufficient(f"no observed intervals in the window (need at least {need_days} usable days)")
+        return insufficient(
+            f"no observed intervals in the window (need at least {need_days} usable days)"
+        )
     t, first = np.unique(t, return_index=True)
     y = y[first]
     phase = int(np.bincount((t % interval_s).astype(np.intp)).argmax())
@@ -1648,8 +1669,9 @@ def fit_baseline(
         weights = 0.5 ** (age_s / (half_life_days * SECONDS_PER_DAY))
 
     if Y.sum() <= 0:
-        return FitResult(status="failed", reason="no vehicles counted on any usable day in the window "
-                         "(a dead detector has no baseline)", baseline=None)
+        return FitResult(status="failed", baseline=None, reason=(
+            "no vehicles counted on any usable day in the window "
+            "(a dead detector has no baseline)"))
     try:
         return _assemble(Y, X, weights, types, sched_days, interval_s=interval_s,
                          bins_per_day=bins_per_day, min_days_per_type=min_days_per_type,
@@ -1679,7 +1701,8 @@ def _assemble(Y, X, weights, types, sched_days, *, interval_s, bins_per_day, min
             reasons[code] = f"fit failed ({exc})"
             continue
         if fit.day_keep.sum() < min_days_per_type:
-            reasons[code] = f"{int(fit.day_keep.sum())} days left after trimming (need {min_days_per_type})"
+            kept = int(fit.day_keep.sum())
+            reasons[code] = f"{kept} days left after trimming (need {min_days_per_type})"
             continue
         fits[code] = fit
 

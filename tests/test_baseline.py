@@ -98,7 +98,7 @@ def _cyclic_penalty_dense(n: int) -> np.ndarray:
 @pytest.mark.parametrize("timezone", [CHICAGO, "Europe/London", "Asia/Kathmandu",
                                       "Australia/Lord_Howe", "UTC"])
 def test_local_time_grid_matches_zoneinfo_element_by_element(timezone):
-    """Bins, local dates and weekday/weekend types agree with datetime.fromtimestamp per interval."""
+    """Bins, local dates and weekend day types agree with datetime.fromtimestamp per interval."""
     rng = np.random.default_rng(11)
     t = rng.integers(_epoch("2000-01-01T00:00", "UTC"), _epoch("2040-01-01T00:00", "UTC"), 4000)
     t = t - t % 60  # minute-aligned starts
@@ -136,7 +136,7 @@ def test_fall_back_day_maps_two_intervals_to_each_repeated_bin():
 
 
 def test_holidays_and_weekends_get_their_day_types():
-    """Thanksgiving 2026-11-26 is sunday_holiday with calendar "US", a weekday without; Sat is saturday."""
+    """Thanksgiving 2026-11-26 is sunday_holiday under "US", a weekday without; Sat is saturday."""
     days = ["2026-11-25", "2026-11-26", "2026-11-27", "2026-11-28", "2026-11-29"]
     t = np.array([_epoch(f"{d}T12:00") for d in days])
     with_us = bl.local_time_grid(t, interval_s=300, timezone=CHICAGO, holiday_calendar="US")
@@ -189,7 +189,7 @@ def test_poisson_irls_matches_statsmodels_glm_with_offset():
 
 
 def test_profile_from_bin_totals_equals_interval_level_penalised_glm():
-    """The sufficient-statistics fit equals a penalised GLM on every single interval (same lambda)."""
+    """The fit from bin totals equals a penalised GLM on every single interval (same lambda)."""
     rng = np.random.default_rng(5)
     n_bins, n_days = 24, 30
     truth = 5 + 40 * _bump(np.arange(n_bins) + 0.5, 8.0, 2.0)
@@ -236,7 +236,7 @@ def test_student_t_profile_is_a_mode_of_its_penalised_likelihood():
 
 
 def test_sharp_quarter_hour_peak_survives_and_quiet_bins_stay_positive():
-    """A 3-bin peak at 1.8x keeps its height and edges; zero-total night bins get small rates > 0."""
+    """A 3-bin peak at 1.8x keeps height and edges; zero-total night bins get small rates > 0."""
     rng = np.random.default_rng(21)
     truth = _rhythm(300)[0].copy()
     truth[:48] = 0.02  # 00:00-04:00 almost empty: most bin totals are 0
@@ -320,7 +320,7 @@ def _weekday_only_history(rng, *, days, interval_s, day_alpha, interval_alpha):
 
 
 def test_dispersion_estimators_recover_known_day_and_interval_alpha():
-    """day_alpha = 0.02 and interval_alpha = 0.05 are recovered from three years of 15-min counts."""
+    """day_alpha 0.02 and interval_alpha 0.05 are recovered from three years of 15-min counts."""
     rng = np.random.default_rng(29)
     t, counts, end = _weekday_only_history(rng, days=3 * 364, interval_s=900, day_alpha=0.02,
                                            interval_alpha=0.05)
@@ -468,7 +468,7 @@ def test_end_to_end_predictive_intervals_cover_95_percent_of_held_out_counts(bus
 
 
 def test_end_to_end_robust_fit_is_not_dragged_by_faulty_days(busy_detector):
-    """Faulty days are trimmed; the fit equals one with those days excluded by hand to within 1 %."""
+    """Faulty days are trimmed; the fit equals one with them excluded by hand to within 1 %."""
     d = busy_detector
     base = d["fit"].baseline
     assert base.days_trimmed >= 3
@@ -656,14 +656,15 @@ def test_expected_for_looks_up_codes_and_bins_vectorised():
     """expected_for broadcasts day-type codes and bins and returns each profile's alphas."""
     expected = [np.arange(1.0, 25.0), np.arange(1.0, 25.0) * 2, np.arange(1.0, 25.0) * 3]
     base = _flat_baseline(expected, 3600)
-    mu, log_se, day_alpha, interval_alpha = base.expected_for(np.array([0, 1, 2]), np.array([0, 5, 23]))
+    codes, bins = np.array([0, 1, 2]), np.array([0, 5, 23])
+    mu, log_se, day_alpha, interval_alpha = base.expected_for(codes, bins)
     np.testing.assert_array_equal(mu, [1.0, 12.0, 72.0])
     np.testing.assert_array_equal(log_se, [0.01, 0.01, 0.01])
     assert day_alpha.shape == (3,) and interval_alpha.shape == (3,)
 
 
 def test_local_time_grid_handles_a_month_of_one_minute_starts_across_dst():
-    """A month of 1-minute starts across the fall-back change gives one bin count per local minute."""
+    """A month of 1-minute starts across the fall-back change: one count per local minute."""
     t = np.arange(_epoch("2026-10-15T00:00"), _epoch("2026-11-15T00:00"), 60)
     grid = bl.local_time_grid(t, interval_s=60, timezone=CHICAGO, holiday_calendar="US")
     per_day = np.bincount(grid.local_day - grid.local_day.min())
