@@ -188,6 +188,25 @@ def test_poisson_irls_matches_statsmodels_glm_with_offset():
     np.testing.assert_allclose(cov, ref.cov_params(), rtol=1e-5)
 
 
+@pytest.mark.parametrize("n_bins", [24, 25, 288])
+def test_folded_band_storage_holds_the_dense_cyclic_hessian(n_bins):
+    """The banded (folded-order) Hessian equals diag(w) + lambda D' diag(v) D built densely."""
+    rng = np.random.default_rng(n_bins)
+    w, v = rng.uniform(0, 50, n_bins), rng.uniform(0.05, 1.0, n_bins)
+    d = np.zeros((n_bins, n_bins))
+    for i in range(n_bins):
+        d[i, [(i - 1) % n_bins, i, (i + 1) % n_bins]] += [1.0, -2.0, 1.0]
+    dense = np.diag(w) + 3.0 * d.T @ np.diag(v) @ d
+    pen = bl._cyclic_penalty(n_bins)
+    bands = bl._hessian_bands(w, v, 3.0, pen)
+    rebuilt = np.zeros((n_bins, n_bins))
+    for k in range(5):
+        j = np.arange(n_bins - k)
+        rebuilt[pen.perm[j + k], pen.perm[j]] = bands[k, : n_bins - k]
+        rebuilt[pen.perm[j], pen.perm[j + k]] = bands[k, : n_bins - k]
+    np.testing.assert_allclose(rebuilt, dense, rtol=0, atol=1e-12)
+
+
 def test_profile_from_bin_totals_equals_interval_level_penalised_glm():
     """The fit from bin totals equals a penalised GLM on every single interval (same lambda)."""
     rng = np.random.default_rng(5)
