@@ -36,7 +36,7 @@ import orjson
 from sqlalchemy import Connection, Engine, delete, func, or_, select, update
 
 from . import baseline as bl
-from . import models
+from . import models, scoring
 from .config import Settings
 from .db import is_sqlite, read_transaction, write_transaction
 
@@ -324,7 +324,52 @@ def evaluate_piece(info: DetectorInfo, base: bl.Baseline, grid: np.ndarray, valu
                    present: np.ndarray, warm: Any, settings: Settings
                    ) -> tuple[dict[str, np.ndarray], dict[str, np.ndarray], np.ndarray, Any]:
     """Flags and log p-values per kind for one stretch of consecutive intervals."""
-    raise NotImplementedError
+    step = info.interval_s
+    tg = bl.local_time_grid(grid, interval_s=step, timezone=info.timezone,
+                            holiday_calendar=info.holiday_calendar)
+    mu, log_se, day_alpha, interval_alpha = base.expected_for(tg.day_type, tg.bin)
+    thresholds = thresholds_for(base, info, settings)
+    cap = scoring.capacity_cap(info.road_class, lanes=info.lanes, interval_s=step,
+                               per_lane_hourly=info.capacity_per_lane_h)
+    state = scoring.WarmState.from_dict(warm) if warm is not None else None
+    ev = scoring.score_timeline(int(grid[0]), values, present, mu, log_se, day_alpha,
+                                interval_alpha, interval_s=step, cap=cap,
+                                thresholds=thresholds, warm_state=state)
+    flags = {k: np.asarray(ev.flag[k], bool) for k in KINDS}
+    log_p = {k: np.asarray(ev.log_p[k], float) for k in KINDS}
+    return flags, log_p, np.asarray(mu, float), ev.warm_state.to_dict()
+
+
+_THRESHOLDS: dict[tuple[int, str, float], scoring.Thresholds] = {}
+
+
+def thresholds_for(base: bl.Baseline, info: DetectorInfo, settings: Settings
+                   ) -> scoring.Thresholds:
+    """Every test's threshold for this detector and baseline, from the false-alert budget."""
+    key = (id(base), info.detector_id, settings.false_alerts_per_week)
+    cached = _THRESHOLDS.get(key)
+    if cached is not None:
+        return cached
+    week = []
+    for code in (0, 0, 0, 0, 0, 1, 2):  # five weekdays, a Saturday, a Sunday
+        bins = np.arange(base.bins_per_day)
+        week.append(base.expected_for(np.full(bins.size, code), bins))
+    mu_week, log_se, day_alpha, interval_alpha = (np.concatenate([w[i] for w in week])
+                                                  for i in range(4))
+    # Share of scheduled intervals that went unreported on the days the fit used.
+    own_days = [p.days_used for name, p in base.profiles.items() if p.fitted_from == name]
+    scheduled = max(1, (sum(own_days) or max(p.days_used for p in base.profiles.values()))
+                    * base.bins_per_day)
+    missing_rate = float(np.clip(1.0 - (base.intervals_used + base.intervals_trimmed)
+                                 / scheduled, 0.002, 0.5))
+    thresholds = scoring.Thresholds.from_budget(
+        settings.false_alerts_per_week, interval_s=info.interval_s, mu_week=mu_week,
+        interval_alpha=interval_alpha, day_alpha=day_alpha, log_se=log_se,
+        missing_rate=missing_rate)
+    if len(_THRESHOLDS) > 20_000:
+        _THRESHOLDS.clear()
+    _THRESHOLDS[key] = thresholds
+    return thresholds
 
 
 # ----------------------------------------------------------------------------- episodes
