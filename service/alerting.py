@@ -21,6 +21,7 @@ until commit makes commit order equal ``seq`` order.
 
 from __future__ import annotations
 
+import dataclasses
 import logging
 import math
 import threading
@@ -231,6 +232,7 @@ class Scored:
     end_s: int
     rows: list[dict[str, Any]] = field(default_factory=list)
     warm_state: Any = None
+    new_thresholds: scoring.Thresholds | None = None
 
 
 def plan_segments(claim: Claim, info: DetectorInfo, *, latest_present_s: int | None,
@@ -293,8 +295,14 @@ def score_claims(conn: Connection, claims: Sequence[Claim], clock: float,
             out.append(Scored(info, claim.baseline_id, -1, -1, warm_state=claim.warm_state))
             continue
         base = load_baseline(conn, claim.baseline_id)
+        thresholds = cached_thresholds(conn, claim.baseline_id, settings.false_alerts_per_week)
+        new_thresholds = None
+        if thresholds is None:
+            thresholds = new_thresholds = thresholds_for(base, info, settings)
+            remember_thresholds(claim.baseline_id, thresholds)
         starts, counts = data.get(info.detector_id, (np.empty(0, np.int64), np.empty(0, np.int64)))
-        scored = Scored(info, claim.baseline_id, pieces[0][1], pieces[-1][2])
+        scored = Scored(info, claim.baseline_id, pieces[0][1], pieces[-1][2],
+                        new_thresholds=new_thresholds)
         for run_from, keep_from, end, warm in pieces:
             grid = np.arange(run_from, end, info.interval_s, dtype=np.int64)
             pos = np.searchsorted(grid, starts)
@@ -305,7 +313,7 @@ def score_claims(conn: Connection, claims: Sequence[Claim], clock: float,
             present[pos[inside]] = True
             values[pos[inside]] = counts[inside]
             flags, log_p, mu, state = evaluate_piece(info, base, grid, values, present, warm,
-                                                     settings)
+                                                     thresholds)
             keep = grid >= keep_from
             for kind in KINDS:
                 hit = np.flatnonzero(flags[kind] & keep)
@@ -321,14 +329,13 @@ def score_claims(conn: Connection, claims: Sequence[Claim], clock: float,
 
 
 def evaluate_piece(info: DetectorInfo, base: bl.Baseline, grid: np.ndarray, values: np.ndarray,
-                   present: np.ndarray, warm: Any, settings: Settings
+                   present: np.ndarray, warm: Any, thresholds: scoring.Thresholds
                    ) -> tuple[dict[str, np.ndarray], dict[str, np.ndarray], np.ndarray, Any]:
     """Flags and log p-values per kind for one stretch of consecutive intervals."""
     step = info.interval_s
     tg = bl.local_time_grid(grid, interval_s=step, timezone=info.timezone,
                             holiday_calendar=info.holiday_calendar)
     mu, log_se, day_alpha, interval_alpha = base.expected_for(tg.day_type, tg.bin)
-    thresholds = thresholds_for(base, info, settings)
     cap = scoring.capacity_cap(info.road_class, lanes=info.lanes, interval_s=step,
                                per_lane_hourly=info.capacity_per_lane_h)
     state = scoring.WarmState.from_dict(warm) if warm is not None else None
@@ -340,16 +347,43 @@ def evaluate_piece(info: DetectorInfo, base: bl.Baseline, grid: np.ndarray, valu
     return flags, log_p, np.asarray(mu, float), ev.warm_state.to_dict()
 
 
-_THRESHOLDS: dict[tuple[int, str, float], scoring.Thresholds] = {}
+_THRESHOLDS: dict[tuple[int, float], scoring.Thresholds] = {}
+
+
+def thresholds_to_json(th: scoring.Thresholds) -> str:
+    return orjson.dumps(dataclasses.asdict(th)).decode()
+
+
+def thresholds_from_json(text: str) -> scoring.Thresholds:
+    return scoring.Thresholds(**orjson.loads(text))
+
+
+def cached_thresholds(conn: Connection, baseline_id: int, budget: float
+                      ) -> scoring.Thresholds | None:
+    """Thresholds computed before for this baseline and budget (memory, then database)."""
+    hit = _THRESHOLDS.get((baseline_id, budget))
+    if hit is not None:
+        return hit
+    text = conn.execute(select(models.baselines.c.thresholds).where(
+        models.baselines.c.baseline_id == baseline_id)).scalar()
+    if text:
+        th = thresholds_from_json(text)
+        if math.isclose(th.false_alerts_per_week, budget):
+            _THRESHOLDS[(baseline_id, budget)] = th
+            return th
+    return None
+
+
+def remember_thresholds(baseline_id: int, th: scoring.Thresholds) -> None:
+    if len(_THRESHOLDS) > 20_000:
+        _THRESHOLDS.clear()
+    _THRESHOLDS[(baseline_id, th.false_alerts_per_week)] = th
 
 
 def thresholds_for(base: bl.Baseline, info: DetectorInfo, settings: Settings
                    ) -> scoring.Thresholds:
-    """Every test's threshold for this detector and baseline, from the false-alert budget."""
-    key = (id(base), info.detector_id, settings.false_alerts_per_week)
-    cached = _THRESHOLDS.get(key)
-    if cached is not None:
-        return cached
+    """Every test's threshold for this detector and baseline, from the false-alert budget
+    (Markov-chain CUSUM limits: about a second of CPU, so callers cache the result)."""
     week = []
     for code in (0, 0, 0, 0, 0, 1, 2):  # five weekdays, a Saturday, a Sunday
         bins = np.arange(base.bins_per_day)
@@ -366,9 +400,6 @@ def thresholds_for(base: bl.Baseline, info: DetectorInfo, settings: Settings
         settings.false_alerts_per_week, interval_s=info.interval_s, mu_week=mu_week,
         interval_alpha=interval_alpha, day_alpha=day_alpha, log_se=log_se,
         missing_rate=missing_rate)
-    if len(_THRESHOLDS) > 20_000:
-        _THRESHOLDS.clear()
-    _THRESHOLDS[key] = thresholds
     return thresholds
 
 
@@ -625,6 +656,10 @@ def write_scored(engine: Engine, scored: Sequence[Scored], settings: Settings) -
         touched: dict[str, tuple[int, int]] = {}
         live = [sc for sc in scored if sc.end_s > sc.keep_from_s >= 0]
         for sc in scored:
+            if sc.new_thresholds is not None:
+                conn.execute(update(models.baselines).where(
+                    models.baselines.c.baseline_id == sc.baseline_id).values(
+                    thresholds=thresholds_to_json(sc.new_thresholds)))
             values: dict[str, Any] = {"lease_until_s": None, "claimed_from_s": None,
                                       "updated_s": now}
             if sc in live:

@@ -207,7 +207,7 @@ def cmd_fit(args: argparse.Namespace, settings: Settings) -> int:
               disable=args.quiet) as bar:
         results = fitting.fit_many(settings, engine, detector_ids=ids,
                                    as_of_s=_time_arg(args.as_of), workers=args.workers,
-                                   progress=bar.update)
+                                   thresholds=not args.no_thresholds, progress=bar.update)
     elapsed = time.perf_counter() - started
     by_status: dict[str, int] = {}
     for r in results:
@@ -343,6 +343,8 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--detector", action="append", help="detector id (repeat); default: all")
     s.add_argument("--as-of", help="RFC 3339 end of the history window; default: latest count")
     s.add_argument("--workers", type=int, default=max(1, min(4, os.cpu_count() or 1)))
+    s.add_argument("--no-thresholds", action="store_true",
+                   help="skip deriving scoring thresholds (the first scoring pass does it)")
     s.add_argument("--quiet", action="store_true")
     s.set_defaults(func=cmd_fit)
 

@@ -73,7 +73,10 @@ def summarise(result: bl.FitResult) -> dict[str, Any]:
             "intervals_trimmed": int(base.intervals_trimmed), "days_dropped": int(base.days_dropped)}
 
 
-def fit_one(engine: Engine, detector_id: str, *, as_of_s: int, settings: Settings) -> dict[str, Any]:
+def fit_one(engine: Engine, detector_id: str, *, as_of_s: int, settings: Settings,
+            thresholds: bool = True) -> dict[str, Any]:
+    """Fit one detector and store the baseline; with ``thresholds``, also derive its scoring
+    thresholds from the false-alert budget (otherwise the first scoring pass does)."""
     d = models.detectors
     started = time.perf_counter()
     lo = as_of_s - settings.fit_window_days * DAY_S
@@ -97,6 +100,14 @@ def fit_one(engine: Engine, detector_id: str, *, as_of_s: int, settings: Setting
     if result.status != "fitted" or result.baseline is None:
         return out
     summary = summarise(result)
+    thresholds_json = None
+    if thresholds:
+        from .alerting import DetectorInfo, thresholds_for, thresholds_to_json
+
+        info = DetectorInfo(det.detector_id, det.label, det.group_id, det.road_class, det.lanes,
+                            det.interval_s, det.timezone, det.holiday_calendar,
+                            det.capacity_per_lane_h)
+        thresholds_json = thresholds_to_json(thresholds_for(result.baseline, info, settings))
     now = time.time()
     b, s = models.baselines, models.detector_state
     with write_transaction(engine) as conn:
@@ -106,7 +117,8 @@ def fit_one(engine: Engine, detector_id: str, *, as_of_s: int, settings: Setting
             window_end_s=int(result.baseline.window_end_s),
             model=orjson.dumps(result.baseline.to_dict(),
                                option=orjson.OPT_SERIALIZE_NUMPY).decode(),
-            summary=orjson.dumps(summary).decode()).returning(b.c.baseline_id)).scalar_one()
+            summary=orjson.dumps(summary).decode(),
+            thresholds=thresholds_json).returning(b.c.baseline_id)).scalar_one()
         state = conn.execute(select(s.c.detector_id).where(s.c.detector_id == detector_id)).first()
         if state is None:
             conn.execute(s.insert().values(detector_id=detector_id, baseline_id=baseline_id,
@@ -130,10 +142,10 @@ def _init_worker(settings_json: str) -> None:
     _worker_engine = make_worker_engine(_worker_settings)
 
 
-def _fit_chunk(detector_ids: list[str], as_of_s: int) -> list[dict[str, Any]]:
+def _fit_chunk(detector_ids: list[str], as_of_s: int, thresholds: bool) -> list[dict[str, Any]]:
     assert _worker_engine is not None and _worker_settings is not None
-    return [fit_one(_worker_engine, det, as_of_s=as_of_s, settings=_worker_settings)
-            for det in detector_ids]
+    return [fit_one(_worker_engine, det, as_of_s=as_of_s, settings=_worker_settings,
+                    thresholds=thresholds) for det in detector_ids]
 
 
 def all_detector_ids(engine: Engine) -> list[str]:
@@ -150,7 +162,7 @@ def default_as_of(engine: Engine) -> int:
 
 
 def fit_many(settings: Settings, engine: Engine, *, detector_ids: Sequence[str] | None = None,
-             as_of_s: int | None = None, workers: int = 1,
+             as_of_s: int | None = None, workers: int = 1, thresholds: bool = True,
              progress: Callable[[int], None] | None = None) -> list[dict[str, Any]]:
     """Fit many detectors, over ``workers`` processes; results in detector order."""
     ids = list(detector_ids) if detector_ids else all_detector_ids(engine)
@@ -158,7 +170,8 @@ def fit_many(settings: Settings, engine: Engine, *, detector_ids: Sequence[str] 
     results: list[dict[str, Any]] = []
     if workers <= 1 or len(ids) < 4:
         for det in ids:
-            results.append(fit_one(engine, det, as_of_s=as_of, settings=settings))
+            results.append(fit_one(engine, det, as_of_s=as_of, settings=settings,
+                                   thresholds=thresholds))
             if progress:
                 progress(1)
     else:
@@ -166,7 +179,7 @@ def fit_many(settings: Settings, engine: Engine, *, detector_ids: Sequence[str] 
         chunks = [ids[i : i + chunk] for i in range(0, len(ids), chunk)]
         with ProcessPoolExecutor(max_workers=workers, initializer=_init_worker,
                                  initargs=(settings.model_dump_json(),)) as pool:
-            futures = [pool.submit(_fit_chunk, c, as_of) for c in chunks]
+            futures = [pool.submit(_fit_chunk, c, as_of, thresholds) for c in chunks]
             for fut in as_completed(futures):
                 part = fut.result()
                 results.extend(part)

@@ -25,6 +25,7 @@ def upgrade() -> None:
         sa.Column("window_end_s", sa.BigInteger(), nullable=False),
         sa.Column("model", sa.Text(), nullable=False),
         sa.Column("summary", sa.Text(), nullable=False),
+        sa.Column("thresholds", sa.Text(), nullable=True),
         sa.ForeignKeyConstraint(["detector_id"], ["detectors.detector_id"], ondelete="CASCADE",
                                 name="fk_baselines_detector_id_detectors"),
         sa.PrimaryKeyConstraint("baseline_id", name="pk_baselines"),
