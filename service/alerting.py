@@ -428,20 +428,21 @@ def episodes_from_rows(detector_id: str, rows: Sequence[Any], *, interval_s: int
                        scored_end_s: int, close_after: int) -> list[Episode]:
     """Group flagged intervals (sorted by kind, start) into episodes.
 
-    An episode closes after ``close_after`` scored intervals without its flag (missing data:
-    as soon as one interval is not flagged missing); shorter gaps do not split it."""
+    An episode closes after ``close_after`` scored intervals without its flag; shorter gaps do
+    not split it. Missing data closes as soon as data returns, but a new gap within
+    ``close_after`` intervals reopens the same episode (intermittent reporting is one alert)."""
     episodes: list[Episode] = []
     by_kind: dict[str, list[Any]] = {}
     for r in rows:
         by_kind.setdefault(r.kind, []).append(r)
     for kind, items in by_kind.items():
         items.sort(key=lambda r: r.start_s)
-        limit = 1 if kind == "no_data" else close_after
+        closing = 1 if kind == "no_data" else close_after
         current: list[Any] = []
 
-        def finish(part: list[Any], *, kind: str = kind, limit: int = limit) -> None:
+        def finish(part: list[Any], *, kind: str = kind, closing: int = closing) -> None:
             last = part[-1].start_s
-            closes_at = last + interval_s * (limit + 1)
+            closes_at = last + interval_s * (closing + 1)
             observed = None if kind == "no_data" else float(sum(p.observed or 0 for p in part))
             episodes.append(Episode(
                 subject=detector_id, detector_id=detector_id, kind=kind,
@@ -452,7 +453,7 @@ def episodes_from_rows(detector_id: str, rows: Sequence[Any], *, interval_s: int
                 log_p=float(min(p.log_p for p in part))))
 
         for r in items:
-            if current and (r.start_s - current[-1].start_s) // interval_s - 1 >= limit:
+            if current and (r.start_s - current[-1].start_s) // interval_s - 1 >= close_after:
                 finish(current)
                 current = []
             current.append(r)

@@ -46,7 +46,7 @@ class Settings(BaseSettings):
         600, ge=0, description="How long after an interval ends before it counts as missing (seconds)."
     )
     close_after_intervals: int = Field(
-        3, ge=1, description="Normal intervals in a row that close an alert episode."
+        6, ge=1, description="Normal intervals in a row that close an alert episode."
     )
     fit_window_days: int = Field(56, ge=7, le=730, description="History window for baseline fits (days).")
     fit_half_life_days: float | None = Field(

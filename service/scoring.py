@@ -12,7 +12,8 @@ The baseline gives, for every interval, ``mu`` (expected vehicles), ``log_se`` (
 ``mu * D * B * H``: ``D`` today's level, ``B`` the baseline's own error (lognormal, variance
 ``exp(log_se**2) - 1``), ``H`` the interval factor. Because ``D`` makes a busy day busy all
 morning, intervals are not independent. The scorer therefore learns ``D`` online: a Poisson-gamma
-conjugate posterior from the detector's last ``level_memory_s`` seconds (default 3 h), prior
+conjugate posterior from the detector's recent intervals (the last hour, stretched back up to 6 h until it holds
+150 vehicles' worth of information), prior
 Gamma(shape ``1/day_alpha``, rate ``1/day_alpha``), each interval weighted by
 ``1 / (1 + (interval_alpha + exp(log_se**2) - 1) mu)`` (its information about ``D`` relative to a
 Poisson count; quasi-likelihood weighting), leaving out every interval already flagged. Each
@@ -90,6 +91,13 @@ _LOG_SQRT_2PI = 0.5 * math.log(2.0 * math.pi)
 # normal double range; below this the tail is summed term by term in log space.
 _DIRECT_FLOOR = 1e-250
 _LARGE_MEAN = 1e5
+
+_FIX = float(1 << 24)  # fixed-point scale of the running sums (resolution 6e-8)
+_FIX_CLIP = 1e7  # no single term beyond this magnitude (keeps int64 sums far from overflow)
+
+
+def _fix(x: np.ndarray) -> np.ndarray:
+    return np.rint(np.clip(x, -_FIX_CLIP, _FIX_CLIP) * _FIX).astype(np.int64)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -437,28 +445,33 @@ class _StepLaws:
     weight: np.ndarray  # (K,) number of bins each representative stands for
 
 
-def _group_bins(mu, alpha, *, ratio: float = 1.1):
-    """Group bins geometrically in mu (``ratio`` wide): (group mu, group alpha, bin count)."""
+def _group_bins(mu, *extra, ratio: float = 1.1):
+    """Group bins geometrically in mu (``ratio`` wide): group mu, group means of ``extra``,
+    and bin counts."""
     mu = np.atleast_1d(np.asarray(mu, dtype=float)).ravel()
-    alpha = np.broadcast_to(np.asarray(alpha, dtype=float), mu.shape).ravel()
     if np.any(~np.isfinite(mu)) or np.any(mu <= 0):
         raise ValueError("mu must be positive and finite")
     gid = np.floor(np.log(mu / mu.min()) / math.log(ratio)).astype(int)
     _, gid = np.unique(gid, return_inverse=True)
     cnt = np.bincount(gid).astype(float)
     gmu = np.exp(np.bincount(gid, weights=np.log(mu)) / cnt)
-    gal = np.bincount(gid, weights=alpha) / cnt
-    return gmu, gal, cnt
+    means = [np.bincount(gid, weights=np.broadcast_to(np.asarray(x, dtype=float), mu.shape)
+                         .ravel()) / cnt for x in extra]
+    return gmu, means, cnt
 
 
-def _step_laws(mu, alpha, rho) -> _StepLaws:
-    """One increment law per given mean (arrays of equal length)."""
+def _step_laws(mu, alpha, rho, *, true_mu=None, true_alpha=None) -> _StepLaws:
+    """One increment law per given mean: increments computed for the predictive (mu, alpha),
+    counts drawn from (true_mu, true_alpha) (default the predictive itself)."""
     gmu = np.atleast_1d(np.asarray(mu, dtype=float))
     gal = np.broadcast_to(np.asarray(alpha, dtype=float), gmu.shape)
-    sd = np.sqrt(gmu + gal * gmu * gmu)
-    ymax = int(np.max(gmu + 12.0 * sd + 20.0))
+    tmu = gmu if true_mu is None else np.broadcast_to(np.asarray(true_mu, float), gmu.shape)
+    tal = gal if true_alpha is None else np.broadcast_to(np.asarray(true_alpha, float),
+                                                         gmu.shape)
+    sd = np.sqrt(tmu + tal * tmu * tmu)
+    ymax = int(np.max(tmu + 12.0 * sd + 20.0))
     ys = np.arange(ymax + 1, dtype=float)
-    lp = log_pmf(ys[None, :], gmu[:, None], gal[:, None])
+    lp = log_pmf(ys[None, :], tmu[:, None], tal[:, None])
     cdf = np.minimum(np.cumsum(np.exp(lp), axis=1), 1.0)
     cdf[:, -1] = 1.0
     slope, offset = _increment_terms(gmu, gal, rho)
@@ -533,17 +546,16 @@ def cusum_arl(h: float, *, rho: float, mu: Any, alpha: Any = 0.0, states: int = 
 
 
 class _RateCurve:
-    """Alarm rate over a week's bins, quasi-static, with ARL interpolated over log mu."""
+    """Alarm rate over a week's bins, quasi-static, with log ARL interpolated over log mu."""
 
-    NODES = 14
+    NODES = 12
 
     def __init__(self, mu, alpha, rho, states):
-        gmu, gal, cnt = _group_bins(mu, alpha)
+        gmu, (gal,), cnt = _group_bins(mu, alpha)
         self.weight = cnt / cnt.sum()
         self.log_gmu = np.log(gmu)
         if gmu.size <= self.NODES:
-            nodes = gmu
-            nal = gal
+            nodes, nal = gmu, gal
         else:
             nodes = np.exp(np.linspace(self.log_gmu[0], self.log_gmu[-1], self.NODES))
             nal = np.interp(np.log(nodes), self.log_gmu, gal)
@@ -566,18 +578,20 @@ def cusum_alarm_rate(h: float, *, rho: float, mu: Any, alpha: Any = 0.0,
     alarm rate of a CUSUM that has run at that interval's expectation for a while. With reset to
     zero after each alarm, alarms form a renewal process and ``1/ARL`` is its stationary rate.
     Bins are grouped 10 % wide in ``mu`` and ``log ARL`` is interpolated over ``log mu`` between
-    14 Brook & Evans chains. On weekly 5-min profiles this matched simulation of the real
-    periodic sequence to a few percent, whereas averaging the transition matrix over the week's
-    bins (treating each interval's expectation as an independent draw) under-counted alarms by a
-    factor of about two on a busy Poisson detector: the peak hours, where almost all alarms
-    happen, are not diluted by quiet steps in reality.
+    12 nodes. On weekly 5-min profiles this matched simulation of the real periodic sequence to
+    a few percent, whereas averaging the transition matrix over the week's bins (treating each
+    interval's expectation as an independent draw) under-counted alarms by a factor of about
+    two on a busy Poisson detector: the peak hours, where almost all alarms happen, are not
+    diluted by quiet steps in reality.
 
     Parameters
     ----------
-    h, rho, alpha, states
+    h, rho, states
         As for ``cusum_arl``.
     mu : array_like
         In-control expected vehicles per interval of each bin (e.g. the week's bins).
+    alpha : array_like, default 0
+        Predictive negative binomial alpha of each bin.
 
     Returns
     -------
@@ -684,21 +698,32 @@ def _window_intervals(level_memory_s: float, interval_s: int) -> int:
     return max(1, int(round(level_memory_s / interval_s)))
 
 
-def _typical_predictive(mu, interval_alpha, day_alpha, log_se, window):
+def _level_windows(info_cum: np.ndarray, ends: np.ndarray, *, shortest: int, longest: int,
+                   information: int) -> np.ndarray:
+    """Window length per interval: the shortest stretch back (between ``shortest`` and
+    ``longest`` intervals) holding at least ``information`` of the cumulative ``info_cum``
+    (non-decreasing) before position ``ends``."""
+    j = np.searchsorted(info_cum, info_cum[ends] - information, side="right") - 1
+    return np.clip(ends - j, shortest, longest)
+
+
+def _typical_predictive(mu, interval_alpha, day_alpha, log_se, thresholds_like):
     """Predictive alpha of each bin of a week, with the level posterior a typical week gives.
 
-    The posterior shape is taken as ``1/day_alpha`` plus the weighted expected count of the
-    ``window`` bins before (cyclically), i.e. the level factor at its mean.
+    The posterior shape is ``1/day_alpha`` plus the weighted expected count of the level window
+    before each bin (cyclically), i.e. the level factor at its mean.
     """
+    shortest, longest, information = thresholds_like
     mu, ia, da, se = np.broadcast_arrays(*(np.asarray(v, dtype=float) for v in (
         mu, interval_alpha, day_alpha, log_se)))
     sig2 = np.expm1(se * se)
-    info = mu / (1.0 + (ia + sig2) * mu)
     n = mu.size
-    c = np.concatenate([[0.0], np.cumsum(np.concatenate([info, info]))])
-    k = min(window, n)
-    t = np.arange(n) + n
-    seen = c[t] - c[t - k]
+    qm = _fix(mu / (1.0 + (ia + sig2) * mu))
+    reps = 1 + -(-longest // n)
+    c = np.concatenate([[0], np.cumsum(np.tile(qm, reps + 1))])
+    ends = np.arange(n) + reps * n
+    k = _level_windows(c, ends, shortest=shortest, longest=longest, information=information)
+    seen = (c[ends] - c[ends - k]) / _FIX
     with np.errstate(divide="ignore"):
         shape = np.where(da > 0, 1.0 / np.where(da > 0, da, 1.0) + seen, np.inf)
     level_var = np.where(np.isfinite(shape), 1.0 / shape, 0.0)
@@ -815,8 +840,10 @@ class Thresholds:
         Rate ratios the lower and upper CUSUMs are tuned to.
     h_low, h_high : float
         CUSUM decision limits (natural-log likelihood ratio).
-    level_memory_s : float
-        Seconds of history the online level posterior uses.
+    level_memory_s, level_memory_max_s : float
+        Shortest and longest history, in seconds, of the online level posterior.
+    level_information : float
+        Vehicles' worth of (weighted) expectation the level window is stretched to hold.
     expected_per_week : Mapping[str, float]
         Expected false alerts per week of each test at these thresholds under the model
         (``repeated_value`` and the CUSUMs approximate; see ``from_budget``).
@@ -836,6 +863,8 @@ class Thresholds:
     h_low: float
     h_high: float
     level_memory_s: float
+    level_memory_max_s: float
+    level_information: float
     expected_per_week: Mapping[str, float] = field(default_factory=dict, compare=False)
 
     @classmethod
@@ -851,7 +880,9 @@ class Thresholds:
         missing_rate: float = 0.01,
         rho_low: float = 0.5,
         rho_high: float = 2.0,
-        level_memory_s: float = 3 * 3600.0,
+        level_memory_s: float = 3600.0,
+        level_memory_max_s: float = 6 * 3600.0,
+        level_information: float = 150.0,
         min_repeat: int = 3,
         shares: Mapping[str, float] | None = None,
     ) -> Thresholds:
@@ -890,8 +921,16 @@ class Thresholds:
             Share of intervals that go missing in normal operation (1 - completeness).
         rho_low, rho_high : float
             Rate ratios of the lower and upper CUSUMs (default halving and doubling).
-        level_memory_s : float, default 10800
-            Seconds of history for the online level posterior.
+        level_memory_s : float, default 3600
+            Shortest history, in seconds, of the online level posterior.
+        level_memory_max_s : float, default 21600
+            Longest history of the level posterior.
+        level_information : float, default 150
+            The level window runs back from ``level_memory_s`` until it holds this many
+            vehicles' worth of weighted expectation (or reaches ``level_memory_max_s``): about
+            an 8 % standard error on the level, the size of normal hour-to-hour variation, so a
+            busy detector follows the hour while a quiet one pools several hours to learn the
+            day (tuning checked by the calibration simulation in the tests).
         min_repeat : int, default 3
             Fewest identical counts in a row that may be flagged.
         shares : Mapping[str, float], optional
@@ -921,13 +960,15 @@ class Thresholds:
             math.log(budget["no_data"] / (n * (1.0 - q))) / math.log(q) - 1e-12))
         expected = dict(budget)
         expected["no_data"] = n * (1.0 - q) * q**missing_run
-        window = _window_intervals(level_memory_s, interval_s)
+        windows = (_window_intervals(level_memory_s, interval_s),
+                   _window_intervals(max(level_memory_max_s, level_memory_s), interval_s),
+                   int(round(level_information * _FIX)))
         if mu_week is None:
             h_low = math.log(n / budget["low_volume_cusum"])
             h_high = math.log(n / budget["high_volume_cusum"])
         else:
             mu, alpha, level_var, ia, sig2 = _typical_predictive(
-                mu_week, interval_alpha, day_alpha, log_se, window)
+                mu_week, interval_alpha, day_alpha, log_se, windows)
             mu, alpha = mu.ravel(), alpha.ravel()
             scale = n / mu.size  # bins given may be any sample of the week
             c_lo = _critical_low(mu, alpha, log_a["low_volume_interval"])
@@ -967,6 +1008,8 @@ class Thresholds:
             h_low=float(h_low),
             h_high=float(h_high),
             level_memory_s=float(level_memory_s),
+            level_memory_max_s=float(max(level_memory_max_s, level_memory_s)),
+            level_information=float(level_information),
             expected_per_week=expected,
         )
 
@@ -974,14 +1017,6 @@ class Thresholds:
 # ---------------------------------------------------------------------------------------------
 # Timeline scorer
 # ---------------------------------------------------------------------------------------------
-
-_FIX = float(1 << 24)  # fixed-point scale of the running sums (resolution 6e-8)
-_FIX_CLIP = 1e7  # no single term beyond this magnitude (keeps int64 sums far from overflow)
-
-
-def _fix(x: np.ndarray) -> np.ndarray:
-    return np.rint(np.clip(x, -_FIX_CLIP, _FIX_CLIP) * _FIX).astype(np.int64)
-
 
 @dataclass(frozen=True)
 class WarmState:
@@ -1005,6 +1040,8 @@ class WarmState:
     repeat_len: int
     repeat_sum: int
     missing_len: int
+    local_day: int | None = None  # local day of the last interval (None: days not given)
+    day_age: int = 0  # intervals of that day seen so far
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-safe dictionary of the state."""
@@ -1023,6 +1060,8 @@ class WarmState:
             "repeat_len": self.repeat_len,
             "repeat_sum": self.repeat_sum,
             "missing_len": self.missing_len,
+            "local_day": self.local_day,
+            "day_age": self.day_age,
         }
 
     @classmethod
@@ -1043,6 +1082,8 @@ class WarmState:
             repeat_len=int(data["repeat_len"]),
             repeat_sum=int(data["repeat_sum"]),
             missing_len=int(data["missing_len"]),
+            local_day=None if data.get("local_day") is None else int(data["local_day"]),
+            day_age=int(data.get("day_age", 0)),
         )
 
     @classmethod
@@ -1137,10 +1178,10 @@ class _Timeline:
     are flagged, and the per-interval results of the current solution."""
 
     def __init__(self, counts, present, mu, log_se, day_alpha, interval_alpha, cap, thresholds,
-                 warm: WarmState, window: int):
+                 warm: WarmState, windows: tuple[int, int, int], local_day):
         self.th = thresholds
         self.warm = warm
-        self.window = window
+        self.shortest, self.window, self.information = windows
         n = self.n = present.size
         self.present = present
         self.y = np.where(present, counts, 0.0)
@@ -1156,6 +1197,15 @@ class _Timeline:
                                   np.inf)
         self.over = present & (self.y > cap)
         idx = np.arange(n)
+        # intervals of the same local day before each interval: the level window stops there
+        self.local_day = local_day
+        if local_day is None:
+            self.day_age = np.full(n, self.window)
+        else:
+            new = np.concatenate([[warm.local_day is None or local_day[0] != warm.local_day],
+                                  local_day[1:] != local_day[:-1]]) if n else np.zeros(0, bool)
+            start = np.maximum.accumulate(np.where(new, idx, -1))
+            self.day_age = np.where(start >= 0, idx - start, idx + warm.day_age)
         pidx = np.flatnonzero(present)
         self.pidx = pidx
         yp = self.y[pidx]
@@ -1210,7 +1260,9 @@ class _Timeline:
     def _run(self, i0: int, i1: int, excluded: np.ndarray) -> dict[str, Any]:
         """Score intervals [i0, i1) given which earlier intervals are left out of the level."""
         th, w = self.th, self.window
-        # level posterior from intervals i-W .. i-1 that were present and not flagged
+        # level posterior from the intervals before i that were present and not flagged, over
+        # the shortest window (at least `shortest`, at most `w` intervals) holding enough
+        # information
         lo = i0 - w
         seg = np.arange(lo, i1 - 1)
         inside = seg >= 0
@@ -1225,9 +1277,12 @@ class _Timeline:
         vm[hist] = self.hist_m[seg[hist] + w]
         cy = np.concatenate([[0], np.cumsum(vy)])
         cm = np.concatenate([[0], np.cumsum(vm)])
-        k = np.arange(i1 - i0)
-        sum_y = (cy[k + w] - cy[k]) / _FIX
-        sum_m = (cm[k + w] - cm[k]) / _FIX
+        ends = np.arange(i1 - i0) + w
+        span = _level_windows(cm, ends, shortest=self.shortest, longest=w,
+                              information=self.information)
+        span = np.minimum(span, self.day_age[i0:i1])
+        sum_y = (cy[ends] - cy[ends - span]) / _FIX
+        sum_m = (cm[ends] - cm[ends - span]) / _FIX
         prior = self.prior[i0:i1]
         has_prior = np.isfinite(prior)
         pr = np.where(has_prior, prior, 1.0)
@@ -1433,6 +1488,8 @@ class _Timeline:
             repeat_len=rl,
             repeat_sum=int(r["rep_sum"][-1]),
             missing_len=int(self.miss_len[-1]),
+            local_day=None if self.local_day is None else int(self.local_day[-1]),
+            day_age=int(self.day_age[-1]) + 1,
         )
 
 
@@ -1460,6 +1517,7 @@ def score_timeline(
     cap: Any,
     thresholds: Thresholds,
     warm_state: WarmState | None = None,
+    local_day: Any = None,
 ) -> Evidence:
     """Score consecutive intervals of one detector, in time order.
 
@@ -1488,6 +1546,12 @@ def score_timeline(
         Decision thresholds (``Thresholds.from_budget``) for this ``interval_s``.
     warm_state : WarmState, optional
         State returned by the previous call for the same detector.
+    local_day : array_like of int, optional
+        The detector's local calendar day of each interval (any integer label, e.g. the
+        baseline's day number). The day factor is per local day, so the level window never
+        reaches back across a change of day. Without it the window ignores day boundaries,
+        which lets yesterday's evening bias tonight's level (more false low/high alerts at
+        night on busy detectors).
 
     Returns
     -------
@@ -1514,15 +1578,23 @@ def score_timeline(
     if np.any(day_alpha < 0) or np.any(interval_alpha < 0) or np.any(log_se < 0):
         raise ValueError("log_se, day_alpha and interval_alpha must be non-negative")
     cap_arr = _per_interval(cap, n, "cap")
-    window = _window_intervals(thresholds.level_memory_s, int(interval_s))
+    windows = (_window_intervals(thresholds.level_memory_s, int(interval_s)),
+               _window_intervals(thresholds.level_memory_max_s, int(interval_s)),
+               int(round(thresholds.level_information * _FIX)))
+    window = windows[1]
     if warm_state is None:
         warm_state = WarmState.fresh(int(start_s), interval_s=int(interval_s), window=window)
     elif (warm_state.next_start_s != int(start_s) or warm_state.interval_s != int(interval_s)
           or len(warm_state.window_y) != window):
         raise ValueError("warm_state does not continue this timeline (start, interval or "
                          "level memory differ)")
+    if local_day is not None:
+        local_day = np.asarray(local_day).ravel()
+        if local_day.size != n or not np.issubdtype(local_day.dtype, np.integer):
+            raise ValueError("local_day must give an integer day for every interval")
+        local_day = local_day.astype(np.int64)
     tl = _Timeline(y, present, mu, log_se, day_alpha, interval_alpha, cap_arr, thresholds,
-                   warm_state, window)
+                   warm_state, windows, local_day)
     if n:
         tl.solve()
     return Evidence(
