@@ -48,6 +48,7 @@ LOW_KINDS = frozenset({"no_counts", "low_volume"})
 BLOCK_S = 86_400
 WARMUP_S = 6 * 3600
 LEASE_S = 120.0
+NO_DATA_REOPEN_S = 2 * 3600  # gaps closer than this are one intermittent-reporting episode
 
 
 # ----------------------------------------------------------------------------- sequence
@@ -430,7 +431,8 @@ def episodes_from_rows(detector_id: str, rows: Sequence[Any], *, interval_s: int
 
     An episode closes after ``close_after`` scored intervals without its flag; shorter gaps do
     not split it. Missing data closes as soon as data returns, but a new gap within
-    ``close_after`` intervals reopens the same episode (intermittent reporting is one alert)."""
+    ``NO_DATA_REOPEN_S`` (or ``close_after`` intervals, if longer) reopens the same episode:
+    intermittent reporting is one alert, not one per gap."""
     episodes: list[Episode] = []
     by_kind: dict[str, list[Any]] = {}
     for r in rows:
@@ -438,6 +440,8 @@ def episodes_from_rows(detector_id: str, rows: Sequence[Any], *, interval_s: int
     for kind, items in by_kind.items():
         items.sort(key=lambda r: r.start_s)
         closing = 1 if kind == "no_data" else close_after
+        split = max(close_after, NO_DATA_REOPEN_S // interval_s) if kind == "no_data" \
+            else close_after
         current: list[Any] = []
 
         def finish(part: list[Any], *, kind: str = kind, closing: int = closing) -> None:
@@ -453,7 +457,7 @@ def episodes_from_rows(detector_id: str, rows: Sequence[Any], *, interval_s: int
                 log_p=float(min(p.log_p for p in part))))
 
         for r in items:
-            if current and (r.start_s - current[-1].start_s) // interval_s - 1 >= close_after:
+            if current and (r.start_s - current[-1].start_s) // interval_s - 1 >= split:
                 finish(current)
                 current = []
             current.append(r)
@@ -518,6 +522,9 @@ def summary_sentence(ep: Episode, cause: str, *, interval_s: int, timezone: str,
         if ep.detector_id is None:
             return (f"No reports from {len(members)} detectors of {group} for {length} ({when} "
                     f"local) — likely a controller or communications loss.")
+        if ep.n_intervals * interval_s < span_end - ep.start_s:
+            return (f"{where}: intermittent reporting, {ep.n_intervals} intervals missing over "
+                    f"{length} ({when} local) — {tail}.")
         return f"{where}: no reports for {length} ({when} local) — {tail}."
     observed = ep.observed or 0.0
     if ep.kind == "no_counts":
@@ -689,7 +696,7 @@ def _reconcile_detector(conn: Connection, writer: _Writer, sc: Scored, *, close_
     a = models.alerts
     info = sc.info
     step = info.interval_s
-    gap = (close_after + 1) * step
+    gap = max(close_after + 1, NO_DATA_REOPEN_S // step + 1) * step
     lo = sc.keep_from_s
     while True:
         earlier = conn.execute(select(func.min(a.c.start_s)).where(
