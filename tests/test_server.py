@@ -101,3 +101,44 @@ def test_slow_client_does_not_block_server(live_server) -> None:
         assert httpx.get(live_server.url + "/v1/health", timeout=5).status_code == 200
     finally:
         s.close()
+
+
+def test_live_server_scores_as_counts_arrive(database_url, engine, keys) -> None:
+    """With scoring inline, counts posted over HTTP are scored by the server's own scorer:
+    the health backlog drains to zero and the dead detector's alert can be polled."""
+    from service import fitting
+    from service.config import Settings
+    from tests.factories import load_network, small_network
+
+    net = small_network(("bra3-nb-lt", "bra3-nb-t1", "bra3-nb-t2"), history_days=21,
+                        test_days=1, seed=3)
+    load_network(engine, net, until_s=net.test_start_s)
+    fitting.fit_many(Settings(database_url=database_url), engine, as_of_s=net.test_start_s)
+    server = LiveServer(database_url, env={"TALLYWARD_CLOCK": "data"}).start()
+    try:
+        ids = [d.detector_id for d in net.detectors]
+        dead_from = net.test_start_s + 7 * 3600
+        rows = []
+        for d, t, c in zip(net.detector_index, net.start_s, net.count, strict=True):
+            if t < net.test_start_s:
+                continue
+            count = 0 if ids[int(d)] == "bra3-nb-t1" and dead_from <= t < dead_from + 7200 else int(c)
+            rows.append({"detector_id": ids[int(d)], "count": count,
+                         "start": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime(int(t)))})
+        with httpx.Client(base_url=server.url, timeout=30) as c:
+            for lo in range(0, len(rows), 300):
+                r = c.post("/v1/counts", json={"counts": rows[lo : lo + 300]},
+                           headers=auth(keys["ingest"]))
+                assert r.status_code == 200, r.text
+            deadline = time.monotonic() + 120  # a bound on waiting, not a speed requirement
+            while c.get("/v1/health").json()["scoring_backlog"] and time.monotonic() < deadline:
+                time.sleep(0.2)
+            assert c.get("/v1/health").json()["scoring_backlog"] == 0
+            alerts = c.get("/v1/alerts", params={"detector_id": "bra3-nb-t1", "kind": "no_counts"},
+                           headers=auth(keys["read"])).json()["data"]
+            assert len(alerts) == 1 and alerts[0]["cause"] == "detector"
+            assert "counted 0 vehicles" in alerts[0]["summary"]
+            health = c.get("/v1/detectors/bra3-nb-t1/health", headers=auth(keys["read"])).json()
+            assert health["last_24h"]["flagged_share"] > 0
+    finally:
+        server.stop()
