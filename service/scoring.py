@@ -94,6 +94,11 @@ _LARGE_MEAN = 1e5
 
 _FIX = float(1 << 24)  # fixed-point scale of the running sums (resolution 6e-8)
 _FIX_CLIP = 1e7  # no single term beyond this magnitude (keeps int64 sums far from overflow)
+# A CUSUM in alarm is held, capped at CUSUM_CEILING * h, until it falls below CUSUM_RELEASE * h:
+# an alarm outlasts the shift that raised it by 0.75 h of in-control drift (one or two intervals
+# on a busy detector, about an hour on one seeing 2 vehicles per 5 min).
+CUSUM_CEILING = 1.25
+CUSUM_RELEASE = 0.5
 
 
 def _fix(x: np.ndarray) -> np.ndarray:
@@ -1151,31 +1156,57 @@ def _segment_sums(values: np.ndarray, starts_run: np.ndarray, base: int) -> np.n
         return np.where(last >= 0, cs - prev, cs + np.int64(base))
 
 
-def _cusum(z: np.ndarray, s0: int, limit: int) -> tuple[np.ndarray, np.ndarray, int]:
-    """Integer CUSUM max(0, S + z) with reset to 0 after each alarm (S >= limit).
+def _cusum(z: np.ndarray, s0: int, limit: int, ceiling: int, release: int) -> np.ndarray:
+    """Integer CUSUM that holds its alarm: S = max(0, S + z) below ``limit``; once S reaches
+    ``limit`` it stays in alarm, with S = min(ceiling, S + z), until it falls below
+    ``release``; then it restarts from 0.
 
-    Returns the statistic before any reset, the alarm flags, and the final statistic. Lindley's
-    form S_t = W_t - min(-s, min_{u<=t} W_u) runs vectorised between alarms; the stretch looked
-    at grows geometrically so dense alarms (a real fault) stay cheap.
+    Holding keeps every interval of a lasting shift flagged (so the level posterior, which
+    leaves flagged intervals out, does not learn the fault as "today's level"), the release
+    level below the limit stops one noisy interval inside a fault from ending the alarm, the
+    ceiling bounds how long the alarm outlasts the shift, and restarting from 0 makes alarms a
+    renewal process with the Markov-chain ARL between them. Each regime is a Lindley recursion
+    (reflected at 0 below, at ``ceiling`` above) run vectorised between switches over stretches
+    that grow geometrically.
+
+    Returns
+    -------
+    (S, in_alarm) arrays.
     """
     n = z.size
     out = np.empty(n, dtype=np.int64)
     alarm = np.zeros(n, dtype=bool)
-    pos, s, step = 0, int(s0), 64
+    # s0 >= release with s0 < limit can only be a held alarm (searching states below limit
+    # that reach release are not distinguishable otherwise): a negative s0 encodes it.
+    holding = s0 < 0
+    pos, s, step = 0, abs(int(s0)), 64
     while pos < n:
         hi = min(n, pos + step)
         w = np.cumsum(z[pos:hi])
-        st = w - np.minimum(np.minimum.accumulate(w), -s)
-        hit = np.flatnonzero(st >= limit)
-        if hit.size:
-            a = hit[0]
+        if not holding:  # searching: S = W - min(-s, min W)
+            st = w - np.minimum(np.minimum.accumulate(w), -s)
+            switch = np.flatnonzero(st >= limit)
+        else:  # in alarm: the gap U = ceiling - S is a Lindley recursion on -z
+            gap = -w - np.minimum(np.minimum.accumulate(-w), -(ceiling - s))
+            st = ceiling - gap
+            switch = np.flatnonzero(st < release)
+        if switch.size:
+            a = int(switch[0])
             out[pos:pos + a + 1] = st[:a + 1]
-            alarm[pos + a] = True
-            pos, s, step = pos + a + 1, 0, 64
+            if holding:  # the alarm ends here: restart from zero
+                alarm[pos:pos + a] = True
+                out[pos + a] = 0
+                holding = False
+            else:
+                alarm[pos + a] = True
+                holding = True
+            s = int(out[pos + a])
+            pos, step = pos + a + 1, 64
         else:
             out[pos:hi] = st
+            alarm[pos:hi] = holding
             pos, s, step = hi, int(st[-1]), step * 2
-    return out, alarm, s
+    return out, alarm
 
 
 class _Timeline:
@@ -1247,7 +1278,6 @@ class _Timeline:
         self.res = {
             "m": np.zeros(n), "level": np.ones(n), "level_var": np.zeros(n),
             "s_low": np.zeros(n, np.int64), "s_high": np.zeros(n, np.int64),
-            "s_low_pre": np.zeros(n, np.int64), "s_high_pre": np.zeros(n, np.int64),
             "rep_sum": np.zeros(n, np.int64), "zref": np.zeros(n), "zref_var": np.zeros(n),
         }
         self.flag = {k: np.zeros(n, dtype=bool) for k in KINDS}
@@ -1261,6 +1291,15 @@ class _Timeline:
     # -- state just after interval i - 1 -------------------------------------------------------
     def _before(self, key: str, i: int, warm_value):
         return warm_value if i == 0 else self.res[key][i - 1]
+
+    def _side(self, z, key: str, i0: int, h: float):
+        """One CUSUM side over the present intervals of a stretch; state is stored signed
+        (negative while an alarm is held)."""
+        s0 = self._before(key, i0, getattr(self.warm, key))
+        stat, alarm = _cusum(_fix(z), int(s0), int(round(h * _FIX)),
+                             int(round(h * CUSUM_CEILING * _FIX)),
+                             int(round(h * CUSUM_RELEASE * _FIX)))
+        return np.where(alarm, -stat, stat), alarm
 
     def _run(self, i0: int, i1: int, excluded: np.ndarray) -> dict[str, Any]:
         """Score intervals [i0, i1) given which earlier intervals are left out of the level."""
@@ -1307,12 +1346,8 @@ class _Timeline:
         # CUSUMs on present intervals
         sl, ol = _increment_terms(mp, ap, th.rho_low)
         sh, oh = _increment_terms(mp, ap, th.rho_high)
-        s_low_pre, alarm_low, _ = _cusum(_fix(sl * yp + ol),
-                                         self._before("s_low", i0, self.warm.s_low),
-                                         int(round(th.h_low * _FIX)))
-        s_high_pre, alarm_high, _ = _cusum(_fix(sh * yp + oh),
-                                           self._before("s_high", i0, self.warm.s_high),
-                                           int(round(th.h_high * _FIX)))
+        s_low, alarm_low = self._side(sl * yp + ol, "s_low", i0, th.h_low)
+        s_high, alarm_high = self._side(sh * yp + oh, "s_high", i0, th.h_high)
         # repeated values
         rfirst = self.rep_first_p[p0:p1]
         contrib = np.where(rfirst, 0, _fix(lpmf))
@@ -1345,16 +1380,15 @@ class _Timeline:
         over = self.over[pi]
         out = {
             "loc": loc, "m": m, "level": level, "level_var": level_var,
-            "s_low_pre": s_low_pre, "s_high_pre": s_high_pre,
-            "s_low": np.where(alarm_low, 0, s_low_pre), "s_high": np.where(alarm_high, 0,
-                                                                            s_high_pre),
+            "s_low": s_low, "s_high": s_high,
             "rep_sum": rep_sum, "zref": zref, "zref_var": zvar,
             "flags": {"no_counts": f_zero, "low_volume": f_low, "high_volume": f_high,
                       "repeated_value": f_rep, "over_capacity": over},
             "log_p": {
                 "no_counts": lp_zero,
-                "low_volume": np.minimum(np.where(yp >= 1, log_lower, 0.0), -s_low_pre / _FIX),
-                "high_volume": np.minimum(log_upper, -s_high_pre / _FIX),
+                "low_volume": np.minimum(np.where(yp >= 1, log_lower, 0.0),
+                                         -np.abs(s_low) / _FIX),
+                "high_volume": np.minimum(log_upper, -np.abs(s_high) / _FIX),
                 "repeated_value": lp_rep,
                 "over_capacity": np.where(over, log_upper, 0.0),
             },
@@ -1380,10 +1414,6 @@ class _Timeline:
             carried = self._before(key, i0, warm_value)
             arr = np.where(src >= 0, vals[np.maximum(src, 0)] if vals.size else carried, carried)
             out[key] = arr.astype(vals.dtype if vals.size else np.asarray(carried).dtype)
-        out["s_low_pre"] = np.zeros(n, np.int64)
-        out["s_high_pre"] = np.zeros(n, np.int64)
-        out["s_low_pre"][loc] = run["s_low_pre"]
-        out["s_high_pre"][loc] = run["s_high_pre"]
         out["m"], out["level"], out["level_var"] = run["m"], run["level"], run["level_var"]
         return out
 
