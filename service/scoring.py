@@ -16,8 +16,10 @@ conjugate posterior from the detector's recent intervals of the same local day (
 stretched back up to 6 h while it holds under 60 vehicles' worth of information), prior
 Gamma(shape ``1/day_alpha``, rate ``1/day_alpha``), each interval weighted by
 ``1 / (1 + (interval_alpha + exp(log_se**2) - 1) mu)`` (its information about ``D`` relative to a
-Poisson count; quasi-likelihood weighting), leaving out every interval already flagged. Each
-interval is then judged against the posterior predictive negative binomial: mean
+Poisson count; quasi-likelihood weighting), leaving out every interval already flagged and, once
+a flag is raised, the 30 minutes before it (the onset of a shift, scored before its alarm, is
+not learned as today's level). The local day bounds the window because ``D`` is a day factor;
+``score_timeline`` takes the local day of each interval for that. Each interval is then judged against the posterior predictive negative binomial: mean
 ``mu * a/b`` and alpha ``(1 + 1/a) exp(log_se**2) (1 + interval_alpha) - 1`` (the relative
 variances of independent mean-one factors multiply; the product is moment-matched to one gamma).
 By the prequential (sequential predictive) factorisation the product of these predictives is the
@@ -33,9 +35,13 @@ Tests and their families
     single-interval tail probabilities (lower tail for counts of at least one; zeros belong to
     ``no_counts``) and a one-sided CUSUM of the log-likelihood ratio for a rate ratio ``rho``
     (Lucas 1985; Poisson increment ``y ln rho - m (rho - 1)``, negative binomial increment
-    ``y ln rho - (y + 1/alpha) ln((1 + alpha rho m)/(1 + alpha m))``), reset to zero after each
-    alarm. Its decision limit comes from the in-control average run length by the Markov chain of
-    Brook & Evans (1972). The reported ``log_p`` is the smaller of the tail ``log_p`` and ``-S``
+    ``y ln rho - (y + 1/alpha) ln((1 + alpha rho m)/(1 + alpha m))``). An alarm is held while the
+    shift lasts (statistic capped at 1.25 h, released below h/2, then restarted from zero), so
+    every interval of a lasting fault is flagged and kept out of the level. The decision limit h
+    comes from the in-control alarm rate over the week's bins, each bin's average run length
+    computed by the Markov chain of Brook & Evans (1972) (``cusum_alarm_rate`` explains why
+    bins are not averaged into one matrix). The reported ``log_p`` is the smaller of the tail
+    ``log_p`` and ``-S``
     (by Ville's inequality a likelihood ratio started at a fixed time exceeds ``e^S`` with
     probability at most ``e^-S``).
 ``repeated_value``
