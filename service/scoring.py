@@ -1256,7 +1256,7 @@ class _Timeline:
         n = self.n = present.size
         self.present = present
         self.y = np.where(present, counts, 0.0)
-        self.mu, self.se2, self.da, self.ia = mu, log_se * log_se, day_alpha, interval_alpha
+        self.mu, self.se2, self.ia = mu, log_se * log_se, interval_alpha
         sig2 = np.expm1(self.se2)
         info_w = 1.0 / (1.0 + (interval_alpha + sig2) * mu)
         # weighted counts and expectations, history first ("ext" index = interval + hist)
@@ -1279,15 +1279,12 @@ class _Timeline:
                                   local_day[1:] != local_day[:-1]]) if n else np.zeros(0, bool)
             start = np.maximum.accumulate(np.where(new, idx, -1))
             self.day_age = np.where(start >= 0, idx - start, idx + warm.day_age)
-        # the level window ends `guard` intervals back and stays within the local day
-        self.day_room = np.maximum(self.day_age - self.guard, 0)
         pidx = np.flatnonzero(present)
         self.pidx = pidx
         yp = self.y[pidx]
         # zero runs (missing intervals neither extend nor break a run)
         isz = yp == 0
         zfirst = isz & np.concatenate([[warm.zero_len == 0], ~isz[:-1]])
-        self.zero_first_p = zfirst
         self.zero_start = np.full(n, -2)  # index of the run's first zero; -1: from warm state
         last_first = np.maximum.accumulate(np.where(zfirst, np.arange(pidx.size), -1))
         zstart_p = np.where(last_first >= 0, pidx[np.maximum(last_first, 0)], -1)
@@ -1333,8 +1330,6 @@ class _Timeline:
         self.flag["over_capacity"][:] = self.over
         self.flag["no_data"][:] = self.miss_len >= thresholds.missing_run
         self.log_p["no_data"][:] = self.miss_len * thresholds.log_missing_rate
-        self.idx = idx
-        self.slope_low, self.slope_high = None, None
 
     # -- state just after interval i - 1 -------------------------------------------------------
     def _before(self, key: str, i: int, warm_value):
@@ -1502,8 +1497,8 @@ class _Timeline:
         return (c[np.minimum(k + self.guard + 1, flags.size)] - c[k]) > 0
 
     def solve(self) -> None:
-        """Find the causal solution: each interval is scored with a level posterior that leaves
-        out every earlier flagged interval.
+        """Find the causal solution: each interval is scored with a level posterior built from
+        the flags raised before it (see ``_run``).
 
         Scoring everything with a guess of the flagged set is exact up to the first interval
         whose flag differs from the guess; from there the guess is corrected and only a stretch
