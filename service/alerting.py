@@ -342,7 +342,7 @@ def evaluate_piece(info: DetectorInfo, base: bl.Baseline, grid: np.ndarray, valu
     state = scoring.WarmState.from_dict(warm) if warm is not None else None
     ev = scoring.score_timeline(int(grid[0]), values, present, mu, log_se, day_alpha,
                                 interval_alpha, interval_s=step, cap=cap,
-                                thresholds=thresholds, warm_state=state)
+                                thresholds=thresholds, warm_state=state, local_day=tg.local_day)
     flags = {k: np.asarray(ev.flag[k], bool) for k in KINDS}
     log_p = {k: np.asarray(ev.log_p[k], float) for k in KINDS}
     return flags, log_p, np.asarray(mu, float), ev.warm_state.to_dict()
@@ -474,12 +474,16 @@ def cause_for(kind: str, *, others: Sequence[str], neighbour_kinds: dict[str, se
 
     ``traffic``: at least one neighbour deviates the same way at the same time (several
     detectors of one group together point to traffic). ``detector``: the neighbours look
-    normal. ``communications``: missing data. ``unknown``: no neighbours to compare."""
+    normal. ``communications``: missing data, or values frozen on several detectors at once
+    (a stuck controller or polling fault). ``unknown``: no neighbours to compare."""
     if kind == "no_data":
         return "communications"
     if not others:
         return "unknown"
-    if kind in ("over_capacity", "repeated_value"):
+    if kind == "repeated_value":  # frozen together: the controller or its polling, not a loop
+        together = any("repeated_value" in neighbour_kinds.get(o, set()) for o in others)
+        return "communications" if together else "detector"
+    if kind == "over_capacity":
         return "detector"
     same = LOW_KINDS if kind in LOW_KINDS else frozenset({"high_volume", "over_capacity"})
     if any(neighbour_kinds.get(o, set()) & same for o in others):
