@@ -123,18 +123,26 @@ def claim(engine: Engine, settings: Settings, *, limit: int = 64) -> tuple[list[
     """Lease up to ``limit`` detectors that need scoring."""
     s, d = models.detector_state, models.detectors
     now = time.time()
-    with write_transaction(engine) as conn:
-        clock = clock_now(conn, settings)
-        grace = settings.missing_grace_s
+
+    def due_query(clock: float):  # type: ignore[no-untyped-def]
         due = or_(s.c.dirty_from_s.is_not(None), s.c.claimed_from_s.is_not(None),
                   s.c.scored_through_s.is_(None),
-                  s.c.scored_through_s + d.c.interval_s + grace <= clock)
-        q = (select(s.c.detector_id, s.c.baseline_id, s.c.score_from_s, s.c.dirty_from_s,
-                    s.c.claimed_from_s, s.c.scored_through_s, s.c.warm_state)
-             .join(d, d.c.detector_id == s.c.detector_id)
-             .where(s.c.baseline_id.is_not(None),
-                    or_(s.c.lease_until_s.is_(None), s.c.lease_until_s < now), due)
-             .order_by(s.c.detector_id).limit(limit))
+                  s.c.scored_through_s + d.c.interval_s + settings.missing_grace_s <= clock)
+        return (select(s.c.detector_id, s.c.baseline_id, s.c.score_from_s, s.c.dirty_from_s,
+                       s.c.claimed_from_s, s.c.scored_through_s, s.c.warm_state)
+                .join(d, d.c.detector_id == s.c.detector_id)
+                .where(s.c.baseline_id.is_not(None),
+                       or_(s.c.lease_until_s.is_(None), s.c.lease_until_s < now), due)
+                .order_by(s.c.detector_id).limit(limit))
+
+    # Look before taking the write lock: an idle scorer must not queue behind ingest.
+    with read_transaction(engine) as conn:
+        clock = clock_now(conn, settings)
+        if conn.execute(due_query(clock).with_only_columns(s.c.detector_id)).first() is None:
+            return [], clock
+    with write_transaction(engine) as conn:
+        clock = clock_now(conn, settings)
+        q = due_query(clock)
         if not is_sqlite(engine):
             q = q.with_for_update(of=s, skip_locked=True)
         rows = conn.execute(q).all()
