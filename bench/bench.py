@@ -315,8 +315,97 @@ def bench_score_db(repeats: int) -> None:
         engine.dispose()
 
 
+def bench_latency(repeats: int) -> None:
+    """Seconds from posting an interval to its alert being pollable, at ~200 counts/s."""
+    from service import fitting
+    from service.demo import load_history
+    from service.registry import import_feature_collection
+
+    feed = REPO / "seed_feed"
+    truth = orjson.loads((feed / "truth.json").read_bytes())
+    t01 = next(i for i in truth["injections"] if i["id"] == "T01")
+    det = t01["detector_ids"][0]
+    test_start = parse("2026-11-16T00:00:00-06:00")
+    fault = parse(t01["start"])
+    print(f"== alert latency: live server (inline scorer, data clock), ~200 counts/s, "
+          f"demo fault {t01['id']} on {det} ==")
+    with tempfile.TemporaryDirectory() as tmp:
+        url = f"sqlite:///{Path(tmp) / 'l.db'}"
+        migrate.upgrade(url)
+        settings = Settings(database_url=url, clock="data")
+        engine = make_engine(settings)
+        import_feature_collection(engine, orjson.loads((feed / "detectors.geojson").read_bytes()))
+        load_history(engine, feed / "counts.csv.gz", until_s=test_start, settings=settings)
+        fitting.fit_many(settings, engine, as_of_s=test_start, workers=2)
+        key = security.create_key(engine, name="lat", role="admin")
+        engine.dispose()
+        from service.replay import read_feed
+        by_start: dict[int, list[dict]] = {}
+        for _l, d, start, start_s, count in read_feed(feed / "counts.csv.gz"):
+            if fault - 3 * 3600 <= start_s < fault + 1800:
+                by_start.setdefault(start_s, []).append(
+                    {"detector_id": d, "start": start, "count": count})
+        port = free_port()
+        env = {**{k: v for k, v in os.environ.items() if not k.startswith("TALLYWARD_")},
+               "TALLYWARD_DATABASE_URL": url, "TALLYWARD_LOG_LEVEL": "WARNING",
+               "TALLYWARD_CLOCK": "data"}
+        proc = subprocess.Popen([sys.executable, "-m", "service.cli", "serve", "--port",
+                                 str(port)], cwd=REPO, env=env, stdout=subprocess.DEVNULL,
+                                stderr=subprocess.DEVNULL)
+        base = f"http://127.0.0.1:{port}"
+        try:
+            for _ in range(300):
+                try:
+                    httpx.get(base + "/v1/health", timeout=1)
+                    break
+                except httpx.HTTPError:
+                    time.sleep(0.1)
+            headers = {"Authorization": f"Bearer {key}"}
+            posted: dict[int, float] = {}
+            seen = None
+            visible_at = 0.0
+            with httpx.Client(base_url=base, headers=headers, timeout=30) as c:
+                # Three hours of steady reporting before the fault, then the fault's start.
+                for start_s in sorted(by_start):
+                    items = by_start[start_s]
+                    t0 = time.perf_counter()
+                    c.post("/v1/counts", json={"counts": items})
+                    posted[start_s] = time.perf_counter()
+                    if start_s >= fault and seen is None:
+                        r = c.get("/v1/alerts", params={"detector_id": det, "kind": "no_counts"})
+                        if r.json()["data"]:
+                            seen, visible_at = r.json()["data"][0], time.perf_counter()
+                    pause = len(items) / 200 - (time.perf_counter() - t0)
+                    if pause > 0:
+                        time.sleep(pause)
+                deadline = time.perf_counter() + 30
+                while seen is None and time.perf_counter() < deadline:
+                    r = c.get("/v1/alerts", params={"detector_id": det, "kind": "no_counts"})
+                    if r.json()["data"]:
+                        seen, visible_at = r.json()["data"][0], time.perf_counter()
+                        break
+                    time.sleep(0.05)
+        finally:
+            proc.terminate()
+            proc.wait(10)
+    if seen is None:
+        print("  no alert seen")
+        return
+    start_s = parse(seen["start"])
+    print(f"  alert {seen['kind']} from {seen['start']}: visible "
+          f"{visible_at - posted[start_s]:.2f} s after that interval was posted "
+          f"(target < 5 s); steady feed {sum(len(v) for v in by_start.values()) / len(by_start):.0f}"
+          " counts per interval at 200 counts/s")
+
+
+def parse(text: str) -> int:
+    from service.timefmt import parse_rfc3339
+
+    return parse_rfc3339(text)
+
+
 SECTIONS = {"ingest": bench_ingest, "fit": bench_fit, "score": bench_score,
-            "score-db": bench_score_db}
+            "score-db": bench_score_db, "latency": bench_latency}
 
 
 def main() -> None:
