@@ -138,6 +138,11 @@ _worker_settings: Settings | None = None
 
 def _init_worker(settings_json: str) -> None:
     global _worker_engine, _worker_settings
+    from threadpoolctl import threadpool_limits
+
+    # One BLAS thread per worker: N workers each running a multi-threaded BLAS on N cores
+    # oversubscribe the machine (measured: threshold derivation 10x slower).
+    threadpool_limits(1)
     _worker_settings = Settings.model_validate_json(settings_json)
     _worker_engine = make_worker_engine(_worker_settings)
 
