@@ -9,7 +9,6 @@ for scoring, prints the alerts an operator would see and scores them against the
 from __future__ import annotations
 
 import os
-import shutil
 import socket
 import subprocess
 import sys
@@ -188,5 +187,4 @@ def main_demo(feed: str | None = None, folder: str | None = None, workers: int =
     out = Path(folder) if folder else Path.cwd() / "demo_run"
     if out.exists() and not (out / "tallyward.db").exists() and any(out.iterdir()):
         raise SystemExit(f"{out} exists and is not a demo folder; pick another with --folder")
-    shutil.rmtree(out / "unused", ignore_errors=True)
     return run_demo(feed=feed_path, folder=out, workers=workers)

@@ -9,6 +9,7 @@
     ├── Forbidden                       403  key lacks the role
     ├── NotFound                        404  unknown detector, alert, baseline
     ├── PayloadTooLarge                 413  body or batch over the configured limit
+    ├── UnsupportedMediaType            415  a body that is neither JSON nor CSV
     └── Unavailable                     503  database busy or down; retry later (Retry-After)
 
 Each carries a stable ``code`` (machine-readable) and a ``message`` that says what was
@@ -66,6 +67,11 @@ class NotFound(TallywardError):
 class PayloadTooLarge(TallywardError):
     status_code = 413
     code = "payload_too_large"
+
+
+class UnsupportedMediaType(TallywardError):
+    status_code = 415
+    code = "unsupported_media_type"
 
 
 class Unavailable(TallywardError):

@@ -12,15 +12,10 @@ from sqlalchemy import select
 from .. import ingest, models
 from ..db import read_transaction
 from ..deps import EngineDep, IngestDep, ReadDep, SettingsDep
-from ..errors import NotFound, TallywardError, ValidationFailed
+from ..errors import NotFound, UnsupportedMediaType, ValidationFailed
 from ..timefmt import format_utc, parse_rfc3339
 
 router = APIRouter(prefix="/v1/counts", tags=["counts"])
-
-
-class UnsupportedMediaType(TallywardError):
-    status_code = 415
-    code = "unsupported_media_type"
 
 
 BATCH_DOC = """Store a batch of interval counts (JSON or CSV).
