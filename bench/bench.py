@@ -75,15 +75,18 @@ def http_ingest(url: str, batches: list[list[dict]]) -> float:
     port = free_port()
     env = {**{k: v for k, v in os.environ.items() if not k.startswith("TALLYWARD_")},
            "TALLYWARD_DATABASE_URL": url, "TALLYWARD_LOG_LEVEL": "WARNING"}
+    log = open(Path(url.removeprefix("sqlite:///")).with_suffix(".log"), "wb")  # noqa: SIM115
     proc = subprocess.Popen([sys.executable, "-m", "service.cli", "serve", "--port", str(port)],
-                            cwd=REPO, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+                            cwd=REPO, env=env, stdout=subprocess.DEVNULL, stderr=log)
     try:
         base = f"http://127.0.0.1:{port}"
-        for _ in range(300):
+        for _ in range(600):
             try:
                 httpx.get(base + "/v1/health", timeout=1)
                 break
             except httpx.HTTPError:
+                if proc.poll() is not None:
+                    raise RuntimeError("server exited: " + Path(log.name).read_text()[-2000:])
                 time.sleep(0.1)
         bodies = [orjson.dumps({"counts": b}) for b in batches]
         headers = {"Authorization": f"Bearer {key}", "Content-Type": "application/json"}
