@@ -86,7 +86,7 @@ def http_ingest(url: str, batches: list[list[dict]]) -> float:
                 break
             except httpx.HTTPError:
                 if proc.poll() is not None:
-                    raise RuntimeError("server exited: " + Path(log.name).read_text()[-2000:])
+                    raise RuntimeError("server exited: " + Path(log.name).read_text()[-2000:]) from None
                 time.sleep(0.1)
         bodies = [orjson.dumps({"counts": b}) for b in batches]
         headers = {"Authorization": f"Bearer {key}", "Content-Type": "application/json"}
@@ -267,23 +267,32 @@ def bench_score(repeats: int) -> None:
     print(f"  thresholds from budget {th_s * 1000:>12.0f} ms per detector (once per baseline)")
 
 
-def bench_score_db(repeats: int) -> None:
-    """The database pass on the demo network: catch-up and an hour at a time."""
-    from service import alerting, fitting, ingest, simulate
+def demo_database(folder: Path, *, until_s: int):  # type: ignore[no-untyped-def]
+    """A SQLite file with the demo network's detectors and history, fitted as of ``until_s``."""
+    from service import fitting
     from service.demo import load_history
     from service.registry import import_feature_collection
+
+    feed = REPO / "seed_feed"
+    url = f"sqlite:///{folder / 'demo.db'}"
+    migrate.upgrade(url)
+    settings = Settings(database_url=url, clock="data")
+    engine = make_engine(settings)
+    import_feature_collection(engine, orjson.loads((feed / "detectors.geojson").read_bytes()))
+    load_history(engine, feed / "counts.csv.gz", until_s=until_s, settings=settings)
+    fitting.fit_many(settings, engine, as_of_s=until_s, workers=2)
+    return url, settings, engine
+
+
+def bench_score_db(repeats: int) -> None:
+    """The database pass on the demo network: catch-up and an hour at a time."""
+    from service import alerting, ingest, simulate
 
     feed = REPO / "seed_feed"
     net_start = simulate.parse_rfc3339("2026-11-16T00:00:00-06:00")
     print("== score (database pass): demo network, 60 detectors, SQLite ==")
     with tempfile.TemporaryDirectory() as tmp:
-        url = f"sqlite:///{Path(tmp) / 's.db'}"
-        migrate.upgrade(url)
-        settings = Settings(database_url=url, clock="data")
-        engine = make_engine(settings)
-        import_feature_collection(engine, orjson.loads((feed / "detectors.geojson").read_bytes()))
-        load_history(engine, feed / "counts.csv.gz", until_s=net_start, settings=settings)
-        fitting.fit_many(settings, engine, as_of_s=net_start, workers=2)
+        url, settings, engine = demo_database(Path(tmp), until_s=net_start)
         rows = []
         from service.replay import read_feed
         for _line, det, start, start_s, count in read_feed(feed / "counts.csv.gz"):
@@ -320,10 +329,6 @@ def bench_score_db(repeats: int) -> None:
 
 def bench_latency(repeats: int) -> None:
     """Seconds from posting an interval to its alert being pollable, at ~200 counts/s."""
-    from service import fitting
-    from service.demo import load_history
-    from service.registry import import_feature_collection
-
     feed = REPO / "seed_feed"
     truth = orjson.loads((feed / "truth.json").read_bytes())
     t01 = next(i for i in truth["injections"] if i["id"] == "T01")
@@ -333,13 +338,7 @@ def bench_latency(repeats: int) -> None:
     print(f"== alert latency: live server (inline scorer, data clock), ~200 counts/s, "
           f"demo fault {t01['id']} on {det} ==")
     with tempfile.TemporaryDirectory() as tmp:
-        url = f"sqlite:///{Path(tmp) / 'l.db'}"
-        migrate.upgrade(url)
-        settings = Settings(database_url=url, clock="data")
-        engine = make_engine(settings)
-        import_feature_collection(engine, orjson.loads((feed / "detectors.geojson").read_bytes()))
-        load_history(engine, feed / "counts.csv.gz", until_s=test_start, settings=settings)
-        fitting.fit_many(settings, engine, as_of_s=test_start, workers=2)
+        url, settings, engine = demo_database(Path(tmp), until_s=test_start)
         key = security.create_key(engine, name="lat", role="admin")
         engine.dispose()
         from service.replay import read_feed
