@@ -31,6 +31,7 @@ sys.path.insert(0, str(REPO))
 from service import migrate, security  # noqa: E402
 from service.config import Settings  # noqa: E402
 from service.db import make_engine  # noqa: E402
+from service.timefmt import parse_rfc3339  # noqa: E402
 from tests.factories import make_detector  # noqa: E402
 
 BATCH = 1000
@@ -103,8 +104,6 @@ def http_ingest(url: str, batches: list[list[dict]]) -> float:
 
 
 def bare_executemany(path: Path, batches: list[list[dict]]) -> float:
-    from service.timefmt import parse_rfc3339
-
     rows = [[(i["detector_id"], parse_rfc3339(i["start"]), i["count"], 0.0) for i in b]
             for b in batches]
     conn = sqlite3.connect(path, isolation_level=None)
@@ -286,10 +285,10 @@ def demo_database(folder: Path, *, until_s: int):  # type: ignore[no-untyped-def
 
 def bench_score_db(repeats: int) -> None:
     """The database pass on the demo network: catch-up and an hour at a time."""
-    from service import alerting, ingest, simulate
+    from service import alerting, ingest
 
     feed = REPO / "seed_feed"
-    net_start = simulate.parse_rfc3339("2026-11-16T00:00:00-06:00")
+    net_start = parse_rfc3339("2026-11-16T00:00:00-06:00")
     print("== score (database pass): demo network, 60 detectors, SQLite ==")
     with tempfile.TemporaryDirectory() as tmp:
         url, settings, engine = demo_database(Path(tmp), until_s=net_start)
@@ -333,8 +332,8 @@ def bench_latency(repeats: int) -> None:
     truth = orjson.loads((feed / "truth.json").read_bytes())
     t01 = next(i for i in truth["injections"] if i["id"] == "T01")
     det = t01["detector_ids"][0]
-    test_start = parse("2026-11-16T00:00:00-06:00")
-    fault = parse(t01["start"])
+    test_start = parse_rfc3339("2026-11-16T00:00:00-06:00")
+    fault = parse_rfc3339(t01["start"])
     print(f"== alert latency: live server (inline scorer, data clock), ~200 counts/s, "
           f"demo fault {t01['id']} on {det} ==")
     with tempfile.TemporaryDirectory() as tmp:
@@ -393,17 +392,11 @@ def bench_latency(repeats: int) -> None:
     if seen is None:
         print("  no alert seen")
         return
-    start_s = parse(seen["start"])
+    start_s = parse_rfc3339(seen["start"])
     print(f"  alert {seen['kind']} from {seen['start']}: visible "
           f"{visible_at - posted[start_s]:.2f} s after that interval was posted "
           f"(target < 5 s); steady feed {sum(len(v) for v in by_start.values()) / len(by_start):.0f}"
           " counts per interval at 200 counts/s")
-
-
-def parse(text: str) -> int:
-    from service.timefmt import parse_rfc3339
-
-    return parse_rfc3339(text)
 
 
 SECTIONS = {"ingest": bench_ingest, "fit": bench_fit, "score": bench_score,

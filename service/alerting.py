@@ -28,7 +28,7 @@ import threading
 import time
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
-from datetime import UTC, datetime
+from datetime import datetime
 from typing import Any
 from zoneinfo import ZoneInfo
 
@@ -40,6 +40,7 @@ from . import baseline as bl
 from . import models, scoring
 from .config import Settings
 from .db import is_sqlite, read_transaction, write_transaction
+from .timefmt import LocalOffsets
 
 log = logging.getLogger("tallyward.scoring")
 
@@ -81,17 +82,7 @@ def mark_dirty(conn: Connection, result: Any) -> None:
 # ----------------------------------------------------------------------------- time helpers
 
 
-class _Offsets:
-    def __init__(self) -> None:
-        self._zones: dict[str, ZoneInfo] = {}
-
-    def offset(self, tz: str, t: int) -> int:
-        zone = self._zones.get(tz) or self._zones.setdefault(tz, ZoneInfo(tz))
-        delta = datetime.fromtimestamp(t, UTC).astimezone(zone).utcoffset()
-        return int(delta.total_seconds()) if delta is not None else 0
-
-
-_OFFSETS = _Offsets()
+_OFFSETS = LocalOffsets()
 
 
 def align_down(t: int, interval_s: int, tz: str) -> int:

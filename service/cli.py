@@ -306,6 +306,13 @@ def cmd_plot(args: argparse.Namespace, settings: Settings) -> int:
 # ----------------------------------------------------------------------------- parser
 
 
+def _server_args(parser: argparse.ArgumentParser, *, role: str) -> None:
+    """--url and --key of a command that talks to a running Tallyward."""
+    parser.add_argument("--url", default="http://127.0.0.1:8000", help="the service's base URL")
+    parser.add_argument("--key", default=os.environ.get("TALLYWARD_KEY"),
+                        help=f"API key (role {role}); default $TALLYWARD_KEY")
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="tallyward", description=__doc__.splitlines()[0])
     sub = p.add_subparsers(dest="command", required=True)
@@ -350,9 +357,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     s = sub.add_parser("replay", help="post a recorded feed through the HTTP API in time order")
     s.add_argument("feed", help="feed folder (with counts.csv.gz) or a counts CSV file")
-    s.add_argument("--url", default="http://127.0.0.1:8000")
-    s.add_argument("--key", default=os.environ.get("TALLYWARD_KEY"),
-                   help="API key (role ingest); default $TALLYWARD_KEY")
+    _server_args(s, role="ingest")
     s.add_argument("--speed", default="max", help="max, or a factor such as 60x")
     s.add_argument("--from", dest="from_", help="RFC 3339: first interval to send")
     s.add_argument("--until", help="RFC 3339: send intervals before this")
@@ -370,8 +375,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     s = sub.add_parser("evaluate", help="score a service's alerts against a feed's truth file")
     s.add_argument("--truth", required=True)
-    s.add_argument("--url", default="http://127.0.0.1:8000")
-    s.add_argument("--key", default=os.environ.get("TALLYWARD_KEY"))
+    _server_args(s, role="read")
     s.add_argument("--json", action="store_true", help="print the report as JSON")
     s.set_defaults(func=cmd_evaluate)
 
@@ -384,8 +388,7 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("detector")
     s.add_argument("--date", required=True, help="local date YYYY-MM-DD")
     s.add_argument("--out", required=True, help="PNG path")
-    s.add_argument("--url", default="http://127.0.0.1:8000")
-    s.add_argument("--key", default=os.environ.get("TALLYWARD_KEY"))
+    _server_args(s, role="read")
     s.set_defaults(func=cmd_plot)
 
     return p

@@ -19,9 +19,7 @@ import io
 import time
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
-from datetime import UTC, datetime
 from typing import Any, NamedTuple
-from zoneinfo import ZoneInfo
 
 import orjson
 from sqlalchemy import Connection, Engine, select
@@ -30,7 +28,7 @@ from sqlalchemy.exc import DBAPIError, OperationalError
 from . import models
 from .db import write_transaction
 from .errors import BadRequest, PayloadTooLarge, Unavailable, ValidationFailed
-from .timefmt import format_utc, parse_rfc3339
+from .timefmt import LocalOffsets, format_utc, parse_rfc3339
 
 MAX_COUNT = 1_000_000  # no detector interval can hold a million vehicles; larger is a data error
 CSV_HEADER = ("detector_id", "start", "count")
@@ -213,24 +211,6 @@ def _count_error(raw: Any) -> tuple[int | None, str | None]:
     return raw, None
 
 
-class _LocalOffsets:
-    """UTC offset lookups per (zone, hour), cached: batches share a handful of hours."""
-
-    def __init__(self) -> None:
-        self._zones: dict[str, ZoneInfo] = {}
-        self._cache: dict[tuple[str, int], int] = {}
-
-    def offset(self, tz: str, start_s: int) -> int:
-        key = (tz, start_s // 900)
-        off = self._cache.get(key)
-        if off is None:
-            zone = self._zones.get(tz) or self._zones.setdefault(tz, ZoneInfo(tz))
-            delta = datetime.fromtimestamp(start_s, UTC).astimezone(zone).utcoffset()
-            off = int(delta.total_seconds()) if delta is not None else 0
-            self._cache[key] = off
-        return off
-
-
 def validate_items(
     items: Sequence[RawItem],
     grids: dict[str, DetectorGrid],
@@ -242,7 +222,7 @@ def validate_items(
     valid: list[tuple[int, str, int, int]] = []
     rejected: list[dict[str, Any]] = []
     parsed_starts: dict[Any, int | str] = {}
-    offsets = _LocalOffsets()
+    offsets = LocalOffsets()
     latest_ok = now_s + future_tolerance_s
 
     def reject(item: RawItem, message: str) -> None:

@@ -47,6 +47,8 @@ from zoneinfo import ZoneInfo
 
 import numpy as np
 
+from .timefmt import parse_rfc3339
+
 SCENARIO = "marrowick-autumn-2026"
 DEFAULT_SEED = 20261116
 TIMEZONE = "America/Chicago"
@@ -331,14 +333,6 @@ def format_rfc3339(start_s: np.ndarray, timezone: str) -> np.ndarray:
     tz = ZoneInfo(timezone)
     text = np.array([datetime.fromtimestamp(int(s), tz).isoformat() for s in unique], dtype=object)
     return text[inverse.reshape(-1)]
-
-
-def parse_rfc3339(text: str) -> int:
-    """Epoch seconds of an RFC 3339 timestamp that carries an offset (or ``Z``)."""
-    moment = datetime.fromisoformat(text.strip())
-    if moment.tzinfo is None:
-        raise ValueError(f"timestamp without UTC offset: {text!r}")
-    return int(moment.timestamp())
 
 
 def _local_days(start_s: np.ndarray, timezone: str) -> tuple[np.ndarray, np.ndarray]:

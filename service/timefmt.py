@@ -37,6 +37,28 @@ def parse_rfc3339(text: str) -> int:
     return int(moment.timestamp())
 
 
+class LocalOffsets:
+    """UTC offsets (seconds) of a zone, cached per 15-minute bucket: zone transitions fall on
+    quarter hours, and batches and scoring passes share a handful of buckets."""
+
+    def __init__(self, max_entries: int = 200_000) -> None:
+        self._zones: dict[str, ZoneInfo] = {}
+        self._cache: dict[tuple[str, int], int] = {}
+        self._max = max_entries
+
+    def offset(self, tz: str, start_s: int) -> int:
+        key = (tz, start_s // 900)
+        off = self._cache.get(key)
+        if off is None:
+            zone = self._zones.get(tz) or self._zones.setdefault(tz, ZoneInfo(tz))
+            delta = datetime.fromtimestamp(start_s, UTC).astimezone(zone).utcoffset()
+            off = int(delta.total_seconds()) if delta is not None else 0
+            if len(self._cache) >= self._max:
+                self._cache.clear()
+            self._cache[key] = off
+        return off
+
+
 def format_utc(epoch_s: float | int) -> str:
     return datetime.fromtimestamp(int(epoch_s), UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
 
