@@ -10,12 +10,21 @@ A batch is stored in one write transaction with one multi-row
   ``GET /v1/counts/conflicts``), never dropped silently;
 - ``rejected``  — the item can never be stored as sent (unknown detector, misaligned,
   malformed, out of range, too far in the future), with a message saying why.
+
+Every value is checked against what the database accepts *before* the insert, so one bad
+item costs only itself: counts are ASCII digits within 0..``MAX_COUNT`` (digit strings are
+length-checked before ``int()``), starts lie in the window of ``timefmt.parse_interval_start``,
+detector ids are well formed (no control characters reach the database), and CSV lines are
+length-limited. Rows are written in (detector_id, start_s) order, so concurrent batches with
+overlapping keys cannot deadlock.
 """
 
 from __future__ import annotations
 
 import csv
 import io
+import json
+import re
 import time
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
@@ -27,15 +36,28 @@ from sqlalchemy.exc import DBAPIError, OperationalError
 
 from . import models
 from .db import write_transaction
-from .errors import BadRequest, PayloadTooLarge, Unavailable, ValidationFailed
-from .timefmt import LocalOffsets, format_utc, parse_rfc3339
+from .errors import BadRequest, PayloadTooLarge, Unavailable, UnsupportedMediaType, ValidationFailed
+from .schemas import DETECTOR_ID_PATTERN, detector_id_error
+from .timefmt import LocalOffsets, format_utc, parse_interval_start, shown
 
 MAX_COUNT = 1_000_000  # no detector interval can hold a million vehicles; larger is a data error
+MAX_COUNT_DIGITS = 20  # a longer digit string is refused before int() ever sees it
+MAX_CSV_LINE_CHARS = 4096  # a counts line is ~100 characters; far longer is not a count
 CSV_HEADER = ("detector_id", "start", "count")
+_ID = re.compile(DETECTOR_ID_PATTERN)
+_WHOLE_NUMBER = re.compile(r"-?[0-9]+", re.ASCII)
 
 
 # One offered item: (index in the batch, detector_id, start text, count) as sent.
 RawItem = tuple[int, Any, Any, Any]
+
+
+class CsvBatch(list[RawItem]):
+    """The items of a CSV body and, in ``lines``, the body line each came from."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.lines: list[int] = []
 
 
 @dataclass
@@ -92,6 +114,17 @@ class BatchResult:
 # ---------------------------------------------------------------------------- parsing
 
 
+def refuse_compressed(body: bytes, content_encoding: str | None) -> None:
+    """Refuse a compressed body (by its Content-Encoding or the gzip magic bytes) with 415."""
+    coding = (content_encoding or "").strip().lower()
+    if coding not in ("", "identity"):
+        raise UnsupportedMediaType(f"Content-Encoding {shown(coding)} is not accepted (gzip is not "
+                                   "accepted); send the body uncompressed")
+    if body[:2] == b"\x1f\x8b":
+        raise UnsupportedMediaType("the body is gzip-compressed and gzip is not accepted; send it "
+                                   "uncompressed as application/json or text/csv")
+
+
 def parse_json_batch(body: bytes, *, max_items: int) -> list[RawItem]:
     """Items of a JSON body ``{"counts": [{"detector_id", "start", "count"}, ...]}``."""
     if not body.strip():
@@ -100,8 +133,7 @@ def parse_json_batch(body: bytes, *, max_items: int) -> list[RawItem]:
     try:
         doc = orjson.loads(body)
     except orjson.JSONDecodeError as exc:
-        raise BadRequest(f"body is not valid JSON ({exc}); send "
-                         '{"counts": [{"detector_id": ..., "start": ..., "count": ...}]}') from None
+        doc = _lenient_json(body, exc)
     if isinstance(doc, list):
         items = doc
     elif isinstance(doc, dict) and "counts" in doc:
@@ -119,37 +151,90 @@ def parse_json_batch(body: bytes, *, max_items: int) -> list[RawItem]:
             for i, item in enumerate(items)]
 
 
-def parse_csv_batch(body: bytes, *, max_items: int) -> list[RawItem]:
-    """Items of a CSV body with header ``detector_id,start,count`` (BOM and CRLF accepted)."""
+def _lenient_json(body: bytes, error: orjson.JSONDecodeError) -> Any:
+    """Second reading of a body orjson refused: well-formed JSON with an item orjson cannot hold
+    (a number past 64 bits, a lone surrogate in a string) must cost that item, not the batch.
+    Integers longer than ``MAX_COUNT_DIGITS`` digits become ``_LongNumber`` without int()."""
+    def no_constant(name: str) -> Any:
+        raise ValueError(f"{name} is not JSON")
+
+    try:
+        return json.loads(body.decode("utf-8"), parse_int=_json_int, parse_constant=no_constant)
+    except (UnicodeDecodeError, ValueError, RecursionError):
+        raise BadRequest(f"body is not valid JSON ({error}); send "
+                         '{"counts": [{"detector_id": ..., "start": ..., "count": ...}]}') from None
+
+
+def _json_int(text: str) -> int | _LongNumber:
+    digits = len(text.lstrip("-"))
+    return int(text) if digits <= MAX_COUNT_DIGITS else _LongNumber(digits)
+
+
+def parse_csv_batch(body: bytes, *, max_items: int) -> CsvBatch:
+    """Items of a CSV body with header ``detector_id,start,count`` (BOM and CRLF accepted).
+
+    One record per line: a line over ``MAX_CSV_LINE_CHARS`` characters, with broken quoting
+    or with too few fields becomes a rejected item naming its line, never a failed batch
+    (and quoted fields cannot run across lines, so the csv module's field limit is never met).
+    """
     try:
         text = body.decode("utf-8-sig")
     except UnicodeDecodeError as exc:
         raise BadRequest(f"CSV body is not UTF-8 ({exc})") from None
     if not text.strip():
         raise BadRequest("empty CSV body; the first line must be the header detector_id,start,count")
-    reader = csv.reader(io.StringIO(text, newline=""))
-    header = next(reader)
+    lines = iter(io.StringIO(text, newline=""))
+    header_line = next(lines).rstrip("\r\n")
+    if len(header_line) > MAX_CSV_LINE_CHARS:
+        raise BadRequest(f"the CSV header line is {len(header_line):,} characters long; it must be "
+                         "detector_id,start,count")
+    header = _csv_fields(header_line)
+    if isinstance(header, str):
+        raise BadRequest(f"the CSV header line is malformed ({header}); it must be "
+                         "detector_id,start,count")
     names = [h.strip().lower() for h in header]
     missing = [c for c in CSV_HEADER if c not in names]
     if missing:
-        raise BadRequest(f"CSV header {','.join(header)!r} lacks column(s) {', '.join(missing)}; "
-                         "the header must name detector_id,start,count")
-    col = {c: names.index(c) for c in CSV_HEADER}
-    width = max(col.values()) + 1
-    out = []
-    for i, row in enumerate(reader):
-        if not row or (len(row) == 1 and not row[0].strip()):
+        raise BadRequest(f"CSV header {shown(','.join(header), 200)} lacks column(s) "
+                         f"{', '.join(missing)}; the header must name detector_id,start,count")
+    col_det, col_start, col_count = (names.index(c) for c in CSV_HEADER)
+    width = max(col_det, col_start, col_count) + 1
+    out = CsvBatch()
+    for line_no, line in enumerate(lines, start=2):
+        line = line.rstrip("\r\n")
+        if not line.strip():
             continue
-        if len(row) < width:
-            out.append((len(out), row[0] if row else None, None, _ShortRow(i + 2, len(row))))
-            continue
-        text = row[col["count"]].strip()
-        out.append((len(out), row[col["detector_id"]].strip(), row[col["start"]].strip(),
-                    int(text) if text.isdigit() and text.isascii() else _CsvCount(text)))
+        index = len(out)
+        out.lines.append(line_no)
+        if len(line) > MAX_CSV_LINE_CHARS:
+            out.append((index, None, None, _BadLine(line_no, f"is {len(line):,} characters long; "
+                                                    f"lines are at most {MAX_CSV_LINE_CHARS:,}")))
+        else:
+            row = _csv_fields(line)
+            if isinstance(row, str):
+                out.append((index, None, None, _BadLine(line_no, f"is malformed CSV ({row})")))
+            elif len(row) < width:
+                out.append((index, row[0], None, _BadLine(
+                    line_no, f"has {len(row)} field(s); expected detector_id,start,count")))
+            else:
+                count = row[col_count].strip()
+                out.append((index, row[col_det].strip(), row[col_start].strip(),
+                            int(count) if count.isdigit() and count.isascii()
+                            and len(count) <= MAX_COUNT_DIGITS else _CsvCount(count)))
         if len(out) > max_items:
             break
     _check_size(len(out), max_items)
     return out
+
+
+def _csv_fields(line: str) -> list[str] | str:
+    """The fields of one CSV line (RFC 4180 quoting), or what is wrong with its quoting."""
+    if '"' not in line:
+        return line.split(",")
+    try:
+        return next(csv.reader([line], strict=True))
+    except csv.Error as exc:
+        return str(exc)
 
 
 def _check_size(n: int, max_items: int) -> None:
@@ -173,14 +258,19 @@ class _NotAnObject:
 
 
 @dataclass(frozen=True)
-class _ShortRow:
+class _BadLine:
     line: int
-    fields: int
+    problem: str
 
 
 @dataclass(frozen=True)
 class _CsvCount:
     text: str
+
+
+@dataclass(frozen=True)
+class _LongNumber:
+    digits: int
 
 
 # ---------------------------------------------------------------------------- validation
@@ -191,24 +281,45 @@ class DetectorGrid(NamedTuple):
     timezone: str
 
 
+COUNTS_ARE = f"counts are whole numbers 0..{MAX_COUNT:,} written with the digits 0-9"
+
+
 def _count_error(raw: Any) -> tuple[int | None, str | None]:
     if isinstance(raw, _CsvCount):
         text = raw.text
-        if not text or not (text.isdigit() or (text[0] == "-" and text[1:].isdigit())):
-            return None, f"count {text!r} is not a whole number; counts are integers 0..{MAX_COUNT:,}"
+        if _WHOLE_NUMBER.fullmatch(text) is None:
+            return None, f"count {shown(text)} is not a whole number; {COUNTS_ARE}"
+        digits = len(text.lstrip("-"))
+        if digits > MAX_COUNT_DIGITS:
+            return None, f"count is a {digits:,}-digit number; {COUNTS_ARE}"
         raw = int(text)
+    elif isinstance(raw, _LongNumber):
+        return None, f"count is a {raw.digits:,}-digit number; {COUNTS_ARE}"
     elif isinstance(raw, _Missing):
         return None, "count is missing; each item needs detector_id, start and count"
+    elif isinstance(raw, float) and raw > MAX_COUNT:
+        return None, (f"count {orjson.dumps(raw).decode()} is larger than {MAX_COUNT:,}, which no "
+                      "detector interval can hold; counts are JSON integers")
     elif isinstance(raw, bool) or not isinstance(raw, int):
-        shown = orjson.dumps(raw).decode() if raw is None or isinstance(raw, (str, float, bool)) \
-            else type(raw).__name__
-        return None, (f"count {shown} is not an integer; counts are JSON integers 0..{MAX_COUNT:,} "
+        what = shown(raw) if isinstance(raw, str) else orjson.dumps(raw).decode() \
+            if raw is None or isinstance(raw, (float, bool)) else type(raw).__name__
+        return None, (f"count {what} is not an integer; counts are JSON integers 0..{MAX_COUNT:,} "
                       "(not strings, not decimals)")
     if raw < 0:
         return None, f"count {raw} is negative; counts are integers 0..{MAX_COUNT:,}"
     if raw > MAX_COUNT:
         return None, f"count {raw} is larger than {MAX_COUNT:,}, which no detector interval can hold"
     return raw, None
+
+
+def _echo(value: Any) -> str | None:
+    """A client's string as it may appear in an answer: cut to 100 characters, lone
+    surrogates escaped (JSON cannot carry them)."""
+    if not isinstance(value, str):
+        return None
+    if len(value) > 100:
+        value = value[:100] + "..."
+    return value.encode("utf-8", "backslashreplace").decode("utf-8")
 
 
 def validate_items(
@@ -218,7 +329,11 @@ def validate_items(
     now_s: float,
     future_tolerance_s: int,
 ) -> tuple[list[tuple[int, str, int, int]], list[dict[str, Any]]]:
-    """Split raw items into valid ``(index, detector_id, start_s, count)`` and rejections."""
+    """Split raw items into valid ``(index, detector_id, start_s, count)`` and rejections.
+
+    A valid item holds only what the database accepts: a registered (hence well-formed)
+    detector id, a start inside the accepted window on the detector's grid, and a count
+    0..``MAX_COUNT``."""
     valid: list[tuple[int, str, int, int]] = []
     rejected: list[dict[str, Any]] = []
     parsed_starts: dict[Any, int | str] = {}
@@ -226,12 +341,8 @@ def validate_items(
     latest_ok = now_s + future_tolerance_s
 
     def reject(item: RawItem, message: str) -> None:
-        rejected.append({
-            "index": item[0],
-            "detector_id": item[1] if isinstance(item[1], str) else None,
-            "start": item[2] if isinstance(item[2], str) else None,
-            "error": message,
-        })
+        rejected.append({"index": item[0], "detector_id": _echo(item[1]),
+                         "start": _echo(item[2]), "error": message})
 
     aligned: dict[tuple[DetectorGrid, int], int] = {}
     for item in items:
@@ -252,15 +363,17 @@ def validate_items(
             reject(item, f"item is a JSON {count.type_name}, not an object with "
                          "detector_id, start and count")
             continue
-        if isinstance(count, _ShortRow):
-            reject(item, f"CSV line {count.line} has {count.fields} field(s); "
-                         "expected detector_id,start,count")
+        if isinstance(count, _BadLine):
+            reject(item, f"CSV line {count.line} {count.problem}; each line is "
+                         "detector_id,start,count")
             continue
         if not isinstance(det, str) or not det:
             reject(item, "detector_id is missing or not a string")
             continue
         if grid is None:
-            reject(item, f"unknown detector {det!r}; register it with PUT /v1/detectors/{{id}} first")
+            problem = detector_id_error(det)
+            reject(item, problem or f"unknown detector {det!r}; register it with "
+                                    "PUT /v1/detectors/{id} first")
             continue
         if not isinstance(start_text, str):
             reject(item, "start is missing or not a string; use an RFC 3339 timestamp with offset, "
@@ -268,7 +381,7 @@ def validate_items(
             continue
         if start is None:
             try:
-                start = parse_rfc3339(start_text)
+                start = parse_interval_start(start_text)
             except ValueError as exc:
                 start = str(exc)
             parsed_starts[start_text] = start
@@ -298,7 +411,9 @@ def validate_items(
 
 
 def load_grids(conn: Connection, detector_ids: Iterable[str]) -> dict[str, DetectorGrid]:
-    ids = sorted({d for d in detector_ids if isinstance(d, str)})
+    # Only well-formed ids are looked up: no registered id holds anything else, and the
+    # database must never see a NUL or an unbounded string.
+    ids = sorted({d for d in detector_ids if type(d) is str and _ID.fullmatch(d)})
     grids: dict[str, DetectorGrid] = {}
     d = models.detectors
     for i in range(0, len(ids), 500):
@@ -336,11 +451,15 @@ def _stored_values(conn: Connection, keys: Iterable[tuple[str, int]]) -> dict[tu
 
 def store_valid(conn: Connection, valid: list[tuple[int, str, int, int]], *, now_s: float,
                 result: BatchResult) -> None:
-    """Insert the valid items of one batch inside the caller's write transaction."""
+    """Insert the valid items of one batch inside the caller's write transaction.
+
+    Rows are inserted in one canonical order, (detector_id, start_s), whatever the order sent:
+    two batches that share keys then take their row locks in the same order and cannot
+    deadlock on PostgreSQL. Within the batch the first item sent for a key is the one stored."""
     first: dict[tuple[str, int], tuple[int, int]] = {}
     repeats: list[tuple[int, str, int, int]] = []
     rows: list[tuple[str, int, int, float]] = []
-    for index, det, start, count in valid:
+    for index, det, start, count in sorted(valid, key=_canonical):
         key = (det, start)
         if key in first:
             repeats.append((index, det, start, count))
@@ -386,8 +505,13 @@ def store_valid(conn: Connection, valid: list[tuple[int, str, int, int]], *, now
         if (det, start) not in conflict_keys and start < result.stored_from.get(det, start + 1):
             result.stored_from[det] = start
     if conflicts_to_record:
+        conflicts_to_record.sort(key=lambda c: (c["detector_id"], c["start_s"]))
         conn.execute(models.count_conflicts.insert(), conflicts_to_record)
     result.conflicts.sort(key=lambda c: c["index"])
+
+
+def _canonical(item: tuple[int, str, int, int]) -> tuple[str, int, int]:
+    return item[1], item[2], item[0]
 
 
 def _conflict(index: int, key: tuple[str, int], stored: int, offered: int) -> dict[str, Any]:
@@ -412,6 +536,10 @@ def ingest_items(engine: Engine, items: Sequence[RawItem], *, future_tolerance_s
             grids = load_grids(conn, (it[1] for it in items))
             valid, rejected = validate_items(items, grids, now_s=now,
                                              future_tolerance_s=future_tolerance_s)
+            lines = getattr(items, "lines", None)
+            if lines is not None:
+                for r in rejected:
+                    r["line"] = lines[r["index"]]
             result.rejected = rejected
             store_valid(conn, valid, now_s=now, result=result)
             if after_store is not None:

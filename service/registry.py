@@ -2,26 +2,24 @@
 
 from __future__ import annotations
 
-import re
 import time
 from typing import Any
 
 from pydantic import ValidationError
 from sqlalchemy import Connection, Engine, func, select
+from sqlalchemy.exc import DataError, IntegrityError
 
 from . import models
 from .db import read_transaction, write_transaction
 from .errors import BadRequest, NotFound, ValidationFailed
-from .schemas import DETECTOR_ID_PATTERN, DetectorCreate, FeatureIn
+from .schemas import DetectorCreate, FeatureIn, detector_id_error
 from .timefmt import format_utc
-
-_ID = re.compile(DETECTOR_ID_PATTERN)
 
 
 def check_detector_id(detector_id: str) -> str:
-    if not _ID.match(detector_id):
-        raise ValidationFailed(f"detector id {detector_id!r} is not valid: 1-64 characters, letters, "
-                               "digits and . _ : - , starting with a letter or digit")
+    problem = detector_id_error(detector_id)
+    if problem:
+        raise ValidationFailed(problem)
     return detector_id
 
 
@@ -103,17 +101,23 @@ def feature_to_spec(feature: dict[str, Any]) -> tuple[str, DetectorCreate]:
     """A GeoJSON Feature (RFC 7946) to a detector id and its registry fields."""
     parsed = FeatureIn.model_validate(feature)
     props = dict(parsed.properties)
-    detector_id = str(props.pop("detector_id", parsed.id))
+    detector_id = props.pop("detector_id", parsed.id)
+    if not isinstance(detector_id, (str, int)) or isinstance(detector_id, bool):
+        raise ValidationFailed(f"detector_id is a JSON {type(detector_id).__name__}; "
+                               "it must be a string (or the Feature's id)")
     if parsed.geometry is not None and "location" not in props:
         props["location"] = parsed.geometry
-    return detector_id, DetectorCreate.model_validate(props)
+    return check_detector_id(str(detector_id)), DetectorCreate.model_validate(props)
 
 
 def import_feature_collection(engine: Engine, doc: Any) -> dict[str, Any]:
-    """Create or update every detector of a FeatureCollection in one transaction.
+    """Create or update every valid detector of a FeatureCollection in one transaction.
 
-    Features that fail validation are listed with their index and message; valid ones are
-    stored. An unusable document (not a FeatureCollection) raises ``BadRequest``."""
+    Partial by design, like a count batch: every feature is validated first (ids, control
+    characters, fields); the valid ones are stored and each bad one is listed in ``errors``
+    with its index and message. An unusable document (not a FeatureCollection) raises
+    ``BadRequest`` and stores nothing. Detectors are written in id order, so two imports at
+    once cannot deadlock."""
     if not isinstance(doc, dict) or doc.get("type") != "FeatureCollection" \
             or not isinstance(doc.get("features"), list):
         raise BadRequest('a detector file is a GeoJSON FeatureCollection (RFC 7946): '
@@ -124,7 +128,6 @@ def import_feature_collection(engine: Engine, doc: Any) -> dict[str, Any]:
     for i, feature in enumerate(doc["features"]):
         try:
             det, spec = feature_to_spec(feature)
-            check_detector_id(det)
         except ValidationError as exc:
             errors.append({"index": i, "error": _pydantic_message(exc)})
             continue
@@ -139,7 +142,7 @@ def import_feature_collection(engine: Engine, doc: Any) -> dict[str, Any]:
         specs.append((i, det, spec))
     created = updated = 0
     with write_transaction(engine) as conn:
-        for i, det, spec in specs:
+        for i, det, spec in sorted(specs, key=lambda s: s[1]):
             try:
                 with conn.begin_nested():
                     if upsert_detector(conn, det, spec):
@@ -148,8 +151,16 @@ def import_feature_collection(engine: Engine, doc: Any) -> dict[str, Any]:
                         updated += 1
             except ValidationFailed as exc:
                 errors.append({"index": i, "detector_id": det, "error": exc.message})
+            except (DataError, IntegrityError) as exc:
+                # Only this feature's savepoint is rolled back; the others still stand.
+                errors.append({"index": i, "detector_id": det, "error": (
+                    f"the database refused this detector ({type(exc.orig).__name__}: "
+                    f"{str(exc.orig).splitlines()[0][:200]})")})
     errors.sort(key=lambda e: e["index"])
-    return {"created": created, "updated": updated, "errors": errors}
+    message = f"{created} created, {updated} updated, {len(errors)} rejected"
+    if errors:
+        message += "; the rejected features were not stored: see errors (the others were)"
+    return {"message": message, "created": created, "updated": updated, "errors": errors}
 
 
 def _pydantic_message(exc: ValidationError) -> str:

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 from functools import lru_cache
 from typing import Any, Literal
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
@@ -9,6 +10,34 @@ from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
 DETECTOR_ID_PATTERN = r"^[A-Za-z0-9][A-Za-z0-9._:\-]{0,63}$"
+DETECTOR_ID_RULE = "1-64 characters: letters, digits and . _ : - , starting with a letter or digit"
+_ID = re.compile(DETECTOR_ID_PATTERN)
+# C0/C1 controls and DEL, lone surrogates, line/paragraph separators: never in ids or registry
+# text (PostgreSQL refuses NUL, and a log line or a CSV export would break on the others).
+CONTROL_CHARACTERS = re.compile(r"[\x00-\x1f\x7f-\x9f\ud800-\udfff\u2028\u2029]")
+
+
+def control_character_error(text: str) -> str | None:
+    """A message naming the first control character of ``text``, or None when it has none."""
+    bad = CONTROL_CHARACTERS.search(text)
+    if bad is None:
+        return None
+    return (f"holds the control character U+{ord(bad.group()):04X} at position {bad.start() + 1}; "
+            "text fields take printable characters only (no NUL, tab or line break)")
+
+
+def detector_id_error(detector_id: str) -> str | None:
+    """What is wrong with a detector id (named ``detector_id`` in the message), or None."""
+    if _ID.fullmatch(detector_id):  # fullmatch: "$" alone would let a trailing newline through
+        return None
+    bad = CONTROL_CHARACTERS.search(detector_id)
+    if bad is not None:
+        return (f"detector_id holds the control character U+{ord(bad.group()):04X} at position "
+                f"{bad.start() + 1}; ids are {DETECTOR_ID_RULE}")
+    if len(detector_id) > 64:
+        return f"detector_id is {len(detector_id):,} characters long; ids are {DETECTOR_ID_RULE}"
+    shown = repr(detector_id[:64])
+    return f"detector_id {shown} is not a valid id; ids are {DETECTOR_ID_RULE}"
 
 
 class GeoPoint(BaseModel):
@@ -56,6 +85,15 @@ class DetectorCreate(BaseModel):
         None, gt=0, le=10_000, description="Override of the per-lane hourly capacity cap (veh/h/lane)."
     )
 
+    @field_validator("timezone", "group", "label", "holiday_calendar", mode="before")
+    @classmethod
+    def _printable(cls, value: Any) -> Any:
+        if isinstance(value, str):
+            problem = control_character_error(value)
+            if problem:
+                raise ValueError(problem)
+        return value
+
     @field_validator("interval_s")
     @classmethod
     def _interval(cls, value: int) -> int:
@@ -97,6 +135,7 @@ class DetectorsPublic(BaseModel):
 
 
 class DetectorImportResult(BaseModel):
+    message: str
     created: int
     updated: int
     errors: list[dict[str, Any]]

@@ -1,4 +1,9 @@
-"""RFC 3339 timestamps in and out. Stored times are UTC epoch seconds."""
+"""RFC 3339 timestamps in and out. Stored times are UTC epoch seconds.
+
+Interval starts are accepted only inside ``EARLIEST_START_S .. LATEST_START_S`` (1990 up to
+2100, UTC): wide enough for any detector history, narrow enough that every local time and
+every UTC offset of a stored start stays a valid ``datetime``.
+"""
 
 from __future__ import annotations
 
@@ -6,9 +11,23 @@ import re
 from datetime import UTC, datetime
 from zoneinfo import ZoneInfo
 
+# re.ASCII: \d is 0-9 only (no full-width or other Unicode digits); \Z: no trailing newline.
 _RFC3339 = re.compile(
-    r"^(?P<base>\d{4}-\d{2}-\d{2}[Tt ]\d{2}:\d{2}:\d{2})(?P<frac>\.\d+)?(?P<offset>[Zz]|[+-]\d{2}:\d{2})?$"
+    r"(?P<base>\d{4}-\d{2}-\d{2}[Tt ]\d{2}:\d{2}:\d{2})(?P<frac>\.\d{1,9})?"
+    r"(?P<offset>[Zz]|[+-]\d{2}:\d{2})?\Z",
+    re.ASCII,
 )
+MAX_TIMESTAMP_CHARS = 64  # longer text is not a timestamp; refused before the regex sees it
+
+EARLIEST_START_S = 631_152_000  # 1990-01-01T00:00:00Z
+LATEST_START_S = 4_102_444_800  # 2100-01-01T00:00:00Z (exclusive)
+START_WINDOW_TEXT = "1990-01-01T00:00:00Z up to (not including) 2100-01-01T00:00:00Z"
+
+
+def shown(text: str, limit: int = 40) -> str:
+    """``repr`` of a client's text cut to ``limit`` characters, safe to put in a message
+    (control characters and lone surrogates escaped)."""
+    return repr(text) if len(text) <= limit else repr(text[:limit]) + f"... ({len(text):,} characters)"
 
 
 def parse_rfc3339(text: str) -> int:
@@ -20,21 +39,32 @@ def parse_rfc3339(text: str) -> int:
     if not isinstance(text, str):
         raise ValueError(f"start must be an RFC 3339 string such as 2026-11-16T08:15:00-06:00, "
                          f"got {type(text).__name__}")
-    match = _RFC3339.match(text.strip())
+    match = _RFC3339.match(text.strip()) if len(text) <= MAX_TIMESTAMP_CHARS else None
     if match is None:
-        raise ValueError(f"start {text!r} is not an RFC 3339 date-time; use e.g. "
+        raise ValueError(f"start {shown(text)} is not an RFC 3339 date-time; use e.g. "
                          "2026-11-16T08:15:00-06:00 or 2026-11-16T14:15:00Z")
     if match.group("offset") is None:
-        raise ValueError(f"start {text!r} has no UTC offset; add Z or ±hh:mm, e.g. "
+        raise ValueError(f"start {shown(text)} has no UTC offset; add Z or ±hh:mm, e.g. "
                          "2026-11-16T08:15:00-06:00")
     if match.group("frac") and int(match.group("frac")[1:]) != 0:
-        raise ValueError(f"start {text!r} has fractional seconds; interval starts are whole seconds")
+        raise ValueError(f"start {shown(text)} has fractional seconds; interval starts are "
+                         "whole seconds")
     try:
         moment = datetime.fromisoformat(match.group("base") + match.group("offset").upper())
-    except ValueError as exc:
-        raise ValueError(f"start {text!r} is not a valid date-time ({exc}); use e.g. "
+        return int(moment.timestamp())
+    except (ValueError, OverflowError) as exc:
+        raise ValueError(f"start {shown(text)} is not a valid date-time ({exc}); use e.g. "
                          "2026-11-16T08:15:00-06:00") from None
-    return int(moment.timestamp())
+
+
+def parse_interval_start(text: str) -> int:
+    """``parse_rfc3339`` for an interval start, also refused outside the accepted window
+    (``EARLIEST_START_S`` .. ``LATEST_START_S``)."""
+    start_s = parse_rfc3339(text)
+    if not EARLIEST_START_S <= start_s < LATEST_START_S:
+        raise ValueError(f"start {shown(text)} is outside the accepted range: interval starts "
+                         f"run from {START_WINDOW_TEXT}")
+    return start_s
 
 
 class LocalOffsets:

@@ -13,24 +13,31 @@ from .. import ingest, models
 from ..db import read_transaction
 from ..deps import EngineDep, IngestDep, ReadDep, SettingsDep
 from ..errors import NotFound, UnsupportedMediaType, ValidationFailed
-from ..timefmt import format_utc, parse_rfc3339
+from ..timefmt import START_WINDOW_TEXT, format_utc, parse_rfc3339
 
 router = APIRouter(prefix="/v1/counts", tags=["counts"])
 
 
-BATCH_DOC = """Store a batch of interval counts (JSON or CSV).
+BATCH_DOC = f"""Store a batch of interval counts (JSON or CSV).
 
 Status: 200 every item stored or an identical duplicate; 409 nothing rejected but some
 offered values differ from stored ones (kept, listed in `conflicts`); 422 some items can
 never be stored as sent (listed in `errors`; the valid ones are stored); 413 batch too
-large; 503 nothing was stored, resend the same batch after Retry-After."""
+large; 415 neither JSON nor CSV, or compressed (gzip is not accepted); 503 nothing was
+stored, resend the same batch after Retry-After. Counts are whole numbers
+0..{ingest.MAX_COUNT:,}; starts are RFC 3339 with an offset, from {START_WINDOW_TEXT};
+CSV lines are at most {ingest.MAX_CSV_LINE_CHARS:,} characters and a rejected CSV item
+also names its `line`."""
 
 
 @router.post("", description=BATCH_DOC, summary="Store a batch of interval counts")
 async def post_counts(request: Request, engine: EngineDep, settings: SettingsDep,
                       _: IngestDep) -> Response:
     body = await request.body()
-    content_type = request.headers.get("content-type", "application/json").split(";")[0].strip()
+    ingest.refuse_compressed(body, request.headers.get("content-encoding"))
+    # Media types are case-insensitive (RFC 9110 section 8.3.1).
+    content_type = request.headers.get("content-type", "application/json").split(";")[0]
+    content_type = content_type.strip().lower()
     if content_type in ("application/json", ""):
         items = ingest.parse_json_batch(body, max_items=settings.max_batch_items)
     elif content_type in ("text/csv", "application/csv"):

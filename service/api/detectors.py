@@ -8,7 +8,7 @@ import orjson
 from fastapi import APIRouter, Path, Query, Request, Response
 from fastapi.concurrency import run_in_threadpool
 
-from .. import registry
+from .. import ingest, registry
 from ..db import write_transaction
 from ..deps import AdminDep, EngineDep, ReadDep
 from ..errors import BadRequest
@@ -52,12 +52,25 @@ def get_detector(detector_id: DetectorId, engine: EngineDep, _: ReadDep) -> dict
 import_router = APIRouter(prefix="/v1", tags=["detectors"])
 
 
-@import_router.post("/detectors:import", response_model=DetectorImportResult)
-async def import_detectors(request: Request, engine: EngineDep, _: AdminDep) -> dict[str, Any]:
-    """Create or update detectors from a GeoJSON FeatureCollection."""
+IMPORT_DOC = """Create or update detectors from a GeoJSON FeatureCollection (RFC 7946).
+
+Partial, like a count batch: 200 every feature stored; 422 some features were refused (each
+listed in `errors` with its index and what is wrong) and **all the valid ones were stored**;
+400 the document is not a FeatureCollection (nothing stored); 415 compressed (gzip is not
+accepted). Text fields refuse control characters (NUL, tab, line breaks) by field name."""
+
+
+@import_router.post("/detectors:import", response_model=DetectorImportResult,
+                    responses={422: {"model": DetectorImportResult}},
+                    summary="Create or update detectors from a GeoJSON FeatureCollection",
+                    description=IMPORT_DOC)
+async def import_detectors(request: Request, engine: EngineDep, _: AdminDep) -> Response:
     body = await request.body()
+    ingest.refuse_compressed(body, request.headers.get("content-encoding"))
     try:
         doc = orjson.loads(body)
     except orjson.JSONDecodeError as exc:
         raise BadRequest(f"body is not valid JSON ({exc}); send a GeoJSON FeatureCollection") from None
-    return await run_in_threadpool(registry.import_feature_collection, engine, doc)
+    result = await run_in_threadpool(registry.import_feature_collection, engine, doc)
+    return Response(orjson.dumps(result), status_code=422 if result["errors"] else 200,
+                    media_type="application/json")
