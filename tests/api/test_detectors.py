@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+import gzip
+
+import orjson
 import pytest
 
 from tests.conftest import auth
@@ -61,9 +64,9 @@ def test_import_feature_collection_stores_valid_features_and_lists_bad(client, k
            "properties": {"detector_id": "A2", "interval_s": 7, "timezone": "UTC"}}
     doc = {"type": "FeatureCollection", "features": [good, bad, dict(good)]}
     r = client.post("/v1/detectors:import", json=doc, headers=auth(keys["admin"]))
-    assert r.status_code == 200, r.text
+    assert r.status_code == 422, r.text
     body = r.json()
-    assert body["created"] == 1
+    assert body["created"] == 1 and "2 rejected" in body["message"]
     assert [e["index"] for e in body["errors"]] == [1, 2]
     assert "interval_s" in body["errors"][0]["error"]
     assert "twice" in body["errors"][1]["error"]
@@ -73,3 +76,69 @@ def test_import_rejects_document_that_is_not_a_feature_collection(client, keys) 
     """A non-FeatureCollection document is a 400 naming RFC 7946."""
     r = client.post("/v1/detectors:import", json={"type": "Feature"}, headers=auth(keys["admin"]))
     assert r.status_code == 400 and "FeatureCollection" in r.json()["message"]
+
+
+@pytest.mark.parametrize("field", ["label", "group", "timezone", "holiday_calendar"])
+@pytest.mark.parametrize("char", ["\x00", "\n", "\x7f", "\u2028"])
+def test_put_detector_rejects_control_characters_naming_field(client, keys, field, char) -> None:
+    """A NUL or other control character in a text field is a 422 naming the field, never a 500."""
+    value = {"label": "Elm", "group": "elm-nb", "timezone": "UTC", "holiday_calendar": "US"}[field]
+    body = detector_payload(**{field: value[:1] + char + value[1:]})
+    r = client.put("/v1/detectors/X1", json=body, headers=auth(keys["admin"]))
+    assert r.status_code == 422, r.text
+    assert r.json()["message"].startswith(f"{field}: ")
+    assert f"U+{ord(char):04X}" in r.json()["message"]
+    assert client.get("/v1/detectors/X1", headers=auth(keys["read"])).status_code == 404
+
+
+def test_put_detector_rejects_nul_in_path_id(client, keys) -> None:
+    """A NUL in the detector id of the path is a 422, never a 500."""
+    r = client.put("/v1/detectors/D%001", json=detector_payload(), headers=auth(keys["admin"]))
+    assert r.status_code == 422, r.text
+
+
+def feature(detector_id, **props):  # type: ignore[no-untyped-def]
+    body = {k: v for k, v in detector_payload().items() if k != "location"}
+    body.update(props)
+    return {"type": "Feature", "geometry": {"type": "Point", "coordinates": [-97.5, 35.2]},
+            "properties": {"detector_id": detector_id, **body}}
+
+
+@pytest.mark.parametrize(("bad", "message"), [
+    (feature("B\x001"), "U+0000"),
+    (feature("B1\n"), "U+000A"),
+    (feature("B1", label="Elm\x00Ave"), "label: "),
+    (feature("B1", group="elm\tnb"), "group: "),
+    (feature("B1", timezone="UTC\x00"), "timezone: "),
+    (feature(["B1"]), "detector_id is a JSON list"),
+    ({"type": "Feature", "id": "B1\x00", "geometry": None,
+      "properties": {"interval_s": 300, "timezone": "UTC"}}, "U+0000"),
+])
+def test_import_bad_feature_is_listed_and_good_ones_stored(client, keys, bad, message) -> None:
+    """One feature the database could not hold is a 422 naming its index; the others are stored."""
+    doc = {"type": "FeatureCollection", "features": [feature("A1"), bad, feature("A2")]}
+    r = client.post("/v1/detectors:import", json=doc, headers=auth(keys["admin"]))
+    assert r.status_code == 422, r.text
+    body = r.json()
+    assert body["created"] == 2 and [e["index"] for e in body["errors"]] == [1]
+    assert message in body["errors"][0]["error"]
+    listed = client.get("/v1/detectors", headers=auth(keys["read"])).json()
+    assert [d["detector_id"] for d in listed["data"]] == ["A1", "A2"]
+
+
+def test_import_all_valid_is_200(client, keys) -> None:
+    """An import with no bad feature answers 200 with what was created and updated."""
+    doc = {"type": "FeatureCollection", "features": [feature("A1"), feature("A2")]}
+    h = auth(keys["admin"])
+    r = client.post("/v1/detectors:import", json=doc, headers=h)
+    assert r.status_code == 200 and (r.json()["created"], r.json()["errors"]) == (2, [])
+    r = client.post("/v1/detectors:import", json=doc, headers=h)
+    assert r.status_code == 200 and r.json()["updated"] == 2
+
+
+def test_import_gzip_body_is_415(client, keys) -> None:
+    """A gzip-compressed detector file is refused as gzip, not as bad JSON."""
+    doc = {"type": "FeatureCollection", "features": [feature("A1")]}
+    r = client.post("/v1/detectors:import", content=gzip.compress(orjson.dumps(doc)),
+                    headers={**auth(keys["admin"]), "content-type": "application/geo+json"})
+    assert r.status_code == 415 and "gzip is not accepted" in r.json()["message"]
