@@ -298,11 +298,12 @@ def _count_error(raw: Any) -> tuple[int | None, str | None]:
     elif isinstance(raw, _Missing):
         return None, "count is missing; each item needs detector_id, start and count"
     elif isinstance(raw, float) and raw > MAX_COUNT:
-        return None, (f"count {orjson.dumps(raw).decode()} is larger than {MAX_COUNT:,}, which no "
+        return None, (f"count {raw!r} is larger than {MAX_COUNT:,}, which no "
                       "detector interval can hold; counts are JSON integers")
     elif isinstance(raw, bool) or not isinstance(raw, int):
-        what = shown(raw) if isinstance(raw, str) else orjson.dumps(raw).decode() \
-            if raw is None or isinstance(raw, (float, bool)) else type(raw).__name__
+        what = shown(raw) if isinstance(raw, str) else repr(raw) if isinstance(raw, float) \
+            else orjson.dumps(raw).decode() if raw is None or isinstance(raw, bool) \
+            else type(raw).__name__
         return None, (f"count {what} is not an integer; counts are JSON integers 0..{MAX_COUNT:,} "
                       "(not strings, not decimals)")
     if raw < 0:
