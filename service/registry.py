@@ -12,7 +12,7 @@ from sqlalchemy.exc import DataError, IntegrityError
 from . import models
 from .db import read_transaction, write_transaction
 from .errors import BadRequest, NotFound, ValidationFailed
-from .schemas import DetectorCreate, FeatureIn, detector_id_error
+from .schemas import DetectorCreate, FeatureIn, control_character_error, detector_id_error
 from .timefmt import format_utc
 
 
@@ -83,6 +83,10 @@ def get_detector(engine: Engine, detector_id: str) -> dict[str, Any]:
 
 def list_detectors(engine: Engine, *, group: str | None = None, limit: int = 1000,
                    after: str | None = None) -> tuple[list[dict[str, Any]], int]:
+    for name, value in (("group", group), ("after", after)):
+        problem = control_character_error(value) if value is not None else None
+        if problem:  # PostgreSQL would refuse a NUL in the query with a server error
+            raise ValidationFailed(f"{name} {problem}")
     d = models.detectors
     q = select(d).order_by(d.c.detector_id)
     total_q = select(func.count()).select_from(d)

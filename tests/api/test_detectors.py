@@ -142,3 +142,11 @@ def test_import_gzip_body_is_415(client, keys) -> None:
     r = client.post("/v1/detectors:import", content=gzip.compress(orjson.dumps(doc)),
                     headers={**auth(keys["admin"]), "content-type": "application/geo+json"})
     assert r.status_code == 415 and "gzip is not accepted" in r.json()["message"]
+
+
+@pytest.mark.parametrize("param", ["group", "after"])
+def test_list_detectors_rejects_nul_in_query(client, keys, param) -> None:
+    """A NUL in a list filter is a 422 naming the parameter, never a 500."""
+    r = client.get("/v1/detectors", params={param: "g\x001"}, headers=auth(keys["read"]))
+    assert r.status_code == 422, r.text
+    assert r.json()["message"].startswith(f"{param} holds the control character U+0000")
