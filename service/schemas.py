@@ -8,6 +8,8 @@ from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
+from .limits import plain_text
+
 DETECTOR_ID_PATTERN = r"^[A-Za-z0-9][A-Za-z0-9._:\-]{0,63}$"
 
 
@@ -55,6 +57,11 @@ class DetectorCreate(BaseModel):
     capacity_per_lane_h: float | None = Field(
         None, gt=0, le=10_000, description="Override of the per-lane hourly capacity cap (veh/h/lane)."
     )
+
+    @field_validator("group", "label")
+    @classmethod
+    def _no_control_characters(cls, value: str | None) -> str | None:
+        return plain_text(value)
 
     @field_validator("interval_s")
     @classmethod
