@@ -6,7 +6,7 @@ import logging
 import re
 import time
 import uuid
-from collections.abc import AsyncIterator
+from collections.abc import AsyncIterator, Iterable, Iterator
 from contextlib import asynccontextmanager
 from typing import Any
 
@@ -15,6 +15,7 @@ import orjson
 from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import Response
+from fastapi.routing import APIRoute
 from sqlalchemy import Engine
 from sqlalchemy.exc import OperationalError
 from starlette.exceptions import HTTPException as StarletteHTTPException
@@ -89,8 +90,8 @@ class KeyBeforeBody:
     def _permission(self, scope: Scope) -> str | None:
         """The permission the matching route requires (from its ``require`` dependency)."""
         if self._permissions is None:
-            self._permissions = [(route, perm) for route in scope["app"].routes
-                                 if (perm := _route_permission(getattr(route, "dependant", None)))]
+            self._permissions = [(route, perm) for route in _api_routes(scope["app"].routes)
+                                 if (perm := _route_permission(route.dependant))]
         for route, permission in self._permissions:
             match, _ = route.matches(scope)
             if match == Match.FULL:
@@ -98,9 +99,16 @@ class KeyBeforeBody:
         return None
 
 
+def _api_routes(routes: Iterable[Any]) -> Iterator[APIRoute]:
+    for route in routes:
+        if isinstance(route, APIRoute):
+            yield route
+        inner = getattr(route, "original_router", None)  # newer FastAPI wraps included routers
+        if inner is not None:
+            yield from _api_routes(inner.routes)
+
+
 def _route_permission(dependant: Any) -> str | None:
-    if dependant is None:
-        return None
     for dep in dependant.dependencies:
         found = getattr(dep.call, "permission", None) or _route_permission(dep)
         if found:

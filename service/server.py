@@ -43,7 +43,9 @@ if HttpToolsProtocol is not None:
             self.max_header_bytes = settings.http_max_header_bytes
             self._header_deadline: asyncio.TimerHandle | None = None
             self._reading_headers = True
-            self._header_bytes = 0
+            self._raw_header_bytes = 0  # bytes received while a request's headers are open
+            self._parsed_header_bytes = 0  # request line and headers parsed so far
+            self._refused = False
 
         def connection_made(self, transport: asyncio.Transport) -> None:  # type: ignore[override]
             super().connection_made(transport)
@@ -54,14 +56,15 @@ if HttpToolsProtocol is not None:
             super().connection_lost(exc)
 
         def data_received(self, data: bytes) -> None:
+            if self._refused:
+                return
             super().data_received(data)
-            if self.transport.is_closing():
+            if self._refused or self.transport.is_closing():
                 return
             if self._reading_headers:
-                self._header_bytes += len(data)
-                if self._header_bytes > self.max_header_bytes:
-                    self._refuse(431, f"request line and headers are over the "
-                                      f"{self.max_header_bytes:,}-byte limit")
+                self._raw_header_bytes += len(data)
+                if max(self._raw_header_bytes, self._parsed_header_bytes) > self.max_header_bytes:
+                    self._refuse_oversized_headers()
                     return
             if self._header_deadline is None and self._idle():
                 # Bytes between requests that start none (blank lines) still owe a request.
@@ -70,13 +73,32 @@ if HttpToolsProtocol is not None:
         def on_message_begin(self) -> None:
             super().on_message_begin()
             self._reading_headers = True
-            self._header_bytes = 0
+            self._raw_header_bytes = self._parsed_header_bytes = 0
             self._arm_header_deadline()
+
+        def on_url(self, url: bytes) -> None:
+            self._parsed_header_bytes += len(url)
+            super().on_url(url)
+
+        def on_header(self, name: bytes, value: bytes) -> None:
+            self._parsed_header_bytes += len(name) + len(value) + 4
+            super().on_header(name, value)
 
         def on_headers_complete(self) -> None:
             self._reading_headers = False
             self._disarm_header_deadline()
+            if self._parsed_header_bytes > self.max_header_bytes:
+                self._refuse_oversized_headers()
+                return
             super().on_headers_complete()
+
+        def on_body(self, body: bytes) -> None:
+            if not self._refused:
+                super().on_body(body)
+
+        def on_message_complete(self) -> None:
+            if not self._refused:
+                super().on_message_complete()
 
         def _idle(self) -> bool:
             return self.cycle is None or self.cycle.response_complete
@@ -100,13 +122,18 @@ if HttpToolsProtocol is not None:
                 # then close.
                 self.cycle.keep_alive = False
                 return
-            if self._header_bytes:
+            if self._raw_header_bytes:
                 self._refuse(408, f"request headers did not arrive within "
                                   f"{self.header_timeout_s:g} seconds")
             else:
                 self.transport.close()
 
+        def _refuse_oversized_headers(self) -> None:
+            self._refuse(431, f"request line and headers are over the "
+                              f"{self.max_header_bytes:,}-byte limit")
+
         def _refuse(self, status: int, message: str) -> None:
+            self._refused = True
             self._disarm_header_deadline()
             body = message.encode()
             self.transport.write(b"".join([
