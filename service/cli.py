@@ -16,6 +16,7 @@ from pathlib import Path
 from typing import Any, TextIO
 
 import orjson
+from sqlalchemy.exc import OperationalError
 
 from .config import Settings, get_settings
 from .errors import TallywardError
@@ -64,14 +65,39 @@ def _safe_url(settings: Settings) -> str:
     return make_url(settings.database_url).render_as_string(hide_password=True)
 
 
+def _is_loopback_host(host: str) -> bool:
+    import ipaddress
+
+    if host == "localhost":
+        return True
+    try:
+        return ipaddress.ip_address(host.strip("[]")).is_loopback
+    except ValueError:
+        return False
+
+
 def cmd_serve(args: argparse.Namespace, settings: Settings) -> int:
     import uvicorn
 
-    from . import migrate
+    from . import migrate, server
 
+    if settings.auth == "loopback-open":
+        if not _is_loopback_host(args.host):
+            print(f"error: TALLYWARD_AUTH=loopback-open lets any client on this machine act as "
+                  f"admin without a key; it is for a demo bound to loopback and is refused with "
+                  f"--host {args.host}. Serve on --host 127.0.0.1, or set "
+                  f"TALLYWARD_AUTH=required and use API keys.", file=sys.stderr)
+            return 2
+        print("WARNING: TALLYWARD_AUTH=loopback-open (demo only): every request from this "
+              "machine without a proxy forwarding header is admitted as admin without a key. "
+              "Do not put a reverse proxy on this host in front of it; use "
+              "TALLYWARD_AUTH=required for anything but a local demo.", file=sys.stderr)
     migrate.upgrade(settings.database_url)
     uvicorn.run("service.main:app_from_env", factory=True, host=args.host, port=args.port,
-                workers=args.workers, log_level="warning", access_log=False)
+                workers=args.workers, log_level="warning", access_log=False,
+                http=server.protocol(), timeout_keep_alive=settings.http_keep_alive_s,
+                limit_concurrency=settings.http_max_connections,
+                h11_max_incomplete_event_size=settings.http_max_header_bytes)
     return 0
 
 
@@ -136,7 +162,8 @@ def cmd_import_counts(args: argparse.Namespace, settings: Settings) -> int:
         result = ingest.ingest_items(engine, items, future_tolerance_s=settings.future_tolerance_s,
                                      after_store=getattr(args, "after_store", None))
         for r in result.rejected:
-            r["line"] = first_line + r["index"]
+            # the chunk's own line numbers count its header as line 1
+            r["line"] = first_line - 2 + r["line"] if "line" in r else first_line + r["index"]
         total.merge(result, index_offset=seen_items)
         seen_items += len(items)
         pos = _file_pos(raw, stream)
@@ -229,7 +256,7 @@ def cmd_replay(args: argparse.Namespace, settings: Settings) -> int:
 
     try:
         with tqdm(unit="count", desc="replay", file=sys.stderr, disable=args.quiet) as bar:
-            summary = replay(args.feed, url=args.url, key=args.key, speed=args.speed,
+            summary = replay(args.feed, url=args.url, key=api_key(args), speed=args.speed,
                              from_s=_time_arg(args.from_), until_s=_time_arg(args.until),
                              batch=args.batch, progress=bar.update)
     except ReplayError as exc:
@@ -256,9 +283,9 @@ def cmd_evaluate(args: argparse.Namespace, settings: Settings) -> int:
     from . import evaluate
 
     truth = evaluate.load_truth(args.truth)
-    alerts = evaluate.fetch_alerts(args.url, args.key)
-    report = evaluate.evaluate(truth, alerts, intervals=evaluate.detector_intervals(args.url,
-                                                                                    args.key))
+    key = api_key(args)
+    alerts = evaluate.fetch_alerts(args.url, key)
+    report = evaluate.evaluate(truth, alerts, intervals=evaluate.detector_intervals(args.url, key))
     if args.json:
         print(orjson.dumps(report, option=orjson.OPT_INDENT_2).decode())
     else:
@@ -287,7 +314,8 @@ def cmd_plot(args: argparse.Namespace, settings: Settings) -> int:
 
     from .plots import plot_day
 
-    headers = {"Authorization": f"Bearer {args.key}"} if args.key else {}
+    key = api_key(args)
+    headers = {"Authorization": f"Bearer {key}"} if key else {}
     with httpx.Client(base_url=args.url, headers=headers, timeout=30) as c:
         r = c.get(f"/v1/detectors/{args.detector}/baseline", params={"date": args.date})
         if r.status_code != 200:
@@ -306,11 +334,41 @@ def cmd_plot(args: argparse.Namespace, settings: Settings) -> int:
 # ----------------------------------------------------------------------------- parser
 
 
+KEY_ENV = "TALLYWARD_API_KEY"
+OLD_KEY_ENV = "TALLYWARD_KEY"  # the earlier name, still read
+
+
 def _server_args(parser: argparse.ArgumentParser, *, role: str) -> None:
-    """--url and --key of a command that talks to a running Tallyward."""
+    """--url and the API key of a command that talks to a running Tallyward."""
     parser.add_argument("--url", default="http://127.0.0.1:8000", help="the service's base URL")
-    parser.add_argument("--key", default=os.environ.get("TALLYWARD_KEY"),
-                        help=f"API key (role {role}); default $TALLYWARD_KEY")
+    given = parser.add_mutually_exclusive_group()
+    given.add_argument("--key-file", help=f"file holding the API key (role {role}); "
+                                          f"default: ${KEY_ENV}")
+    given.add_argument("--key", help="the API key itself; other users of this machine can read "
+                                     f"it in the process list, so prefer --key-file or ${KEY_ENV}")
+
+
+def api_key(args: argparse.Namespace) -> str | None:
+    """The key from --key-file, --key, $TALLYWARD_API_KEY or $TALLYWARD_KEY, in that order."""
+    if getattr(args, "key_file", None):
+        path = Path(args.key_file)
+        try:
+            text = path.read_text(encoding="utf-8")
+            mode = path.stat().st_mode
+        except (OSError, UnicodeDecodeError) as exc:
+            raise TallywardError(f"--key-file {path}: cannot read it ({exc})") from None
+        lines = [line.strip() for line in text.splitlines() if line.strip()]
+        if len(lines) != 1 or any(ch.isspace() for ch in lines[0]):
+            raise TallywardError(f"--key-file {path}: expected one line holding the key")
+        if mode & 0o077:
+            print(f"warning: --key-file {path} is readable by other users; chmod 600 it",
+                  file=sys.stderr)
+        return lines[0]
+    if getattr(args, "key", None):
+        print(f"warning: --key is visible to other users in the process list; prefer --key-file "
+              f"or ${KEY_ENV}", file=sys.stderr)
+        return args.key
+    return os.environ.get(KEY_ENV) or os.environ.get(OLD_KEY_ENV) or None
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -318,7 +376,8 @@ def build_parser() -> argparse.ArgumentParser:
     sub = p.add_subparsers(dest="command", required=True)
 
     s = sub.add_parser("serve", help="run the HTTP service (migrates first)")
-    s.add_argument("--host", default="127.0.0.1")
+    s.add_argument("--host", default="127.0.0.1",
+                   help="address to listen on; a non-loopback address needs TALLYWARD_AUTH=required")
     s.add_argument("--port", type=int, default=8000)
     s.add_argument("--workers", type=int, default=1)
     s.set_defaults(func=cmd_serve)
@@ -408,6 +467,10 @@ def main(argv: Sequence[str] | None = None) -> int:
         return 1
     except FileNotFoundError as exc:
         print(f"error: {exc}", file=sys.stderr)
+        return 1
+    except OperationalError as exc:
+        print(f"error: the database is busy or unreachable ({type(exc.orig).__name__}: "
+              f"{str(exc.orig).strip()[:200]}); retry shortly", file=sys.stderr)
         return 1
     except KeyboardInterrupt:
         return 130

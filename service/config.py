@@ -59,6 +59,52 @@ class Settings(BaseSettings):
         "inline", description="'inline': score counts in the request that stores them. 'off': store only."
     )
     log_level: str = Field("INFO", description="Python log level for the JSON logs.")
+    max_page_bytes: int = Field(
+        1024 * 1024, ge=16 * 1024, le=64 * 1024 * 1024,
+        description="Largest page of rows a read returns (bytes of JSON data); a longer answer "
+        "ends early with a cursor to the rest (GET /v1/counts: next_from).",
+    )
+    http_header_timeout_s: float = Field(
+        10.0, gt=0, le=600,
+        description="`tallyward serve`: a connection must finish sending a request's headers "
+        "this many seconds after it opens (or after the request's first byte); otherwise it "
+        "is closed. Idle new connections are closed after this time too.",
+    )
+    http_body_timeout_s: float = Field(
+        30.0, gt=0, le=3600,
+        description="A request body must arrive in full within this many seconds of the "
+        "headers; otherwise the request is answered 408 and the connection closed.",
+    )
+    http_keep_alive_s: int = Field(
+        5, ge=1, le=300,
+        description="`tallyward serve`: an idle keep-alive connection is closed after this "
+        "many seconds without a new request (uvicorn timeout_keep_alive).",
+    )
+    http_max_connections: int = Field(
+        256, ge=1, le=100_000,
+        description="`tallyward serve`: most open connections (and requests in progress) per "
+        "worker process; requests beyond it get 503 at once (uvicorn limit_concurrency).",
+    )
+    http_max_header_bytes: int = Field(
+        16 * 1024, ge=1024, le=1024 * 1024,
+        description="`tallyward serve`: largest request line plus headers (bytes); larger is "
+        "refused with 431 and the connection closed.",
+    )
+    db_statement_timeout_s: float = Field(
+        30.0, ge=0, le=3600,
+        description="PostgreSQL statement_timeout for the service's and the CLI's connections "
+        "(seconds; 0 = none). A statement cut off answers 503 with Retry-After.",
+    )
+    db_lock_timeout_s: float = Field(
+        5.0, ge=0, le=3600,
+        description="PostgreSQL lock_timeout (seconds; 0 = none): how long a statement waits for "
+        "a lock held by another session before the request answers 503 with Retry-After.",
+    )
+    sqlite_busy_timeout_s: float = Field(
+        5.0, ge=0, le=600,
+        description="SQLite: how long a write waits for another writer's lock (seconds) before "
+        "the request answers 503 with Retry-After.",
+    )
 
     @field_validator("database_url")
     @classmethod

@@ -3,19 +3,23 @@
 from __future__ import annotations
 
 import logging
+import re
 import time
 import uuid
-from collections.abc import AsyncIterator
+from collections.abc import AsyncIterator, Iterable, Iterator
 from contextlib import asynccontextmanager
 from typing import Any
 
+import anyio
 import orjson
 from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import Response
+from fastapi.routing import APIRoute
 from sqlalchemy import Engine
 from sqlalchemy.exc import OperationalError
 from starlette.exceptions import HTTPException as StarletteHTTPException
+from starlette.routing import Match
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from . import __version__, logs
@@ -23,9 +27,14 @@ from .alerting import Scorer, mark_dirty
 from .api import alerts, baselines, counts, detectors, health
 from .config import Settings, get_settings
 from .db import make_engine
-from .errors import TallywardError, Unavailable
+from .deps import PRINCIPAL_SCOPE_KEY, check_permission, identify
+from .errors import Forbidden, TallywardError, Unauthorized, Unavailable
 
 log = logging.getLogger("tallyward.http")
+WRITE_METHODS = frozenset({"POST", "PUT", "PATCH"})
+# A client's X-Request-Id is echoed only when it is short and plain; otherwise a new one is made.
+REQUEST_ID = re.compile(rb"[A-Za-z0-9._-]{1,64}")
+WWW_AUTHENTICATE = 'Bearer realm="tallyward"'
 
 DESCRIPTION = """Tallyward ingests vehicle-detector interval counts, learns each detector's
 time-of-day rhythm, and raises advisory alerts for likely detector faults, traffic events and
@@ -38,12 +47,83 @@ def _json(status: int, body: dict[str, Any], headers: dict[str, str] | None = No
                     headers=headers)
 
 
-class BodyLimit:
-    """Rejects bodies over the limit with 413 before they are parsed, chunked ones included."""
+class KeyBeforeBody:
+    """Checks the API key, and the route's role, of a POST/PUT/PATCH before any of its body
+    is read: a caller without a valid key gets 401 (403 for the wrong role) and the
+    connection is closed with the body unread. The principal is handed to the route."""
 
-    def __init__(self, app: ASGIApp, max_bytes: int) -> None:
+    def __init__(self, app: ASGIApp) -> None:
+        self.app = app
+        self._permissions: list[tuple[Any, str]] | None = None
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        if scope["type"] != "http" or scope.get("method") not in WRITE_METHODS:
+            await self.app(scope, receive, send)
+            return
+        state = scope["app"].state
+        headers = scope.get("headers", [])
+        authorization = next((v.decode("latin-1") for k, v in headers if k == b"authorization"),
+                             None)
+        client = scope.get("client")
+        names = frozenset(k.decode("latin-1") for k, _ in headers)
+        try:
+            if authorization is None:
+                principal = identify(state.settings, state.engine, authorization=None,
+                                     client=client[0] if client else None, header_names=names)
+            else:
+                principal = await anyio.to_thread.run_sync(lambda: identify(
+                    state.settings, state.engine, authorization=authorization,
+                    client=client[0] if client else None, header_names=names))
+            permission = self._permission(scope)
+            if permission is not None:
+                check_permission(principal, permission)
+        except (Unauthorized, Forbidden) as exc:
+            extra = {"WWW-Authenticate": WWW_AUTHENTICATE} if isinstance(exc, Unauthorized) else {}
+            await _json(exc.status_code, exc.to_dict(),
+                        {"Connection": "close", **extra})(scope, receive, send)
+            return
+        except OperationalError as exc:
+            await _db_unavailable(exc)(scope, receive, send)
+            return
+        await self.app({**scope, PRINCIPAL_SCOPE_KEY: principal}, receive, send)
+
+    def _permission(self, scope: Scope) -> str | None:
+        """The permission the matching route requires (from its ``require`` dependency)."""
+        if self._permissions is None:
+            self._permissions = [(route, perm) for route in _api_routes(scope["app"].routes)
+                                 if (perm := _route_permission(route.dependant))]
+        for route, permission in self._permissions:
+            match, _ = route.matches(scope)
+            if match == Match.FULL:
+                return permission
+        return None
+
+
+def _api_routes(routes: Iterable[Any]) -> Iterator[APIRoute]:
+    for route in routes:
+        if isinstance(route, APIRoute):
+            yield route
+        inner = getattr(route, "original_router", None)  # newer FastAPI wraps included routers
+        if inner is not None:
+            yield from _api_routes(inner.routes)
+
+
+def _route_permission(dependant: Any) -> str | None:
+    for dep in dependant.dependencies:
+        found = getattr(dep.call, "permission", None) or _route_permission(dep)
+        if found:
+            return found
+    return None
+
+
+class BodyLimit:
+    """Reads a POST/PUT/PATCH body in full before the app sees it: over the limit is 413
+    (chunked bodies included), and a body that does not arrive within the deadline is 408."""
+
+    def __init__(self, app: ASGIApp, max_bytes: int, timeout_s: float) -> None:
         self.app = app
         self.max_bytes = max_bytes
+        self.timeout_s = timeout_s
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
         if scope["type"] != "http":
@@ -59,25 +139,35 @@ class BodyLimit:
                 if declared > limit or declared < 0:
                     await self._reject(scope, receive, send, declared)
                     return
-        if scope.get("method") not in ("POST", "PUT", "PATCH"):
+        if scope.get("method") not in WRITE_METHODS:
             await self.app(scope, receive, send)
             return
         # Read the body up to the limit before the app sees it, so chunked bodies without a
         # Content-Length are refused as early as declared ones.
         parts: list[bytes] = []
         seen = 0
-        while True:
-            message = await receive()
-            if message["type"] == "http.disconnect":
-                return
-            chunk = message.get("body", b"")
-            seen += len(chunk)
-            if seen > limit:
-                await self._reject(scope, receive, send, seen, streamed=True)
-                return
-            parts.append(chunk)
-            if not message.get("more_body", False):
-                break
+        try:
+            with anyio.fail_after(self.timeout_s):
+                while True:
+                    message = await receive()
+                    if message["type"] == "http.disconnect":
+                        return
+                    chunk = message.get("body", b"")
+                    seen += len(chunk)
+                    if seen > limit:
+                        await self._reject(scope, receive, send, seen, streamed=True)
+                        return
+                    parts.append(chunk)
+                    if not message.get("more_body", False):
+                        break
+        except TimeoutError:
+            await _json(408, {"error": "request_timeout",
+                              "message": f"the request body did not arrive within "
+                                         f"{self.timeout_s:g} seconds ({seen:,} bytes received); "
+                                         "send it in one go, or smaller batches",
+                              "detail": {"body_timeout_s": self.timeout_s}},
+                        headers={"Connection": "close"})(scope, receive, send)
+            return
         body = b"".join(parts)
         delivered = False
 
@@ -102,6 +192,13 @@ class BodyLimit:
         await response(scope, receive, send)
 
 
+def _db_unavailable(exc: OperationalError) -> Response:
+    log.warning("database unavailable", extra={"fields": {"error": str(exc.orig)[:200]}})
+    return _json(503, {"error": "unavailable",
+                       "message": "the database is busy or unreachable; retry shortly"},
+                 {"Retry-After": str(Unavailable.retry_after_s)})
+
+
 class AccessLog:
     """One JSON log line per request, an X-Request-Id on every response, and a JSON 500 for
     anything unhandled (a plain ASGI middleware: no extra task or body copy per request)."""
@@ -114,8 +211,9 @@ class AccessLog:
             await self.app(scope, receive, send)
             return
         started = time.perf_counter()
-        request_id = next((v.decode("latin-1") for k, v in scope.get("headers", [])
-                           if k == b"x-request-id"), None) or uuid.uuid4().hex[:16]
+        offered = next((v for k, v in scope.get("headers", []) if k == b"x-request-id"), None)
+        request_id = (offered.decode("ascii") if offered and REQUEST_ID.fullmatch(offered)
+                      else uuid.uuid4().hex[:16])
         status = 500
         sent = False
 
@@ -171,6 +269,8 @@ def create_app(settings: Settings | None = None, *, engine: Engine | None = None
         headers = None
         if isinstance(exc, Unavailable):
             headers = {"Retry-After": str(exc.retry_after_s)}
+        elif isinstance(exc, Unauthorized):
+            headers = {"WWW-Authenticate": WWW_AUTHENTICATE}
         return _json(exc.status_code, exc.to_dict(), headers)
 
     @app.exception_handler(RequestValidationError)
@@ -190,10 +290,7 @@ def create_app(settings: Settings | None = None, *, engine: Engine | None = None
 
     @app.exception_handler(OperationalError)
     async def _db_down(_: Request, exc: OperationalError) -> Response:
-        log.warning("database unavailable", extra={"fields": {"error": str(exc.orig)[:200]}})
-        return _json(503, {"error": "unavailable",
-                           "message": "the database is busy or unreachable; retry shortly"},
-                     {"Retry-After": "2"})
+        return _db_unavailable(exc)
 
     app.include_router(health.router)
     app.include_router(detectors.import_router)
@@ -202,8 +299,12 @@ def create_app(settings: Settings | None = None, *, engine: Engine | None = None
     app.include_router(baselines.router)
     app.include_router(alerts.router)
     app.include_router(alerts.detector_router)
+    # Outermost last: every answer (401, 408, 413 included) gets a request id and a log line,
+    # and the key is checked before the body is read.
+    app.add_middleware(BodyLimit, max_bytes=settings.max_body_bytes,
+                       timeout_s=settings.http_body_timeout_s)
+    app.add_middleware(KeyBeforeBody)
     app.add_middleware(AccessLog)
-    app.add_middleware(BodyLimit, max_bytes=settings.max_body_bytes)
     return app
 
 

@@ -34,6 +34,9 @@ def alembic_config(database_url: str) -> Config:
 
 
 def upgrade(database_url: str, revision: str = "head") -> None:
+    from .db import create_private_sqlite_file
+
+    create_private_sqlite_file(database_url)  # before Alembic's engine creates it world-readable
     command.upgrade(alembic_config(database_url), revision)
 
 

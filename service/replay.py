@@ -148,7 +148,8 @@ class Poster:
                     msg = r.json().get("message", r.text) if r.headers.get(
                         "content-type", "").startswith("application/json") else r.text
                     raise ReplayError(f"the service refused the key ({r.status_code}): {msg}. "
-                                      "Use a key with role ingest or admin (--key).")
+                                      "Use a key with role ingest or admin (--key-file or "
+                                      "$TALLYWARD_API_KEY).")
                 if r.status_code in (200, 409, 422):
                     return r.json()
                 if r.status_code == 413:

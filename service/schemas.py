@@ -9,12 +9,11 @@ from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
+from .limits import CONTROL_CHARACTERS
+
 DETECTOR_ID_PATTERN = r"^[A-Za-z0-9][A-Za-z0-9._:\-]{0,63}$"
 DETECTOR_ID_RULE = "1-64 characters: letters, digits and . _ : - , starting with a letter or digit"
 _ID = re.compile(DETECTOR_ID_PATTERN)
-# C0/C1 controls and DEL, lone surrogates, line/paragraph separators: never in ids or registry
-# text (PostgreSQL refuses NUL, and a log line or a CSV export would break on the others).
-CONTROL_CHARACTERS = re.compile(r"[\x00-\x1f\x7f-\x9f\ud800-\udfff\u2028\u2029]")
 
 
 def control_character_error(text: str) -> str | None:

@@ -23,6 +23,7 @@ from sqlalchemy import Engine, select, update
 from . import models
 from .db import read_transaction, write_transaction
 from .errors import NotFound, ValidationFailed
+from .limits import plain_text
 
 KEY_PREFIX = "tw_"
 GRANTS: dict[str, frozenset[str]] = {
@@ -52,6 +53,10 @@ def create_key(engine: Engine, *, name: str, role: str) -> str:
         raise ValidationFailed(f"unknown role {role!r}; roles are {', '.join(GRANTS)}")
     if not name or len(name) > 100:
         raise ValidationFailed("a key name is 1 to 100 characters")
+    try:
+        plain_text(name)
+    except ValueError as exc:
+        raise ValidationFailed(f"key name {exc}") from None
     key = KEY_PREFIX + secrets.token_urlsafe(32)
     k = models.api_keys
     with write_transaction(engine) as conn:
@@ -63,6 +68,11 @@ def create_key(engine: Engine, *, name: str, role: str) -> str:
 
 
 def revoke_key(engine: Engine, name: str) -> None:
+    try:
+        plain_text(name)
+    except ValueError:
+        raise NotFound(f"no active key named {name!r} (key names hold no control characters)"
+                       ) from None
     k = models.api_keys
     with write_transaction(engine) as conn:
         res = conn.execute(update(k).where(k.c.name == name, k.c.revoked_s.is_(None))

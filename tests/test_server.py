@@ -1,16 +1,24 @@
-"""A real uvicorn server: round trip, chunked oversized bodies, and durability under SIGKILL."""
+"""A real uvicorn server: round trip, chunked oversized bodies, durability under SIGKILL, and
+connection limits: the key checked before the body, header/body/idle deadlines, header size,
+the connection cap and request ids."""
 
 from __future__ import annotations
 
+import re
+import shutil
 import socket
 import threading
 import time
+from collections.abc import Iterator
 from datetime import timedelta
 
 import httpx
+import pytest
 from sqlalchemy import func, select
 
-from service import models
+from service import models, security
+from service.config import Settings
+from service.db import make_engine
 from service.timefmt import parse_rfc3339
 from tests.conftest import LiveServer, auth
 from tests.factories import MONDAY_LOCAL_MIDNIGHT, count_items, detector_payload, make_detector
@@ -142,3 +150,150 @@ def test_live_server_scores_as_counts_arrive(database_url, engine, keys) -> None
             assert health["last_24h"]["flagged_share"] > 0
     finally:
         server.stop()
+
+
+# ----------------------------------------------------------------- connections and bodies
+
+SOCKET_WAIT_S = 20  # an upper bound on waiting for the server, far above every deadline used
+
+
+def exchange(port: int, data: bytes) -> bytes:
+    """Send raw bytes on a new connection and read until the server closes it."""
+    with socket.create_connection(("127.0.0.1", port), timeout=SOCKET_WAIT_S) as s:
+        if data:
+            s.sendall(data)
+        received = b""
+        while True:
+            try:
+                chunk = s.recv(65536)
+            except TimeoutError:
+                raise AssertionError(f"the server kept the connection open; got {received!r}"
+                                     ) from None
+            if not chunk:
+                return received
+            received += chunk
+
+
+def status_of(response: bytes) -> int:
+    return int(response.split(b" ", 2)[1])
+
+
+@pytest.fixture(scope="module")
+def tight_server(tmp_path_factory, sqlite_template) -> Iterator[tuple[LiveServer, dict[str, str]]]:
+    """A live server (SQLite) with one-second header, body and keep-alive deadlines, a cap of
+    six connections, 4 KiB of headers, and keys of each role."""
+    path = tmp_path_factory.mktemp("tight") / "tallyward.db"
+    shutil.copy(sqlite_template, path)
+    url = f"sqlite:///{path}"
+    engine = make_engine(Settings(database_url=url))
+    keys = {role: security.create_key(engine, name=f"{role}-key", role=role)
+            for role in ("ingest", "read")}
+    engine.dispose()
+    server = LiveServer(url, env={"TALLYWARD_HTTP_HEADER_TIMEOUT_S": "1",
+                                  "TALLYWARD_HTTP_BODY_TIMEOUT_S": "1",
+                                  "TALLYWARD_HTTP_KEEP_ALIVE_S": "1",
+                                  "TALLYWARD_HTTP_MAX_CONNECTIONS": "6",
+                                  "TALLYWARD_HTTP_MAX_HEADER_BYTES": "4096"}).start()
+    yield server, keys
+    server.stop()
+
+
+def post_head(key: str | None, *, length: int, extra: bytes = b"") -> bytes:
+    auth_line = b"Authorization: Bearer " + key.encode() + b"\r\n" if key else b""
+    return (b"POST /v1/counts HTTP/1.1\r\nHost: tallyward\r\nContent-Type: application/json\r\n"
+            + auth_line + b"Content-Length: %d\r\n" % length + extra + b"\r\n")
+
+
+def test_post_without_key_is_401_before_its_body_is_sent(live_server) -> None:
+    """A POST announcing a 4 MB body but sending none gets 401 at once, with no 100 Continue:
+    the server never asked for the body (the body deadline would answer 408 instead)."""
+    response = exchange(live_server.port, post_head(None, length=4_000_000,
+                                                    extra=b"Expect: 100-continue\r\n"))
+    assert response.startswith(b"HTTP/1.1 401"), response[:200]
+    assert b"100 Continue" not in response
+    assert b'www-authenticate: bearer realm="tallyward"' in response.lower()
+
+
+def test_post_with_unknown_key_is_401_before_its_body_is_sent(live_server) -> None:
+    """An unknown key is refused before the body, like a missing one."""
+    response = exchange(live_server.port, post_head("tw_madeup", length=4_000_000))
+    assert status_of(response) == 401
+
+
+def test_post_with_a_read_key_is_403_before_its_body_is_sent(live_server, keys) -> None:
+    """A valid key whose role may not ingest is refused (403) without the body being read."""
+    response = exchange(live_server.port, post_head(keys["read"], length=4_000_000))
+    assert status_of(response) == 403 and b"ingest" in response
+
+
+def test_slow_body_is_408_and_closed(tight_server) -> None:
+    """A body that does not arrive in full within the body deadline gets 408 and a close."""
+    server, keys = tight_server
+    response = exchange(server.port, post_head(keys["ingest"], length=4000) + b'{"counts": [')
+    assert status_of(response) == 408
+    assert b"did not arrive within 1 seconds" in response
+
+
+def test_slow_headers_are_408_and_closed(tight_server) -> None:
+    """Headers that never finish get 408 after the header deadline, then a close."""
+    server, _ = tight_server
+    response = exchange(server.port, b"GET /v1/health HTTP/1.1\r\nHost: tallyward\r\n")
+    assert status_of(response) == 408
+
+
+def test_connection_that_sends_nothing_is_closed(tight_server) -> None:
+    """A connection that never sends a byte is closed after the header deadline."""
+    server, _ = tight_server
+    assert exchange(server.port, b"") == b""
+
+
+def test_idle_keep_alive_connection_is_closed(tight_server) -> None:
+    """After a response, a keep-alive connection with no new request is closed."""
+    server, _ = tight_server
+    response = exchange(server.port, b"GET /v1/health HTTP/1.1\r\nHost: tallyward\r\n\r\n")
+    assert status_of(response) == 200 and response.count(b"HTTP/1.1") == 1
+
+
+def test_oversized_headers_are_431(tight_server) -> None:
+    """Headers over the configured size get 431, whether sent at once or a piece at a time."""
+    server, _ = tight_server
+    big = b"GET /v1/health HTTP/1.1\r\nHost: tallyward\r\nX-Padding: " + b"a" * 8000 + b"\r\n\r\n"
+    assert status_of(exchange(server.port, big)) == 431
+    with socket.create_connection(("127.0.0.1", server.port), timeout=SOCKET_WAIT_S) as s:
+        s.sendall(b"GET /v1/health HTTP/1.1\r\nHost: tallyward\r\nX-Padding: ")
+        for _ in range(10):
+            try:
+                s.sendall(b"a" * 1000)
+            except OSError:
+                break
+            time.sleep(0.01)
+        response = s.recv(65536)
+    assert status_of(response) == 431
+
+
+def test_connections_over_the_limit_get_503(tight_server) -> None:
+    """With the connection cap reached, a further request gets 503 at once; after the idle
+    connections close, requests are served again."""
+    server, _ = tight_server
+    idle = [socket.create_connection(("127.0.0.1", server.port)) for _ in range(6)]
+    try:
+        request = b"GET /v1/health HTTP/1.1\r\nHost: tallyward\r\nConnection: close\r\n\r\n"
+        assert status_of(exchange(server.port, request)) == 503
+    finally:
+        for s in idle:
+            s.close()
+    deadline = time.monotonic() + SOCKET_WAIT_S  # a bound on waiting, not a speed requirement
+    while status_of(exchange(server.port, request)) != 200 and time.monotonic() < deadline:
+        time.sleep(0.1)
+    assert status_of(exchange(server.port, request)) == 200
+
+
+def test_request_id_is_echoed_only_when_short_and_plain(tight_server) -> None:
+    """A plain X-Request-Id of up to 64 characters is echoed; a long or odd one is replaced."""
+    server, _ = tight_server
+    with httpx.Client(base_url=server.url, timeout=SOCKET_WAIT_S) as c:
+        assert c.get("/v1/health", headers={"X-Request-Id": "abc-123.X_y"}
+                     ).headers["x-request-id"] == "abc-123.X_y"
+        for offered in ("a" * 65, "id with spaces", "id;evil=1", "\xfc".encode("latin-1")):
+            got = c.get("/v1/health", headers={"X-Request-Id": offered}).headers["x-request-id"]
+            assert got != offered and re.fullmatch(r"[0-9a-f]{16}", got)

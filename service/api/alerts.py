@@ -9,7 +9,7 @@ from typing import Annotated, Any, Literal
 
 import orjson
 from fastapi import APIRouter, Path, Query, Request, Response
-from pydantic import BaseModel, Field
+from pydantic import AfterValidator, BaseModel, Field
 from sqlalchemy import Connection, func, select
 
 from .. import models
@@ -17,10 +17,19 @@ from ..alerting import KINDS, next_seqs
 from ..db import read_transaction, write_transaction
 from ..deps import EngineDep, OperateDep, ReadDep, SettingsDep
 from ..errors import NotFound, ValidationFailed
+from ..limits import INT32_MAX, INT64_MAX, plain_text, prose
+from ..schemas import DETECTOR_ID_PATTERN
 from ..timefmt import format_utc
 
 router = APIRouter(prefix="/v1/alerts", tags=["alerts"])
 LN10 = math.log(10.0)
+AlertId = Annotated[int, Path(ge=1, le=INT32_MAX, description="Alert id.")]
+DetectorFilter = Annotated[str | None, Query(max_length=64, description="Only this detector."),
+                           AfterValidator(plain_text)]
+GroupFilter = Annotated[str | None, Query(max_length=64, description="Only this group."),
+                        AfterValidator(plain_text)]
+KindFilter = Annotated[str | None, Query(max_length=20, description="Only this kind."),
+                       AfterValidator(plain_text)]
 
 
 def alert_public(row: Any, interval_s: int | None) -> dict[str, Any]:
@@ -55,9 +64,10 @@ def _intervals(conn: Connection) -> dict[str, int]:
 @router.get("")
 def list_alerts(
     request: Request, engine: EngineDep, _: ReadDep,
-    after: Annotated[int, Query(ge=0, description="Return changes with seq greater than this.")] = 0,
+    after: Annotated[int, Query(ge=0, le=INT64_MAX,
+                                description="Return changes with seq greater than this.")] = 0,
     status: Annotated[Literal["open", "closed", "any"], Query()] = "any",
-    detector_id: str | None = None, group: str | None = None, kind: str | None = None,
+    detector_id: DetectorFilter = None, group: GroupFilter = None, kind: KindFilter = None,
     limit: Annotated[int, Query(ge=1, le=1000)] = 100,
 ) -> Response:
     """Alert changes after `after`, in seq order; poll again with `next_after`."""
@@ -111,19 +121,21 @@ def _get(conn: Connection, alert_id: int) -> dict[str, Any]:
 
 
 @router.get("/{alert_id}")
-def get_alert(alert_id: Annotated[int, Path(ge=1)], engine: EngineDep, _: ReadDep) -> dict[str, Any]:
+def get_alert(alert_id: AlertId, engine: EngineDep, _: ReadDep) -> dict[str, Any]:
     """One alert."""
     with read_transaction(engine) as conn:
         return _get(conn, alert_id)
 
 
 class Acknowledgement(BaseModel):
-    by: str = Field(min_length=1, max_length=100, description="Who acknowledges (name or desk).")
-    note: str | None = Field(None, max_length=2000)
+    by: Annotated[str, Field(min_length=1, max_length=100), AfterValidator(plain_text)] = Field(
+        description="Who acknowledges (name or desk); no control characters.")
+    note: Annotated[str | None, Field(max_length=2000), AfterValidator(prose)] = Field(
+        None, description="Free text; may hold tabs and line breaks, no other control characters.")
 
 
 @router.post("/{alert_id}/acknowledge")
-def acknowledge(alert_id: Annotated[int, Path(ge=1)], ack: Acknowledgement, engine: EngineDep,
+def acknowledge(alert_id: AlertId, ack: Acknowledgement, engine: EngineDep,
                 _: OperateDep) -> dict[str, Any]:
     """Acknowledge an alert; it still closes on its own when the evidence ends."""
     a = models.alerts
@@ -141,8 +153,9 @@ detector_router = APIRouter(prefix="/v1/detectors", tags=["alerts"])
 
 
 @detector_router.get("/{detector_id}/health")
-def detector_health(detector_id: str, engine: EngineDep, settings: SettingsDep, _: ReadDep
-                    ) -> dict[str, Any]:
+def detector_health(detector_id: Annotated[str, Path(pattern=DETECTOR_ID_PATTERN,
+                                                    description="Detector id.")],
+                    engine: EngineDep, settings: SettingsDep, _: ReadDep) -> dict[str, Any]:
     """Completeness, open alerts and share of intervals flagged over the last 24 h and 7 days."""
     from ..alerting import clock_now
 

@@ -25,6 +25,9 @@ from ..timefmt import format_utc, parse_rfc3339
 
 router = APIRouter(prefix="/v1", tags=["baselines"])
 DetectorId = Annotated[str, Path(pattern=DETECTOR_ID_PATTERN)]
+# Dates a baseline day is served for: wide enough for any planning question, and inside what
+# time zone rules and epoch seconds handle without overflow.
+FIRST_DATE, LAST_DATE = date(1990, 1, 1), date(2100, 12, 31)
 
 
 class FitRequest(BaseModel):
@@ -86,10 +89,24 @@ def _model(row: Any, base: bl.Baseline, day_type: str) -> dict[str, Any]:
     }
 
 
+def _baseline_date(text: str) -> date:
+    try:
+        day = date.fromisoformat(text) if len(text) == 10 else None
+    except ValueError:
+        day = None
+    if day is None:
+        raise ValidationFailed(f"date {text[:40]!r} is not a calendar date YYYY-MM-DD")
+    if not FIRST_DATE <= day <= LAST_DATE:
+        raise ValidationFailed(f"date {text} is outside {FIRST_DATE}..{LAST_DATE}, the dates a "
+                               "baseline day is served for")
+    return day
+
+
 @router.get("/detectors/{detector_id}/baseline")
 def get_baseline(
     detector_id: DetectorId, engine: EngineDep, _: ReadDep,
-    date_: Annotated[str | None, Query(alias="date", description="Local date YYYY-MM-DD.")] = None,
+    date_: Annotated[str | None, Query(
+        alias="date", description=f"Local date YYYY-MM-DD, {FIRST_DATE}..{LAST_DATE}.")] = None,
     day_type: Annotated[Literal["weekday", "saturday", "sunday_holiday"] | None, Query()] = None,
     level: Annotated[float, Query(gt=0.5, lt=1.0, description="Central interval level.")] = 0.95,
 ) -> dict[str, Any]:
@@ -97,14 +114,11 @@ def get_baseline(
     if (date_ is None) == (day_type is None):
         raise ValidationFailed("give exactly one of date=YYYY-MM-DD or "
                                "day_type=weekday|saturday|sunday_holiday")
+    day = _baseline_date(date_) if date_ is not None else None
     det, row, base = _current(engine, detector_id)
     step = det.interval_s
     zone = ZoneInfo(det.timezone)
-    if date_ is not None:
-        try:
-            day = date.fromisoformat(date_)
-        except ValueError:
-            raise ValidationFailed(f"date {date_!r} is not YYYY-MM-DD") from None
+    if day is not None:
         lo = int(datetime(day.year, day.month, day.day, tzinfo=zone).timestamp())
         nxt = day + timedelta(days=1)
         hi = int(datetime(nxt.year, nxt.month, nxt.day, tzinfo=zone).timestamp())

@@ -2,17 +2,19 @@
 
 from __future__ import annotations
 
-from typing import Any
+from typing import Annotated, Any
 
 import orjson
 from fastapi import APIRouter, Query, Request, Response
 from fastapi.concurrency import run_in_threadpool
+from pydantic import AfterValidator
 from sqlalchemy import select
 
 from .. import ingest, models
 from ..db import read_transaction
 from ..deps import EngineDep, IngestDep, ReadDep, SettingsDep
 from ..errors import NotFound, UnsupportedMediaType, ValidationFailed
+from ..limits import INT32_MAX, plain_text
 from ..timefmt import START_WINDOW_TEXT, format_utc, parse_rfc3339
 
 router = APIRouter(prefix="/v1/counts", tags=["counts"])
@@ -65,14 +67,31 @@ def _time_param(value: str | None, name: str) -> int | None:
         raise ValidationFailed(f"{name}: {exc}") from None
 
 
+DetectorQuery = Annotated[str, Query(min_length=1, max_length=64, description="Detector id."),
+                          AfterValidator(plain_text)]
+DetectorFilter = Annotated[str | None, Query(max_length=64, description="Only this detector."),
+                           AfterValidator(plain_text)]
+ROWS_PER_FETCH = 2000  # rows pulled from the database cursor at a time
+
+
 @router.get("")
-def get_counts(engine: EngineDep, _: ReadDep, detector_id: str,
+def get_counts(engine: EngineDep, settings: SettingsDep, _: ReadDep, detector_id: DetectorQuery,
                from_: str | None = Query(None, alias="from", description="RFC 3339, inclusive."),
                until: str | None = Query(None, description="RFC 3339, exclusive."),
-               limit: int = Query(10_000, ge=1, le=100_000)) -> dict[str, Any]:
-    """Stored counts of one detector in time order."""
+               limit: int = Query(10_000, ge=1, le=100_000, description="Most rows in this page."),
+               ) -> Response:
+    """Stored counts of one detector in time order, a page at a time: when more rows remain
+    (past `limit`, or past the service's page size in bytes) `next_from` is the start to
+    ask for next (as `from`); it is null when the page reaches the end."""
     lo, hi = _time_param(from_, "from"), _time_param(until, "until")
     c, d = models.counts, models.detectors
+    budget = settings.max_page_bytes
+    # Rows are encoded as they come off the cursor and the page stops at `limit` rows or
+    # the byte budget, so a large read holds one page of JSON, not every row as objects.
+    page = bytearray(b'{"detector_id":' + orjson.dumps(detector_id) + b',"data":[')
+    data_start = len(page)
+    rows = 0
+    next_from: str | None = None
     with read_transaction(engine) as conn:
         if conn.execute(select(d.c.detector_id).where(d.c.detector_id == detector_id)).first() is None:
             raise NotFound(f"unknown detector {detector_id!r}")
@@ -81,14 +100,28 @@ def get_counts(engine: EngineDep, _: ReadDep, detector_id: str,
             q = q.where(c.c.start_s >= lo)
         if hi is not None:
             q = q.where(c.c.start_s < hi)
-        rows = conn.execute(q.order_by(c.c.start_s).limit(limit)).all()
-    return {"detector_id": detector_id,
-            "data": [{"start": format_utc(r.start_s), "count": r.count} for r in rows]}
+        result = conn.execution_options(yield_per=ROWS_PER_FETCH).execute(
+            q.order_by(c.c.start_s).limit(limit + 1))
+        try:
+            for start_s, count in result:
+                piece = b'{"start":"%s","count":%d},' % (format_utc(start_s).encode(), count)
+                if rows == limit or (rows and len(page) - data_start + len(piece) > budget):
+                    next_from = format_utc(start_s)
+                    break
+                page += piece
+                rows += 1
+        finally:
+            result.close()
+    if rows:
+        del page[-1]  # the last row's comma
+    page += b'],"next_from":' + orjson.dumps(next_from) + b"}"
+    return Response(bytes(page), media_type="application/json")
 
 
 @router.get("/conflicts")
-def get_conflicts(engine: EngineDep, _: ReadDep, detector_id: str | None = None,
-                  after: int = Query(0, ge=0, description="Page after this conflict id."),
+def get_conflicts(engine: EngineDep, _: ReadDep, detector_id: DetectorFilter = None,
+                  after: int = Query(0, ge=0, le=INT32_MAX,
+                                     description="Page after this conflict id."),
                   limit: int = Query(1000, ge=1, le=10_000)) -> dict[str, Any]:
     """Offered values that differed from stored ones (the stored value was kept)."""
     k = models.count_conflicts

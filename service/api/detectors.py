@@ -7,11 +7,13 @@ from typing import Annotated, Any
 import orjson
 from fastapi import APIRouter, Path, Query, Request, Response
 from fastapi.concurrency import run_in_threadpool
+from pydantic import AfterValidator
 
 from .. import ingest, registry
 from ..db import write_transaction
 from ..deps import AdminDep, EngineDep, ReadDep
 from ..errors import BadRequest
+from ..limits import plain_text
 from ..schemas import (
     DETECTOR_ID_PATTERN,
     DetectorCreate,
@@ -35,8 +37,10 @@ def put_detector(detector_id: DetectorId, spec: DetectorCreate, engine: EngineDe
 
 
 @router.get("", response_model=DetectorsPublic)
-def list_detectors(engine: EngineDep, _: ReadDep, group: str | None = None,
-                   after: str | None = Query(None, description="Page after this detector id."),
+def list_detectors(engine: EngineDep, _: ReadDep,
+                   group: Annotated[str | None, Query(max_length=64), AfterValidator(plain_text)] = None,
+                   after: Annotated[str | None, Query(max_length=64, description="Page after this "
+                                                      "detector id."), AfterValidator(plain_text)] = None,
                    limit: int = Query(1000, ge=1, le=10_000)) -> dict[str, Any]:
     """List detectors in id order."""
     data, total = registry.list_detectors(engine, group=group, limit=limit, after=after)

@@ -178,3 +178,64 @@ def test_poller_sees_every_change_once_with_concurrent_writers(database_url, eng
         rows = conn.exec_driver_sql("SELECT alert_id, seq FROM alerts").fetchall()
     assert len(rows) == 100
     assert {r[0]: r[1] for r in rows} == final  # every alert's last change was seen
+
+
+@pytest.mark.parametrize("path", ["/v1/alerts/2147483648", "/v1/alerts/99999999999999999999"])
+def test_alert_id_beyond_the_id_column_is_422(client, keys, path) -> None:
+    """An alert id past 2**31 - 1 (the id column's range) is a clear 422, not a database error."""
+    r = client.get(path, headers=auth(keys["read"]))
+    assert r.status_code == 422 and "2147483647" in r.json()["message"]
+    r = client.post(path + "/acknowledge", json={"by": "desk"}, headers=auth(keys["operate"]))
+    assert r.status_code == 422 and "2147483647" in r.json()["message"]
+
+
+def test_largest_alert_id_is_404(client, keys) -> None:
+    """2**31 - 1 itself is a valid id that simply does not exist."""
+    assert client.get("/v1/alerts/2147483647", headers=auth(keys["read"])).status_code == 404
+
+
+def test_alerts_after_is_bounded_by_the_seq_column(client, keys) -> None:
+    """`after` takes any seq up to 2**63 - 1 (BIGINT) and refuses more with a 422."""
+    h = auth(keys["read"])
+    r = client.get("/v1/alerts", params={"after": str(2**63 - 1)}, headers=h)
+    assert r.status_code == 200 and r.json()["data"] == []
+    r = client.get("/v1/alerts", params={"after": str(2**63)}, headers=h)
+    assert r.status_code == 422 and "after" in r.json()["message"]
+
+
+@pytest.mark.parametrize("name", ["detector_id", "group", "kind"])
+@pytest.mark.parametrize("value", ["D\x001", "G\n", "x\x7f", "x\x85"])
+def test_alerts_filters_with_control_characters_are_422(client, keys, name, value) -> None:
+    """NUL and other control characters in a filter are refused with a 422 that says so."""
+    r = client.get("/v1/alerts", params={name: value}, headers=auth(keys["read"]))
+    assert r.status_code == 422, r.text
+    assert name in r.json()["message"] and "control character" in r.json()["message"]
+
+
+@pytest.mark.parametrize("ack", [{"by": "desk\x00"}, {"by": "desk\n2"},
+                                 {"by": "desk", "note": "cone placed\x00"},
+                                 {"by": "desk", "note": "bell\x07"}])
+def test_acknowledge_refuses_control_characters(client, engine, keys, ack) -> None:
+    """A NUL (or other control character) in who or the note is a 422, and nothing changes."""
+    make_detector(engine, "D1")
+    alert_id = write_alert(engine, "D1", BASE_T)
+    r = client.post(f"/v1/alerts/{alert_id}/acknowledge", json=ack, headers=auth(keys["operate"]))
+    assert r.status_code == 422 and "control character" in r.json()["message"]
+    assert client.get(f"/v1/alerts/{alert_id}", headers=auth(keys["read"])
+                      ).json()["acknowledged"] is None
+
+
+def test_acknowledge_note_may_hold_line_breaks_and_tabs(client, engine, keys) -> None:
+    """A note is prose: line breaks and tabs are kept as sent."""
+    make_detector(engine, "D1")
+    alert_id = write_alert(engine, "D1", BASE_T)
+    note = "loop cut at the stop bar\r\n\tcrew booked"
+    r = client.post(f"/v1/alerts/{alert_id}/acknowledge", json={"by": "desk 4", "note": note},
+                    headers=auth(keys["operate"]))
+    assert r.status_code == 200 and r.json()["acknowledged"]["note"] == note
+
+
+def test_detector_health_with_a_malformed_id_is_422(client, keys) -> None:
+    """The detector health route checks the id's form before touching the database."""
+    r = client.get("/v1/detectors/D1%00x/health", headers=auth(keys["read"]))
+    assert r.status_code == 422 and "detector_id" in r.json()["message"]

@@ -97,3 +97,28 @@ def test_fit_with_too_little_history_says_so(client, engine, keys) -> None:
                     headers=auth(keys["admin"]))
     assert r.json()["data"][0]["status"] == "insufficient_history"
     assert r.json()["data"][0]["reason"]
+
+
+@pytest.mark.parametrize("day", ["9999-12-31", "0001-01-01", "1989-12-31", "2101-01-01"])
+def test_baseline_date_outside_the_served_range_is_422(client, keys, day) -> None:
+    """Dates outside 1990-01-01..2100-12-31 get a 422 naming the range, before any lookup."""
+    r = client.get("/v1/detectors/bra3-nb-t1/baseline", params={"date": day},
+                   headers=auth(keys["read"]))
+    assert r.status_code == 422 and "1990-01-01..2100-12-31" in r.json()["message"]
+
+
+def test_baseline_dates_at_either_end_of_the_range_are_served(client, keys, fitted) -> None:
+    """The first and last served dates each give a full local day."""
+    for day in ("1990-01-01", "2100-12-31"):
+        r = client.get("/v1/detectors/bra3-nb-t1/baseline", params={"date": day},
+                       headers=auth(keys["read"]))
+        assert r.status_code == 200, r.text
+        assert len(r.json()["data"]) == 288 and r.json()["data"][0]["start"].startswith(day)
+
+
+@pytest.mark.parametrize("day", ["2026-11-17\x00", "20261117", "2026-02-30", "x" * 5000])
+def test_baseline_malformed_date_is_422(client, keys, day) -> None:
+    """A date that is not YYYY-MM-DD is a 422 before any lookup."""
+    r = client.get("/v1/detectors/bra3-nb-t1/baseline", params={"date": day},
+                   headers=auth(keys["read"]))
+    assert r.status_code == 422 and "YYYY-MM-DD" in r.json()["message"]
