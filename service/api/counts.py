@@ -13,6 +13,7 @@ from .. import ingest, models
 from ..db import read_transaction
 from ..deps import EngineDep, IngestDep, ReadDep, SettingsDep
 from ..errors import NotFound, UnsupportedMediaType, ValidationFailed
+from ..openapi import COUNTS_BODY
 from ..timefmt import format_utc, parse_rfc3339
 
 router = APIRouter(prefix="/v1/counts", tags=["counts"])
@@ -26,7 +27,8 @@ never be stored as sent (listed in `errors`; the valid ones are stored); 413 bat
 large; 503 nothing was stored, resend the same batch after Retry-After."""
 
 
-@router.post("", description=BATCH_DOC, summary="Store a batch of interval counts")
+@router.post("", description=BATCH_DOC, summary="Store a batch of interval counts",
+             openapi_extra=COUNTS_BODY)
 async def post_counts(request: Request, engine: EngineDep, settings: SettingsDep,
                       _: IngestDep) -> Response:
     body = await request.body()

@@ -12,6 +12,7 @@ from .. import registry
 from ..db import write_transaction
 from ..deps import AdminDep, EngineDep, ReadDep
 from ..errors import BadRequest
+from ..openapi import IMPORT_BODY
 from ..schemas import (
     DETECTOR_ID_PATTERN,
     DetectorCreate,
@@ -52,7 +53,8 @@ def get_detector(detector_id: DetectorId, engine: EngineDep, _: ReadDep) -> dict
 import_router = APIRouter(prefix="/v1", tags=["detectors"])
 
 
-@import_router.post("/detectors:import", response_model=DetectorImportResult)
+@import_router.post("/detectors:import", response_model=DetectorImportResult,
+                    openapi_extra=IMPORT_BODY)
 async def import_detectors(request: Request, engine: EngineDep, _: AdminDep) -> dict[str, Any]:
     """Create or update detectors from a GeoJSON FeatureCollection."""
     body = await request.body()
