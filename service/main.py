@@ -22,7 +22,7 @@ from starlette.exceptions import HTTPException as StarletteHTTPException
 from starlette.routing import Match
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
-from . import __version__, logs
+from . import __version__, logs, openapi
 from .alerting import Scorer, mark_dirty
 from .api import alerts, baselines, counts, detectors, health
 from .config import Settings, get_settings
@@ -284,9 +284,10 @@ def create_app(settings: Settings | None = None, *, engine: Engine | None = None
         return _json(422, {"error": "validation_failed", "message": text, "detail": problems})
 
     @app.exception_handler(StarletteHTTPException)
-    async def _http_error(_: Request, exc: StarletteHTTPException) -> Response:
+    async def _http_error(request: Request, exc: StarletteHTTPException) -> Response:
         code = {404: "not_found", 405: "method_not_allowed"}.get(exc.status_code, "http_error")
-        return _json(exc.status_code, {"error": code, "message": str(exc.detail)})
+        return _json(exc.status_code, {"error": code, "message": str(exc.detail)},
+                     openapi.error_headers(request, exc))
 
     @app.exception_handler(OperationalError)
     async def _db_down(_: Request, exc: OperationalError) -> Response:
@@ -304,6 +305,7 @@ def create_app(settings: Settings | None = None, *, engine: Engine | None = None
     app.add_middleware(BodyLimit, max_bytes=settings.max_body_bytes,
                        timeout_s=settings.http_body_timeout_s)
     app.add_middleware(KeyBeforeBody)
+    openapi.document(app)
     app.add_middleware(AccessLog)
     return app
 

@@ -46,6 +46,14 @@ class GeoPoint(BaseModel):
     type: Literal["Point"]
     coordinates: list[float] = Field(min_length=2, max_length=3)
 
+    @field_validator("coordinates", mode="before")
+    @classmethod
+    def _numbers_only(cls, value: Any) -> Any:
+        if isinstance(value, list) and any(isinstance(v, bool) or not isinstance(v, int | float)
+                                           for v in value):
+            raise ValueError("coordinates are numbers: [longitude, latitude]")
+        return value
+
     @field_validator("coordinates")
     @classmethod
     def _in_range(cls, value: list[float]) -> list[float]:

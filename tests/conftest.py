@@ -9,6 +9,7 @@ import shutil
 import socket
 import subprocess
 import sys
+import tempfile
 import time
 import uuid
 from collections.abc import Iterator
@@ -156,21 +157,28 @@ class LiveServer:
                     "TALLYWARD_DATABASE_URL": database_url, "TALLYWARD_LOG_LEVEL": "WARNING",
                     **(env or {})}
         self.proc: subprocess.Popen[bytes] | None = None
+        # stderr goes to a file: a pipe nobody reads fills up and stalls the server
+        self.log = tempfile.TemporaryFile()
 
     def start(self) -> LiveServer:
         self.proc = subprocess.Popen(
             [sys.executable, "-m", "service.cli", "serve", "--port", str(self.port)],
-            cwd=REPO, env=self.env, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+            cwd=REPO, env=self.env, stdout=subprocess.DEVNULL, stderr=self.log)
         deadline = time.monotonic() + 30
         while time.monotonic() < deadline:
             if self.proc.poll() is not None:
-                raise RuntimeError(f"server exited: {self.proc.stderr.read().decode()[-2000:]}")  # type: ignore[union-attr]
+                raise RuntimeError(f"server exited: {self.stderr()[-2000:]}")
             try:
                 if httpx.get(self.url + "/v1/health", timeout=1).status_code in (200, 503):
                     return self
             except httpx.HTTPError:
                 time.sleep(0.1)
         raise RuntimeError("server did not start in 30 s")
+
+    def stderr(self) -> str:
+        """What the server has written to stderr so far."""
+        self.log.seek(0)
+        return self.log.read().decode(errors="replace")
 
     def kill(self) -> None:
         if self.proc and self.proc.poll() is None:

@@ -88,7 +88,7 @@ def test_serve_warns_loudly_in_loopback_open_mode(sqlite_url) -> None:
     """On loopback, demo mode starts but prints a warning about proxies on the same host."""
     server = LiveServer(sqlite_url, env={"TALLYWARD_AUTH": "loopback-open"}).start()
     server.stop()
-    stderr = server.proc.stderr.read().decode()  # type: ignore[union-attr]
+    stderr = server.stderr()
     assert "WARNING" in stderr and "proxy" in stderr
 
 

@@ -15,6 +15,7 @@ from ..db import read_transaction
 from ..deps import EngineDep, IngestDep, ReadDep, SettingsDep
 from ..errors import NotFound, UnsupportedMediaType, ValidationFailed
 from ..limits import INT32_MAX, plain_text
+from ..openapi import COUNTS_BODY
 from ..timefmt import START_WINDOW_TEXT, format_utc, parse_rfc3339
 
 router = APIRouter(prefix="/v1/counts", tags=["counts"])
@@ -32,7 +33,8 @@ CSV lines are at most {ingest.MAX_CSV_LINE_CHARS:,} characters and a rejected CS
 also names its `line`."""
 
 
-@router.post("", description=BATCH_DOC, summary="Store a batch of interval counts")
+@router.post("", description=BATCH_DOC, summary="Store a batch of interval counts",
+             openapi_extra=COUNTS_BODY)
 async def post_counts(request: Request, engine: EngineDep, settings: SettingsDep,
                       _: IngestDep) -> Response:
     body = await request.body()

@@ -14,6 +14,7 @@ from ..db import write_transaction
 from ..deps import AdminDep, EngineDep, ReadDep
 from ..errors import BadRequest
 from ..limits import plain_text
+from ..openapi import IMPORT_BODY
 from ..schemas import (
     DETECTOR_ID_PATTERN,
     DetectorCreate,
@@ -67,7 +68,7 @@ accepted). Text fields refuse control characters (NUL, tab, line breaks) by fiel
 @import_router.post("/detectors:import", response_model=DetectorImportResult,
                     responses={422: {"model": DetectorImportResult}},
                     summary="Create or update detectors from a GeoJSON FeatureCollection",
-                    description=IMPORT_DOC)
+                    description=IMPORT_DOC, openapi_extra=IMPORT_BODY)
 async def import_detectors(request: Request, engine: EngineDep, _: AdminDep) -> Response:
     body = await request.body()
     ingest.refuse_compressed(body, request.headers.get("content-encoding"))
