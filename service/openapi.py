@@ -210,6 +210,11 @@ EXTRA: dict[tuple[str, str], dict[int | str, dict[str, Any]]] = {
     ("GET", "/v1/counts"): {404: _not_found("unknown detector")},
     ("POST", "/v1/detectors:import"): {
         400: error("The body is not JSON, or not a GeoJSON FeatureCollection."),
+        415: error("The body is compressed (gzip is not accepted)."),
+        422: {"description": "Some features were refused (listed in `errors` with their index; "
+                             "the valid ones were stored).",
+              "content": _content({"anyOf": [{"$ref": REF + "DetectorImportResult"},
+                                             {"$ref": REF + "Error"}]})},
     },
     ("PUT", "/v1/detectors/{detector_id}"): {
         201: {"description": "The detector was created.",
