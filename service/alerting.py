@@ -173,6 +173,9 @@ def claim(engine: Engine, settings: Settings, *, limit: int = 64) -> tuple[list[
 
 
 MIN_INTERVAL_S = 60  # the detectors table's smallest allowed interval_s
+# ``t > ANY_TIME`` means ``t IS NOT NULL`` for any stored time, written as a range because
+# SQLite's planner scans the table for IS NOT NULL but searches an index for a range.
+ANY_TIME = -(2**62)
 
 
 def _due_by_clock(clock: float, settings: Settings):  # type: ignore[no-untyped-def]
@@ -184,22 +187,25 @@ def _due_by_clock(clock: float, settings: Settings):  # type: ignore[no-untyped-
             s.c.scored_through_s + d.c.interval_s + settings.missing_grace_s <= clock)
 
 
-def scoring_backlog(conn: Connection, settings: Settings, *, clock: float | None = None) -> int:
-    """Detectors with scoring work waiting (those waiting for a retry included).
-
-    A union of index look-ups, so its cost follows the backlog, not the number of detectors."""
+def _backlog_query(clock: float, settings: Settings):  # type: ignore[no-untyped-def]
+    """Count of detectors with scoring work waiting (those waiting for a retry included):
+    a union of index look-ups, so its cost follows the backlog, not the number of detectors."""
     s, d = models.detector_state, models.detectors
-    if clock is None:
-        clock = clock_now(conn, settings)
     has_baseline = s.c.baseline_id.is_not(None)
     due = union(
-        select(s.c.detector_id).where(has_baseline, s.c.dirty_from_s.is_not(None)),
-        select(s.c.detector_id).where(has_baseline, s.c.claimed_from_s.is_not(None)),
+        select(s.c.detector_id).where(has_baseline, s.c.dirty_from_s > ANY_TIME),
+        select(s.c.detector_id).where(has_baseline, s.c.claimed_from_s > ANY_TIME),
         select(s.c.detector_id).where(has_baseline, s.c.scored_through_s.is_(None)),
         select(s.c.detector_id).join(d, d.c.detector_id == s.c.detector_id)
         .where(has_baseline, *_due_by_clock(clock, settings)),
     ).subquery()
-    return int(conn.execute(select(func.count()).select_from(due)).scalar_one())
+    return select(func.count()).select_from(due)
+
+
+def scoring_backlog(conn: Connection, settings: Settings) -> int:
+    """Detectors with scoring work waiting (those waiting for a retry included)."""
+    clock = clock_now(conn, settings)
+    return int(conn.execute(_backlog_query(clock, settings)).scalar_one())
 
 
 FAILING_LISTED = 20  # most detectors health names
@@ -207,7 +213,7 @@ FAILING_LISTED = 20  # most detectors health names
 
 @dataclass(frozen=True)
 class ScoringHealth:
-    """How scoring keeps up, from index look-ups only (see ``scoring_health``)."""
+    """How scoring keeps up, from index look-ups in one statement (see ``scoring_health``)."""
 
     status: str  # "ok" or "degraded"
     reasons: list[str]
@@ -234,7 +240,10 @@ def scoring_health(conn: Connection, settings: Settings, *, now: float | None = 
     clock = clock_now(conn, settings)
     has_baseline = s.c.baseline_id.is_not(None)
     by_clock = _due_by_clock(clock, settings)
-    mins = conn.execute(select(
+    # Not failing (set and cleared with ``failures``; unindexed, so the planner keeps to the
+    # time indexes instead of reading every row with failures = 0).
+    not_failing = s.c.failing_since_s.is_(None)
+    row = conn.execute(select(
         select(func.min(s.c.dirty_from_s)).where(has_baseline).scalar_subquery(),
         select(func.min(s.c.claimed_from_s)).where(has_baseline).scalar_subquery(),
         select(func.min(s.c.score_from_s)).where(has_baseline, s.c.scored_through_s.is_(None))
@@ -243,22 +252,23 @@ def scoring_health(conn: Connection, settings: Settings, *, now: float | None = 
         .where(has_baseline, *by_clock).scalar_subquery(),
         select(func.min(s.c.scored_through_s + d.c.interval_s))
         .join(d, d.c.detector_id == s.c.detector_id)
-        .where(has_baseline, s.c.failures == 0, *by_clock).scalar_subquery(),
-        select(func.min(s.c.pending_since_s)).where(has_baseline, s.c.failures == 0)
+        .where(has_baseline, not_failing, *by_clock).scalar_subquery(),
+        select(func.min(s.c.pending_since_s)).where(has_baseline, not_failing)
         .scalar_subquery(),
+        select(func.count()).select_from(s).where(s.c.failures >= 1).scalar_subquery(),
+        select(func.count()).select_from(s).where(s.c.failures >= DEGRADED_AFTER_FAILURES)
+        .scalar_subquery(),
+        _backlog_query(clock, settings).scalar_subquery(),
     )).one()
-    starts = [v for v in mins[:4] if v is not None]
+    starts = [v for v in row[:4] if v is not None]
     oldest_age = max(0.0, clock - min(starts)) if starts else None
     waits = []
-    if mins[5] is not None:
-        waits.append(now - float(mins[5]))
-    if settings.clock == "wall" and mins[4] is not None:
-        waits.append(clock - (float(mins[4]) + settings.missing_grace_s))
+    if row[5] is not None:
+        waits.append(now - float(row[5]))
+    if settings.clock == "wall" and row[4] is not None:
+        waits.append(clock - (float(row[4]) + settings.missing_grace_s))
     longest_wait = max(0.0, *waits) if waits else None
-    retrying, stuck = conn.execute(select(
-        func.count(), func.coalesce(func.sum(case((s.c.failures >= DEGRADED_AFTER_FAILURES, 1),
-                                                  else_=0)), 0))
-        .where(s.c.failures >= 1)).one()
+    retrying, stuck, backlog = int(row[6]), int(row[7]), int(row[8])
     failing = []
     if retrying:
         for r in conn.execute(select(s.c.detector_id, s.c.failures, s.c.last_error,
@@ -276,7 +286,7 @@ def scoring_health(conn: Connection, settings: Settings, *, now: float | None = 
         reasons.append("backlog_stalled")
     return ScoringHealth(
         status="degraded" if reasons else "ok", reasons=reasons,
-        backlog=scoring_backlog(conn, settings, clock=clock), retrying=int(retrying),
+        backlog=backlog, retrying=retrying,
         oldest_unscored_age_s=None if oldest_age is None else round(oldest_age, 1),
         longest_wait_s=None if longest_wait is None else round(longest_wait, 1),
         failing=failing)

@@ -241,3 +241,28 @@ def test_health_names_no_detector_when_scoring_keeps_up(database_url, fitted, ne
     scoring = body["scoring"]
     assert scoring == {"status": "ok", "reasons": [], "backlog": 0, "retrying": 0,
                        "oldest_unscored_age_s": None, "longest_wait_s": None, "failing": []}
+
+
+def test_health_reports_a_stalled_backlog_when_no_scorer_runs(database_url, fitted,
+                                                              network) -> None:
+    """Counts stored while no scorer runs: health is ok while the wait is short, and degraded
+    (backlog_stalled, HTTP 200) once the work has waited over STALLED_AFTER_S."""
+    engine = fitted.engine
+    fitted.reset()
+    post(engine, two_dead_spells(network))
+    code, body = health(engine, database_url)
+    scoring = body["scoring"]
+    assert code == 200 and body["status"] == "ok", body
+    assert scoring["backlog"] == len(GROUP) and scoring["failing"] == []
+    assert 0 <= scoring["longest_wait_s"] < alerting.STALLED_AFTER_S
+    assert scoring["oldest_unscored_age_s"] > 0
+    s = models.detector_state
+    with engine.begin() as conn:  # as if the counts had arrived 11 minutes ago
+        conn.execute(s.update().values(pending_since_s=s.c.pending_since_s - 660))
+    code, body = health(engine, database_url)
+    assert code == 200 and body["status"] == "degraded", body
+    assert body["scoring"]["reasons"] == ["backlog_stalled"]
+    assert body["scoring"]["longest_wait_s"] >= 660
+    alerting.score_until_idle(engine, fitted.settings)
+    code, body = health(engine, database_url)
+    assert body["status"] == "ok" and body["scoring"]["longest_wait_s"] is None
