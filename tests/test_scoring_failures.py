@@ -266,3 +266,36 @@ def test_health_reports_a_stalled_backlog_when_no_scorer_runs(database_url, fitt
     alerting.score_until_idle(engine, fitted.settings)
     code, body = health(engine, database_url)
     assert body["status"] == "ok" and body["scoring"]["longest_wait_s"] is None
+
+
+def test_a_count_stored_as_text_fails_only_its_detector(sqlite_url, network) -> None:
+    """SQLite keeps any value in any column: a count written as text by hand breaks the batch
+    read that a pass shares, so the pass is redone detector by detector, the damaged detector
+    alone fails, and it catches up once the value is mended."""
+    from service.db import make_engine
+
+    settings = Settings(database_url=sqlite_url, clock="data")
+    engine = make_engine(settings)
+    fitted = Fitted(engine, settings, network)
+    rows = two_dead_spells(network)
+    expected = reference_alerts(fitted, rows)
+    post(engine, rows)
+    spot = {"d": BROKEN, "t": network.test_start_s + 3 * HOUR}
+    with engine.begin() as conn:
+        good = conn.exec_driver_sql("SELECT count FROM counts WHERE detector_id = ? AND "
+                                    "start_s = ?", (spot["d"], spot["t"])).scalar_one()
+        conn.exec_driver_sql("UPDATE counts SET count = 'twelve' WHERE detector_id = ? AND "
+                             "start_s = ?", (spot["d"], spot["t"]))
+    alerting.score_until_idle(engine, settings)
+    row = state(engine, BROKEN)
+    assert row.failures == 1 and row.last_error.startswith("ValueError")
+    assert only(visible_alerts(engine), HEALTHY) == only(expected, HEALTHY)
+    assert state(engine, HEALTHY).failures == 0 and state(engine, GROUP[0]).failures == 0
+    with engine.begin() as conn:
+        conn.exec_driver_sql("UPDATE counts SET count = ? WHERE detector_id = ? AND start_s = ?",
+                             (good, spot["d"], spot["t"]))
+    let_retry_time_pass(engine, BROKEN)
+    alerting.score_until_idle(engine, settings)
+    fitted.assert_drained()
+    assert visible_alerts(engine) == expected
+    engine.dispose()
