@@ -43,7 +43,7 @@ from zoneinfo import ZoneInfo
 
 import numpy as np
 import orjson
-from sqlalchemy import Connection, Engine, case, delete, func, or_, select, union, update
+from sqlalchemy import Connection, Engine, case, delete, func, or_, select, update
 from sqlalchemy.exc import DBAPIError
 
 from . import baseline as bl
@@ -188,18 +188,26 @@ def _due_by_clock(clock: float, settings: Settings):  # type: ignore[no-untyped-
 
 
 def _backlog_query(clock: float, settings: Settings):  # type: ignore[no-untyped-def]
-    """Count of detectors with scoring work waiting (those waiting for a retry included):
-    a union of index look-ups, so its cost follows the backlog, not the number of detectors."""
+    """Count of detectors with scoring work waiting (those waiting for a retry included).
+
+    A sum over disjoint cases, each an index range (``+ 0`` keeps a planner off the index of
+    a column that is only filtered on), so the cost follows the backlog, not the detectors."""
     s, d = models.detector_state, models.detectors
     has_baseline = s.c.baseline_id.is_not(None)
-    due = union(
-        select(s.c.detector_id).where(has_baseline, s.c.dirty_from_s > ANY_TIME),
-        select(s.c.detector_id).where(has_baseline, s.c.claimed_from_s > ANY_TIME),
-        select(s.c.detector_id).where(has_baseline, s.c.scored_through_s.is_(None)),
-        select(s.c.detector_id).join(d, d.c.detector_id == s.c.detector_id)
-        .where(has_baseline, *_due_by_clock(clock, settings)),
-    ).subquery()
-    return select(func.count()).select_from(due)
+    not_dirty, not_claimed = (s.c.dirty_from_s + 0).is_(None), (s.c.claimed_from_s + 0).is_(None)
+    cases = (
+        select(func.count()).select_from(s).where(has_baseline, s.c.dirty_from_s > ANY_TIME),
+        select(func.count()).select_from(s).where(has_baseline, s.c.claimed_from_s > ANY_TIME,
+                                                  not_dirty),
+        select(func.count()).select_from(s).where(has_baseline, s.c.scored_through_s.is_(None),
+                                                  not_dirty, not_claimed),
+        select(func.count()).select_from(s).join(d, d.c.detector_id == s.c.detector_id)
+        .where(has_baseline, not_dirty, not_claimed, *_due_by_clock(clock, settings)),
+    )
+    total = cases[0].scalar_subquery()
+    for case_ in cases[1:]:
+        total = total + case_.scalar_subquery()
+    return select(total)
 
 
 def scoring_backlog(conn: Connection, settings: Settings) -> int:
@@ -232,9 +240,10 @@ def scoring_health(conn: Connection, settings: Settings, *, now: float | None = 
     ``oldest_unscored_age_s`` is measured on the scoring clock (wall, or the latest interval in
     data-clock mode): a late interval from yesterday is a day old as soon as it arrives.
     ``longest_wait_s`` is how long the oldest waiting work of a detector that is not failing
-    has waited (wall seconds): work that arrived by ingest since ``pending_since_s``, and in
-    wall-clock mode intervals that became due without data (missing-data scoring) since they
-    passed the grace period. Failing detectors are reported apart, in ``failing``."""
+    has waited (wall seconds): work that arrived by ingest since ``pending_since_s``, a
+    detector fitted but never scored since its state was last written, and in wall-clock mode
+    intervals that became due without data (missing-data scoring) since they passed the grace
+    period. Failing detectors are reported apart, in ``failing``."""
     s, d = models.detector_state, models.detectors
     now = time.time() if now is None else now
     clock = clock_now(conn, settings)
@@ -255,6 +264,8 @@ def scoring_health(conn: Connection, settings: Settings, *, now: float | None = 
         .where(has_baseline, not_failing, *by_clock).scalar_subquery(),
         select(func.min(s.c.pending_since_s)).where(has_baseline, not_failing)
         .scalar_subquery(),
+        select(func.min(s.c.updated_s)).where(has_baseline, not_failing,
+                                              s.c.scored_through_s.is_(None)).scalar_subquery(),
         select(func.count()).select_from(s).where(s.c.failures >= 1).scalar_subquery(),
         select(func.count()).select_from(s).where(s.c.failures >= DEGRADED_AFTER_FAILURES)
         .scalar_subquery(),
@@ -262,13 +273,11 @@ def scoring_health(conn: Connection, settings: Settings, *, now: float | None = 
     )).one()
     starts = [v for v in row[:4] if v is not None]
     oldest_age = max(0.0, clock - min(starts)) if starts else None
-    waits = []
-    if row[5] is not None:
-        waits.append(now - float(row[5]))
+    waits = [now - float(t) for t in (row[5], row[6]) if t is not None]
     if settings.clock == "wall" and row[4] is not None:
         waits.append(clock - (float(row[4]) + settings.missing_grace_s))
     longest_wait = max(0.0, *waits) if waits else None
-    retrying, stuck, backlog = int(row[6]), int(row[7]), int(row[8])
+    retrying, stuck, backlog = int(row[7]), int(row[8]), int(row[9])
     failing = []
     if retrying:
         for r in conn.execute(select(s.c.detector_id, s.c.failures, s.c.last_error,

@@ -18,6 +18,7 @@ from sqlalchemy import (
     String,
     Table,
     Text,
+    text,
 )
 
 NAMING = {
@@ -133,6 +134,9 @@ detector_state = Table(
     Index("ix_detector_state_scored_through_s", "scored_through_s"),
     Index("ix_detector_state_failures", "failures"),
     Index("ix_detector_state_pending_since_s", "pending_since_s"),
+    Index("ix_detector_state_never_scored", "score_from_s",
+          sqlite_where=text("scored_through_s IS NULL"),
+          postgresql_where=text("scored_through_s IS NULL")),
 )
 
 # Flagged intervals only (sparse): alert episodes are rebuilt from these.
