@@ -12,6 +12,15 @@ and keeps alerts a pure function of the stored counts and the baseline:
   interval is handled by rescoring from its block on: any arrival order gives the same alerts.
 - Flagged intervals are stored sparsely in ``evidence``; alert episodes are rebuilt from them
   and reconciled with stored alerts by (subject, kind, start). A change gets a new ``seq``.
+  That key is unique over *all* stored alerts, withdrawn ones included, and the lookup reads
+  withdrawn ones too: when later data supports a withdrawn alert again, the same row comes
+  back (same ``id``, ``withdrawn`` false, a new ``seq`` so pollers see it), never a second row.
+- One detector's failure never stops the others: each detector is scored on its own and
+  written inside its own SAVEPOINT. A failure is logged, counted on the detector's
+  ``detector_state`` row and retried with exponential backoff (``retry_after_s``, in the
+  database so every scorer process agrees); ``GET /v1/health`` names detectors that keep
+  failing. A failure of a whole pass is retried detector by detector, so a failure that only
+  shows in a batch is still pinned on the detector that causes it.
 
 Why the sequence row lock: a poller asking for ``seq > N`` must never miss a change. If two
 transactions drew sequence numbers freely, the larger could commit first and a poller could
@@ -34,7 +43,8 @@ from zoneinfo import ZoneInfo
 
 import numpy as np
 import orjson
-from sqlalchemy import Connection, Engine, delete, func, or_, select, update
+from sqlalchemy import Connection, Engine, case, delete, func, or_, select, update
+from sqlalchemy.exc import DBAPIError
 
 from . import baseline as bl
 from . import models, scoring
@@ -49,6 +59,15 @@ LOW_KINDS = frozenset({"no_counts", "low_volume"})
 BLOCK_S = 86_400
 WARMUP_S = 6 * 3600
 LEASE_S = 120.0
+# Retry a detector whose scoring failed after RETRY_FIRST_S, doubling per consecutive failure up
+# to RETRY_MAX_S. Module constants until they move to Settings.
+RETRY_FIRST_S = 5.0  # seconds
+RETRY_MAX_S = 900.0  # seconds
+LAST_ERROR_CHARS = 300  # the detector_state.last_error column width
+# Health calls scoring degraded when a detector failed this many times in a row, or when work
+# has waited longer than STALLED_AFTER_S (wall seconds) without being scored.
+DEGRADED_AFTER_FAILURES = 3
+STALLED_AFTER_S = 600.0
 NO_DATA_REOPEN_S = 2 * 3600  # gaps closer than this are one intermittent-reporting episode
 
 
@@ -64,19 +83,23 @@ def next_seqs(conn: Connection, n: int) -> list[int]:
 
 
 def mark_dirty(conn: Connection, result: Any) -> None:
-    """Ingest hook: note the earliest newly stored interval of each detector with a baseline."""
+    """Ingest hook: note the earliest newly stored interval of each detector with a baseline,
+    and since when (wall clock) the detector has had work waiting."""
     if not result.stored_from:
         return
     rows = sorted(result.stored_from.items())
+    now = time.time()
     if conn.dialect.name == "sqlite":
         conn.exec_driver_sql(
             "UPDATE detector_state SET dirty_from_s = CASE WHEN dirty_from_s IS NULL OR "
-            "dirty_from_s > ? THEN ? ELSE dirty_from_s END WHERE detector_id = ?",
-            [(t, t, det) for det, t in rows])
+            "dirty_from_s > ? THEN ? ELSE dirty_from_s END, "
+            "pending_since_s = COALESCE(pending_since_s, ?) WHERE detector_id = ?",
+            [(t, t, now, det) for det, t in rows])
     else:
         conn.exec_driver_sql(
-            "UPDATE detector_state SET dirty_from_s = LEAST(COALESCE(dirty_from_s, %(t)s), %(t)s) "
-            "WHERE detector_id = %(d)s", [{"d": det, "t": t} for det, t in rows])
+            "UPDATE detector_state SET dirty_from_s = LEAST(COALESCE(dirty_from_s, %(t)s), %(t)s), "
+            "pending_since_s = COALESCE(pending_since_s, %(now)s) "
+            "WHERE detector_id = %(d)s", [{"d": det, "t": t, "now": now} for det, t in rows])
 
 
 # ----------------------------------------------------------------------------- time helpers
@@ -107,7 +130,7 @@ class Claim:
     score_from_s: int
     from_s: int | None  # earliest interval needing (re)scoring, None = just continue
     scored_through_s: int | None
-    warm_state: Any
+    warm_state: Any  # as stored (JSON text); parsed when this detector is scored
 
 
 def claim(engine: Engine, settings: Settings, *, limit: int = 64) -> tuple[list[Claim], float]:
@@ -123,7 +146,8 @@ def claim(engine: Engine, settings: Settings, *, limit: int = 64) -> tuple[list[
                        s.c.claimed_from_s, s.c.scored_through_s, s.c.warm_state)
                 .join(d, d.c.detector_id == s.c.detector_id)
                 .where(s.c.baseline_id.is_not(None),
-                       or_(s.c.lease_until_s.is_(None), s.c.lease_until_s < now), due)
+                       or_(s.c.lease_until_s.is_(None), s.c.lease_until_s < now),
+                       or_(s.c.retry_after_s.is_(None), s.c.retry_after_s <= now), due)
                 .order_by(s.c.detector_id).limit(limit))
 
     # Look before taking the write lock: an idle scorer must not queue behind ingest.
@@ -144,20 +168,137 @@ def claim(engine: Engine, settings: Settings, *, limit: int = 64) -> tuple[list[
             conn.execute(update(s).where(s.c.detector_id == r.detector_id).values(
                 lease_until_s=now + LEASE_S, claimed_from_s=from_s, dirty_from_s=None))
             claims.append(Claim(r.detector_id, r.baseline_id, r.score_from_s, from_s,
-                                r.scored_through_s,
-                                orjson.loads(r.warm_state) if r.warm_state else None))
+                                r.scored_through_s, r.warm_state))
     return claims, clock
 
 
-def scoring_backlog(conn: Connection, settings: Settings) -> int:
+MIN_INTERVAL_S = 60  # the detectors table's smallest allowed interval_s
+# ``t > ANY_TIME`` means ``t IS NOT NULL`` for any stored time, written as a range because
+# SQLite's planner scans the table for IS NOT NULL but searches an index for a range.
+ANY_TIME = -(2**62)
+
+
+def _due_by_clock(clock: float, settings: Settings):  # type: ignore[no-untyped-def]
+    """Conditions on detector_state joined to detectors: scored intervals lag the clock.
+
+    The first term only narrows the range so that the scored_through_s index is used."""
     s, d = models.detector_state, models.detectors
+    return (s.c.scored_through_s <= math.floor(clock) - settings.missing_grace_s - MIN_INTERVAL_S,
+            s.c.scored_through_s + d.c.interval_s + settings.missing_grace_s <= clock)
+
+
+def _backlog_query(clock: float, settings: Settings):  # type: ignore[no-untyped-def]
+    """Count of detectors with scoring work waiting (those waiting for a retry included).
+
+    A sum over disjoint cases, each an index range (``+ 0`` keeps a planner off the index of
+    a column that is only filtered on), so the cost follows the backlog, not the detectors."""
+    s, d = models.detector_state, models.detectors
+    has_baseline = s.c.baseline_id.is_not(None)
+    not_dirty, not_claimed = (s.c.dirty_from_s + 0).is_(None), (s.c.claimed_from_s + 0).is_(None)
+    cases = (
+        select(func.count()).select_from(s).where(has_baseline, s.c.dirty_from_s > ANY_TIME),
+        select(func.count()).select_from(s).where(has_baseline, s.c.claimed_from_s > ANY_TIME,
+                                                  not_dirty),
+        select(func.count()).select_from(s).where(has_baseline, s.c.scored_through_s.is_(None),
+                                                  not_dirty, not_claimed),
+        select(func.count()).select_from(s).join(d, d.c.detector_id == s.c.detector_id)
+        .where(has_baseline, not_dirty, not_claimed, *_due_by_clock(clock, settings)),
+    )
+    total = cases[0].scalar_subquery()
+    for case_ in cases[1:]:
+        total = total + case_.scalar_subquery()
+    return select(total)
+
+
+def scoring_backlog(conn: Connection, settings: Settings) -> int:
+    """Detectors with scoring work waiting (those waiting for a retry included)."""
     clock = clock_now(conn, settings)
-    q = (select(func.count()).select_from(s.join(d, d.c.detector_id == s.c.detector_id))
-         .where(s.c.baseline_id.is_not(None),
-                or_(s.c.dirty_from_s.is_not(None), s.c.claimed_from_s.is_not(None),
-                    s.c.scored_through_s.is_(None),
-                    s.c.scored_through_s + d.c.interval_s + settings.missing_grace_s <= clock)))
-    return int(conn.execute(q).scalar_one())
+    return int(conn.execute(_backlog_query(clock, settings)).scalar_one())
+
+
+FAILING_LISTED = 20  # most detectors health names
+
+
+@dataclass(frozen=True)
+class ScoringHealth:
+    """How scoring keeps up, from index look-ups in one statement (see ``scoring_health``)."""
+
+    status: str  # "ok" or "degraded"
+    reasons: list[str]
+    backlog: int
+    retrying: int
+    oldest_unscored_age_s: float | None
+    longest_wait_s: float | None
+    failing: list[dict[str, Any]]
+
+
+def scoring_health(conn: Connection, settings: Settings, *, now: float | None = None
+                   ) -> ScoringHealth:
+    """Backlog, waits and failing detectors; degraded when a detector has failed
+    ``DEGRADED_AFTER_FAILURES`` times in a row or work has waited over ``STALLED_AFTER_S``.
+
+    ``oldest_unscored_age_s`` is measured on the scoring clock (wall, or the latest interval in
+    data-clock mode): a late interval from yesterday is a day old as soon as it arrives.
+    ``longest_wait_s`` is how long the oldest waiting work of a detector that is not failing
+    has waited (wall seconds): work that arrived by ingest since ``pending_since_s``, a
+    detector fitted but never scored since its state was last written, and in wall-clock mode
+    intervals that became due without data (missing-data scoring) since they passed the grace
+    period. Failing detectors are reported apart, in ``failing``."""
+    s, d = models.detector_state, models.detectors
+    now = time.time() if now is None else now
+    clock = clock_now(conn, settings)
+    has_baseline = s.c.baseline_id.is_not(None)
+    by_clock = _due_by_clock(clock, settings)
+    # Not failing (set and cleared with ``failures``; unindexed, so the planner keeps to the
+    # time indexes instead of reading every row with failures = 0).
+    not_failing = s.c.failing_since_s.is_(None)
+    row = conn.execute(select(
+        select(func.min(s.c.dirty_from_s)).where(has_baseline).scalar_subquery(),
+        select(func.min(s.c.claimed_from_s)).where(has_baseline).scalar_subquery(),
+        select(func.min(s.c.score_from_s)).where(has_baseline, s.c.scored_through_s.is_(None))
+        .scalar_subquery(),
+        select(func.min(s.c.scored_through_s)).join(d, d.c.detector_id == s.c.detector_id)
+        .where(has_baseline, *by_clock).scalar_subquery(),
+        select(func.min(s.c.scored_through_s + d.c.interval_s))
+        .join(d, d.c.detector_id == s.c.detector_id)
+        .where(has_baseline, not_failing, *by_clock).scalar_subquery(),
+        select(func.min(s.c.pending_since_s)).where(has_baseline, not_failing)
+        .scalar_subquery(),
+        select(func.min(s.c.updated_s)).where(has_baseline, not_failing,
+                                              s.c.scored_through_s.is_(None)).scalar_subquery(),
+        select(func.count()).select_from(s).where(s.c.failures >= 1).scalar_subquery(),
+        select(func.count()).select_from(s).where(s.c.failures >= DEGRADED_AFTER_FAILURES)
+        .scalar_subquery(),
+        _backlog_query(clock, settings).scalar_subquery(),
+    )).one()
+    starts = [v for v in row[:4] if v is not None]
+    oldest_age = max(0.0, clock - min(starts)) if starts else None
+    waits = [now - float(t) for t in (row[5], row[6]) if t is not None]
+    if settings.clock == "wall" and row[4] is not None:
+        waits.append(clock - (float(row[4]) + settings.missing_grace_s))
+    longest_wait = max(0.0, *waits) if waits else None
+    retrying, stuck, backlog = int(row[7]), int(row[8]), int(row[9])
+    failing = []
+    if retrying:
+        for r in conn.execute(select(s.c.detector_id, s.c.failures, s.c.last_error,
+                                     s.c.failing_since_s, s.c.retry_after_s)
+                              .where(s.c.failures >= 1)
+                              .order_by(s.c.failures.desc(), s.c.detector_id)
+                              .limit(FAILING_LISTED)):
+            failing.append({"detector_id": r.detector_id, "failures": int(r.failures),
+                            "last_error": r.last_error, "failing_since_s": r.failing_since_s,
+                            "retry_after_s": r.retry_after_s})
+    reasons = []
+    if stuck:
+        reasons.append("detectors_failing")
+    if longest_wait is not None and longest_wait > STALLED_AFTER_S:
+        reasons.append("backlog_stalled")
+    return ScoringHealth(
+        status="degraded" if reasons else "ok", reasons=reasons,
+        backlog=backlog, retrying=retrying,
+        oldest_unscored_age_s=None if oldest_age is None else round(oldest_age, 1),
+        longest_wait_s=None if longest_wait is None else round(longest_wait, 1),
+        failing=failing)
 
 
 # ----------------------------------------------------------------------------- inputs
@@ -270,20 +411,33 @@ def plan_segments(claim: Claim, info: DetectorInfo, *, latest_present_s: int | N
     return pieces
 
 
-def score_claims(conn: Connection, claims: Sequence[Claim], clock: float,
-                 settings: Settings) -> list[Scored]:
-    """Compute evidence for each claim (read-only: runs outside any write transaction)."""
+def score_claims(conn: Connection, claims: Sequence[Claim], clock: float, settings: Settings
+                 ) -> tuple[list[Scored], list[tuple[str, Exception]]]:
+    """Compute evidence for each claim (read-only: runs outside any write transaction).
+
+    Returns the scored detectors and, apart, the detectors whose scoring raised (with the
+    exception): one detector's bad data or baseline never costs the others their pass. A
+    database error is raised instead, as it may have spoiled the transaction for every claim."""
     infos = load_infos(conn, [c.detector_id for c in claims])
     plans: list[tuple[Claim, DetectorInfo, list[tuple[int, int, int, Any]]]] = []
+    failed: list[tuple[str, Exception]] = []
     c = models.counts
     for claim in claims:
         info = infos.get(claim.detector_id)
         if info is None:
             continue
-        latest = conn.execute(select(func.max(c.c.start_s)).where(
-            c.c.detector_id == claim.detector_id)).scalar()
-        pieces = plan_segments(claim, info, latest_present_s=latest, clock=clock,
-                               grace_s=settings.missing_grace_s)
+        try:
+            if isinstance(claim.warm_state, str):
+                claim = dataclasses.replace(claim, warm_state=orjson.loads(claim.warm_state))
+            latest = conn.execute(select(func.max(c.c.start_s)).where(
+                c.c.detector_id == claim.detector_id)).scalar()
+            pieces = plan_segments(claim, info, latest_present_s=latest, clock=clock,
+                                   grace_s=settings.missing_grace_s)
+        except DBAPIError:
+            raise
+        except Exception as exc:  # noqa: BLE001 - this detector fails alone; recorded
+            failed.append((claim.detector_id, exc))
+            continue
         plans.append((claim, info, pieces))
     lo = min((p[0] for _, _, pieces in plans for p in pieces), default=None)
     hi = max((p[2] for _, _, pieces in plans for p in pieces), default=None)
@@ -291,41 +445,51 @@ def score_claims(conn: Connection, claims: Sequence[Claim], clock: float,
         if lo is not None and hi is not None else {}
     out: list[Scored] = []
     for claim, info, pieces in plans:
-        if not pieces:
-            out.append(Scored(info, claim.baseline_id, -1, -1, warm_state=claim.warm_state))
-            continue
-        base = load_baseline(conn, claim.baseline_id)
-        thresholds = cached_thresholds(conn, claim.baseline_id, settings.false_alerts_per_week)
-        new_thresholds = None
-        if thresholds is None:
-            thresholds = new_thresholds = thresholds_for(base, info, settings)
-            remember_thresholds(claim.baseline_id, thresholds)
-        starts, counts = data.get(info.detector_id, (np.empty(0, np.int64), np.empty(0, np.int64)))
-        scored = Scored(info, claim.baseline_id, pieces[0][1], pieces[-1][2],
-                        new_thresholds=new_thresholds)
-        for run_from, keep_from, end, warm in pieces:
-            grid = np.arange(run_from, end, info.interval_s, dtype=np.int64)
-            pos = np.searchsorted(grid, starts)
-            inside = (pos < grid.size) & (starts >= run_from) & (starts < end)
-            inside &= grid[np.minimum(pos, grid.size - 1)] == starts
-            present = np.zeros(grid.size, bool)
-            values = np.zeros(grid.size, np.int64)
-            present[pos[inside]] = True
-            values[pos[inside]] = counts[inside]
-            flags, log_p, mu, state = evaluate_piece(info, base, grid, values, present, warm,
-                                                     thresholds)
-            keep = grid >= keep_from
-            for kind in KINDS:
-                hit = np.flatnonzero(flags[kind] & keep)
-                for i in hit:
-                    scored.rows.append({
-                        "detector_id": info.detector_id, "start_s": int(grid[i]), "kind": kind,
-                        "log_p": float(max(log_p[kind][i], -1e6)),
-                        "observed": float(values[i]) if present[i] else None,
-                        "expected": float(mu[i])})
-            scored.warm_state = state
-        out.append(scored)
-    return out
+        try:
+            out.append(_score_one(conn, claim, info, pieces, data, settings))
+        except DBAPIError:
+            raise
+        except Exception as exc:  # noqa: BLE001 - this detector fails alone; recorded
+            failed.append((claim.detector_id, exc))
+    return out, failed
+
+
+def _score_one(conn: Connection, claim: Claim, info: DetectorInfo,
+               pieces: list[tuple[int, int, int, Any]],
+               data: dict[str, tuple[np.ndarray, np.ndarray]], settings: Settings) -> Scored:
+    if not pieces:
+        return Scored(info, claim.baseline_id, -1, -1, warm_state=claim.warm_state)
+    base = load_baseline(conn, claim.baseline_id)
+    thresholds = cached_thresholds(conn, claim.baseline_id, settings.false_alerts_per_week)
+    new_thresholds = None
+    if thresholds is None:
+        thresholds = new_thresholds = thresholds_for(base, info, settings)
+        remember_thresholds(claim.baseline_id, thresholds)
+    starts, counts = data.get(info.detector_id, (np.empty(0, np.int64), np.empty(0, np.int64)))
+    scored = Scored(info, claim.baseline_id, pieces[0][1], pieces[-1][2],
+                    new_thresholds=new_thresholds)
+    for run_from, keep_from, end, warm in pieces:
+        grid = np.arange(run_from, end, info.interval_s, dtype=np.int64)
+        pos = np.searchsorted(grid, starts)
+        inside = (pos < grid.size) & (starts >= run_from) & (starts < end)
+        inside &= grid[np.minimum(pos, grid.size - 1)] == starts
+        present = np.zeros(grid.size, bool)
+        values = np.zeros(grid.size, np.int64)
+        present[pos[inside]] = True
+        values[pos[inside]] = counts[inside]
+        flags, log_p, mu, state = evaluate_piece(info, base, grid, values, present, warm,
+                                                 thresholds)
+        keep = grid >= keep_from
+        for kind in KINDS:
+            hit = np.flatnonzero(flags[kind] & keep)
+            for i in hit:
+                scored.rows.append({
+                    "detector_id": info.detector_id, "start_s": int(grid[i]), "kind": kind,
+                    "log_p": float(max(log_p[kind][i], -1e6)),
+                    "observed": float(values[i]) if present[i] else None,
+                    "expected": float(mu[i])})
+        scored.warm_state = state
+    return scored
 
 
 def evaluate_piece(info: DetectorInfo, base: bl.Baseline, grid: np.ndarray, values: np.ndarray,
@@ -656,42 +820,125 @@ def _run(times: list[int], at: dict[int, dict[str, Any]]) -> tuple[int, int, lis
     return times[0], times[-1], dets, expected, log_p
 
 
-def write_scored(engine: Engine, scored: Sequence[Scored], settings: Settings) -> int:
-    """Store evidence, rebuild episodes, reconcile alerts and causes: one short transaction."""
+def write_scored(engine: Engine, scored: Sequence[Scored], settings: Settings, *,
+                 failed: Sequence[tuple[str, Exception]] = ()) -> int:
+    """Store evidence, rebuild episodes, reconcile alerts and causes: one short transaction.
+
+    Each detector's writes, and each group's refresh, run inside their own SAVEPOINT: one that
+    fails is rolled back alone and recorded (with ``failed``, the detectors whose scoring
+    already failed) for a retry with backoff, while the rest commit."""
     now = time.time()
-    e, s = models.evidence, models.detector_state
     close_after = settings.close_after_intervals
     with write_transaction(engine) as conn:
         next_seqs(conn, 0)  # take the sequence row lock first: alert writers queue here
         writer = _Writer(conn, now)
         touched: dict[str, tuple[int, int]] = {}
-        live = [sc for sc in scored if sc.end_s > sc.keep_from_s >= 0]
+        members: dict[str, list[Scored]] = {}
+        succeeded: dict[str, None] = {}
+        failures: list[tuple[str, Exception, int | None]] = [(d, exc, None) for d, exc in failed]
         for sc in scored:
-            if sc.new_thresholds is not None:
-                conn.execute(update(models.baselines).where(
-                    models.baselines.c.baseline_id == sc.baseline_id).values(
-                    thresholds=thresholds_to_json(sc.new_thresholds)))
-            values: dict[str, Any] = {"lease_until_s": None, "claimed_from_s": None,
-                                      "updated_s": now}
-            if sc in live:
-                conn.execute(delete(e).where(e.c.detector_id == sc.info.detector_id,
-                                             e.c.start_s >= sc.keep_from_s,
-                                             e.c.start_s < sc.end_s))
-                if sc.rows:
-                    conn.execute(e.insert(), sc.rows)
-                values.update(scored_through_s=sc.end_s,
-                              warm_state=orjson.dumps(sc.warm_state,
-                                                      option=orjson.OPT_SERIALIZE_NUMPY).decode()
-                              if sc.warm_state is not None else None)
-            conn.execute(update(s).where(s.c.detector_id == sc.info.detector_id).values(**values))
-        for sc in live:
-            lo, hi = _reconcile_detector(conn, writer, sc, close_after=close_after)
-            if sc.info.group is not None:
-                old = touched.get(sc.info.group)
-                touched[sc.info.group] = (min(lo, old[0]), max(hi, old[1])) if old else (lo, hi)
+            changes = writer.changes
+            try:
+                with conn.begin_nested():
+                    span = _write_detector(conn, writer, sc, now=now, close_after=close_after)
+            except Exception as exc:  # noqa: BLE001 - this detector fails alone; recorded
+                writer.changes = changes
+                failures.append((sc.info.detector_id, exc, None))
+                continue
+            succeeded[sc.info.detector_id] = None
+            group = sc.info.group
+            if span is not None and group is not None:
+                old = touched.get(group)
+                touched[group] = (min(span[0], old[0]), max(span[1], old[1])) if old else span
+                members.setdefault(group, []).append(sc)
         for group, (lo, hi) in sorted(touched.items()):
-            _refresh_group(conn, writer, group, lo, hi, close_after=close_after)
+            changes = writer.changes
+            try:
+                with conn.begin_nested():
+                    _refresh_group(conn, writer, group, lo, hi, close_after=close_after)
+            except Exception as exc:  # noqa: BLE001 - this group fails alone; recorded
+                writer.changes = changes
+                # Its members' own alerts stand; rescoring them later refreshes the group.
+                for sc in members[group]:
+                    succeeded.pop(sc.info.detector_id, None)
+                    failures.append((sc.info.detector_id, exc, sc.keep_from_s))
+        _mark_succeeded(conn, list(succeeded), now=now)
+        for detector_id, exc, redo_from_s in failures:
+            _mark_failed(conn, detector_id, exc, now=now, redo_from_s=redo_from_s)
         return writer.changes
+
+
+def _write_detector(conn: Connection, writer: _Writer, sc: Scored, *, now: float,
+                    close_after: int) -> tuple[int, int] | None:
+    """One detector's evidence, scoring state and alerts; the span its alerts were rebuilt
+    over, or None when there was nothing new to score."""
+    e, s = models.evidence, models.detector_state
+    if sc.new_thresholds is not None:
+        conn.execute(update(models.baselines).where(
+            models.baselines.c.baseline_id == sc.baseline_id).values(
+            thresholds=thresholds_to_json(sc.new_thresholds)))
+    values: dict[str, Any] = {"lease_until_s": None, "claimed_from_s": None, "updated_s": now}
+    live = sc.end_s > sc.keep_from_s >= 0
+    if live:
+        conn.execute(delete(e).where(e.c.detector_id == sc.info.detector_id,
+                                     e.c.start_s >= sc.keep_from_s, e.c.start_s < sc.end_s))
+        if sc.rows:
+            conn.execute(e.insert(), sc.rows)
+        values.update(scored_through_s=sc.end_s,
+                      warm_state=orjson.dumps(sc.warm_state,
+                                              option=orjson.OPT_SERIALIZE_NUMPY).decode()
+                      if sc.warm_state is not None else None)
+    conn.execute(update(s).where(s.c.detector_id == sc.info.detector_id).values(**values))
+    if not live:
+        return None
+    return _reconcile_detector(conn, writer, sc, close_after=close_after)
+
+
+def _mark_succeeded(conn: Connection, detector_ids: Sequence[str], *, now: float) -> None:
+    """Clear the failure streak; work that arrived during the pass waits from now on."""
+    if not detector_ids:
+        return
+    s = models.detector_state
+    conn.execute(update(s).where(s.c.detector_id.in_(list(detector_ids))).values(
+        failures=0, last_error=None, failing_since_s=None, retry_after_s=None,
+        pending_since_s=case((s.c.dirty_from_s.is_(None), None), else_=now)))
+
+
+def retry_delay_s(failures: int) -> float:
+    """Seconds to wait before retrying a detector after ``failures`` failures in a row."""
+    return min(RETRY_MAX_S, RETRY_FIRST_S * 2.0 ** min(max(failures - 1, 0), 30))
+
+
+def _short_error(exc: BaseException) -> str:
+    text = f"{type(exc).__name__}: {exc}".replace("\n", " ")
+    return text if len(text) <= LAST_ERROR_CHARS else text[: LAST_ERROR_CHARS - 1] + "…"
+
+
+def _mark_failed(conn: Connection, detector_id: str, exc: BaseException, *, now: float,
+                 redo_from_s: int | None = None) -> None:
+    """Count a failure, keep the detector's claimed work for the retry and set its backoff.
+
+    ``redo_from_s``: for work that was stored but whose follow-up failed, the interval to
+    rescore from."""
+    s = models.detector_state
+    row = conn.execute(select(s.c.failures, s.c.dirty_from_s).where(
+        s.c.detector_id == detector_id)).first()
+    if row is None:  # the detector was deleted meanwhile
+        return
+    failures = int(row.failures or 0) + 1
+    delay = retry_delay_s(failures)
+    values: dict[str, Any] = {
+        "lease_until_s": None, "failures": failures, "last_error": _short_error(exc),
+        "failing_since_s": func.coalesce(s.c.failing_since_s, now),
+        "retry_after_s": now + delay,
+        "pending_since_s": func.coalesce(s.c.pending_since_s, now), "updated_s": now}
+    if redo_from_s is not None:
+        values["dirty_from_s"] = redo_from_s if row.dirty_from_s is None \
+            else min(int(row.dirty_from_s), redo_from_s)
+    conn.execute(update(s).where(s.c.detector_id == detector_id).values(**values))
+    log.warning("scoring detector failed; retry in %.0f s", delay, exc_info=exc, extra={
+        "fields": {"detector_id": detector_id, "failures": failures,
+                   "error": _short_error(exc)}})
 
 
 def _reconcile_detector(conn: Connection, writer: _Writer, sc: Scored, *, close_after: int
@@ -711,13 +958,16 @@ def _reconcile_detector(conn: Connection, writer: _Writer, sc: Scored, *, close_
     rows = _evidence_rows(conn, [info.detector_id], lo, sc.end_s)
     episodes = episodes_from_rows(info.detector_id, rows, interval_s=step,
                                   scored_end_s=sc.end_s, close_after=close_after)
+    # Withdrawn alerts too: (subject, kind, start) is unique over all rows, so an episode that
+    # later data supports again revives its withdrawn row instead of inserting a second one.
     stored = {(r.kind, r.start_s): r for r in conn.execute(select(a).where(
-        a.c.subject == info.detector_id, a.c.withdrawn == 0, a.c.start_s >= lo))}
+        a.c.subject == info.detector_id, a.c.start_s >= lo))}
     for ep in episodes:
         key = (ep.kind, ep.start_s)
         writer.upsert(stored.pop(key, None), _episode_values(ep, info, sc.baseline_id, "unknown"))
     for old in stored.values():
-        writer.withdraw(old, "Withdrawn: later data no longer supports this alert.")
+        if not old.withdrawn:
+            writer.withdraw(old, "Withdrawn: later data no longer supports this alert.")
     return lo, sc.end_s
 
 
@@ -747,8 +997,8 @@ def _refresh_group(conn: Connection, writer: _Writer, group: str, lo: int, hi: i
         a.c.subject == subject, a.c.withdrawn == 0, a.c.end_s >= lo - pad)).scalar()
     lo = min(lo, int(earlier)) if earlier is not None else lo
     runs = _communications_runs(conn, members, lo - pad, hi, step)
-    stored_groups = {r.start_s: r for r in conn.execute(select(a).where(
-        a.c.subject == subject, a.c.withdrawn == 0, a.c.start_s >= lo - pad))}
+    stored_groups = {r.start_s: r for r in conn.execute(select(a).where(  # withdrawn too
+        a.c.subject == subject, a.c.kind == "no_data", a.c.start_s >= lo - pad))}
     group_ids: list[tuple[int, int, int]] = []
     for start, last, dets, expected, log_p in runs:
         ep = Episode(subject=subject, detector_id=None, kind="no_data", start_s=start,
@@ -768,7 +1018,8 @@ def _refresh_group(conn: Connection, writer: _Writer, group: str, lo: int, hi: i
         alert_id = writer.upsert(stored_groups.pop(start, None), values)
         group_ids.append((start, last, alert_id))
     for old in stored_groups.values():
-        writer.withdraw(old, "Withdrawn: later data shows the group was not offline together.")
+        if not old.withdrawn:
+            writer.withdraw(old, "Withdrawn: later data shows the group was not offline together.")
     detector_alerts = conn.execute(select(a).where(
         a.c.group_id == group, a.c.detector_id.is_not(None), a.c.withdrawn == 0,
         a.c.end_s >= lo - pad, a.c.start_s < hi + pad)).all()
@@ -798,27 +1049,44 @@ def _refresh_group(conn: Connection, writer: _Writer, group: str, lo: int, hi: i
 
 
 def score_pass(engine: Engine, settings: Settings, *, limit: int = 64) -> int:
-    """Claim, score and write one batch of detectors; returns how many were claimed."""
+    """Claim, score and write one batch of detectors; returns how many were claimed.
+
+    A detector that fails is recorded and retried later with backoff; the others' results are
+    written. Should the batch fail as a whole, its detectors are retried one at a time, so the
+    failure lands on the detector that causes it. Raises only when even a failure cannot be
+    recorded (the database is unreachable): the leases then expire and the work is retried."""
     claims, clock = claim(engine, settings, limit=limit)
     if not claims:
         return 0
     try:
-        with read_transaction(engine) as conn:
-            scored = score_claims(conn, claims, clock, settings)
-        write_scored(engine, scored, settings)
-    except Exception:
-        _release(engine, claims)
-        raise
+        _score_and_write(engine, claims, clock, settings)
+    except Exception as exc:  # noqa: BLE001 - pinned on detectors below
+        if len(claims) == 1:
+            _fail_claims(engine, claims, exc)
+            return len(claims)
+        log.warning("scoring pass failed; retrying its detectors one at a time", exc_info=exc,
+                    extra={"fields": {"detectors": len(claims)}})
+        for one in claims:
+            try:
+                _score_and_write(engine, [one], clock, settings)
+            except Exception as exc_one:  # noqa: BLE001 - recorded on this detector
+                _fail_claims(engine, [one], exc_one)
     return len(claims)
 
 
-def _release(engine: Engine, claims: Sequence[Claim]) -> None:
-    """Give claims back after a failure so another pass retries them."""
-    s = models.detector_state
+def _score_and_write(engine: Engine, claims: Sequence[Claim], clock: float,
+                     settings: Settings) -> None:
+    with read_transaction(engine) as conn:
+        scored, failed = score_claims(conn, claims, clock, settings)
+    write_scored(engine, scored, settings, failed=failed)
+
+
+def _fail_claims(engine: Engine, claims: Sequence[Claim], exc: Exception) -> None:
+    """Record a failure on each claimed detector (which releases it for a later retry)."""
+    now = time.time()
     with write_transaction(engine) as conn:
         for c in claims:
-            conn.execute(update(s).where(s.c.detector_id == c.detector_id).values(
-                lease_until_s=None))
+            _mark_failed(conn, c.detector_id, exc, now=now)
 
 
 def score_until_idle(engine: Engine, settings: Settings, *, limit: int = 64,

@@ -18,6 +18,7 @@ from sqlalchemy import (
     String,
     Table,
     Text,
+    text,
 )
 
 NAMING = {
@@ -121,7 +122,21 @@ detector_state = Table(
     Column("scored_through_s", BigInteger, nullable=True),
     Column("warm_state", Text, nullable=True),
     Column("updated_s", Float, nullable=False),
+    # Failed scoring: consecutive failures, the last error (short), when the streak began and
+    # when to retry (exponential backoff, shared by every scorer process).
+    Column("failures", Integer, nullable=False, server_default="0"),
+    Column("last_error", String(300), nullable=True),
+    Column("failing_since_s", Float, nullable=True),
+    Column("retry_after_s", Float, nullable=True),
+    Column("pending_since_s", Float, nullable=True),  # wall time the oldest waiting work arrived
     Index("ix_detector_state_dirty_from_s", "dirty_from_s"),
+    Index("ix_detector_state_claimed_from_s", "claimed_from_s"),
+    Index("ix_detector_state_scored_through_s", "scored_through_s"),
+    Index("ix_detector_state_failures", "failures"),
+    Index("ix_detector_state_pending_since_s", "pending_since_s"),
+    Index("ix_detector_state_never_scored", "score_from_s",
+          sqlite_where=text("scored_through_s IS NULL"),
+          postgresql_where=text("scored_through_s IS NULL")),
 )
 
 # Flagged intervals only (sparse): alert episodes are rebuilt from these.
