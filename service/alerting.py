@@ -514,6 +514,14 @@ def evaluate_piece(info: DetectorInfo, base: bl.Baseline, grid: np.ndarray, valu
 _THRESHOLDS: dict[tuple[int, float], scoring.Thresholds] = {}
 
 
+def clear_caches() -> None:
+    """Forget every cached baseline and threshold (a process that meets a database whose
+    baseline ids were reused: tests that empty the database between cases)."""
+    with _BASELINES_LOCK:
+        _BASELINES.clear()
+    _THRESHOLDS.clear()
+
+
 def thresholds_to_json(th: scoring.Thresholds) -> str:
     return orjson.dumps(dataclasses.asdict(th)).decode()
 

@@ -32,6 +32,14 @@ BACKENDS = ["sqlite"] + (["postgresql"] if PG_URL else [])
 
 
 @pytest.fixture(autouse=True)
+def _fresh_caches() -> None:
+    """Every test database restarts its baseline ids, so no cached baseline may outlive a test."""
+    from service import alerting
+
+    alerting.clear_caches()
+
+
+@pytest.fixture(autouse=True)
 def _clean_env(monkeypatch: pytest.MonkeyPatch) -> None:
     """No TALLYWARD_* variable of the caller's shell leaks into a test."""
     for name in list(os.environ):
