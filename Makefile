@@ -5,7 +5,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
 
-.PHONY: demo test contract bench lint clean
+.PHONY: demo test test-fast contract bench lint clean
 
 $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
@@ -18,6 +18,10 @@ demo: $(STAMP)
 
 test: $(STAMP)
 	$(BIN)/python -m pytest
+
+# The fast tier: pure statistics and logic, no database or process (seconds).
+test-fast: $(STAMP)
+	$(BIN)/python -m pytest -m "unit and not slow"
 
 # schemathesis against a real server: SQLite, and PostgreSQL when TALLYWARD_TEST_DATABASE_URL is set.
 contract: $(STAMP)

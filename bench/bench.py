@@ -28,9 +28,10 @@ import orjson
 REPO = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(REPO))
 
-from service import migrate, security  # noqa: E402
 from service.config import Settings  # noqa: E402
-from service.db import make_engine  # noqa: E402
+from service.store import keys as security  # noqa: E402
+from service.store import migrations as migrate  # noqa: E402
+from service.store.engine import make_engine  # noqa: E402
 from service.timefmt import parse_rfc3339  # noqa: E402
 from tests.factories import make_detector  # noqa: E402
 
@@ -163,8 +164,8 @@ def synthetic_history(n_detectors: int, days: int, seed: int = 11):
 
 
 def bench_fit(repeats: int) -> None:
-    from service import baseline as bl
-    from service import fitting
+    from service.pipeline import fit as fitting
+    from service.stats import baseline as bl
 
     n_det, days = 1000, 56
     print(f"== fit: {n_det:,} detectors x {days} days of 5-minute counts "
@@ -220,8 +221,9 @@ def bench_score(repeats: int) -> None:
     import numpy as np
     from scipy import stats
 
-    from service import alerting, scoring
-    from service import baseline as bl
+    from service.pipeline import score as alerting
+    from service.stats import baseline as bl
+    from service.stats import scoring
 
     print("== score: timeline scorer vs bare vectorised scipy.stats tails on the same arrays ==")
     days = 56
@@ -268,9 +270,9 @@ def bench_score(repeats: int) -> None:
 
 def demo_database(folder: Path, *, until_s: int):  # type: ignore[no-untyped-def]
     """A SQLite file with the demo network's detectors and history, fitted as of ``until_s``."""
-    from service import fitting
-    from service.demo import load_history
-    from service.registry import import_feature_collection
+    from service.pipeline import fit as fitting
+    from service.store.detectors import import_feature_collection
+    from service.tools.demo import load_history
 
     feed = REPO / "seed_feed"
     url = f"sqlite:///{folder / 'demo.db'}"
@@ -285,7 +287,8 @@ def demo_database(folder: Path, *, until_s: int):  # type: ignore[no-untyped-def
 
 def bench_score_db(repeats: int) -> None:
     """The database pass on the demo network: catch-up and an hour at a time."""
-    from service import alerting, ingest
+    from service.pipeline import ingest
+    from service.pipeline import score as alerting
 
     feed = REPO / "seed_feed"
     net_start = parse_rfc3339("2026-11-16T00:00:00-06:00")
@@ -293,7 +296,7 @@ def bench_score_db(repeats: int) -> None:
     with tempfile.TemporaryDirectory() as tmp:
         url, settings, engine = demo_database(Path(tmp), until_s=net_start)
         rows = []
-        from service.replay import read_feed
+        from service.tools.replay import read_feed
         for _line, det, start, start_s, count in read_feed(feed / "counts.csv.gz"):
             if start_s >= net_start:
                 rows.append((start_s, (len(rows), det, start, count)))
@@ -340,7 +343,7 @@ def bench_latency(repeats: int) -> None:
         url, settings, engine = demo_database(Path(tmp), until_s=test_start)
         key = security.create_key(engine, name="lat", role="admin")
         engine.dispose()
-        from service.replay import read_feed
+        from service.tools.replay import read_feed
         by_start: dict[int, list[dict]] = {}
         for _l, d, start, start_s, count in read_feed(feed / "counts.csv.gz"):
             if fault - 3 * 3600 <= start_s < fault + 1800:

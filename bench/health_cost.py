@@ -31,11 +31,11 @@ from sqlalchemy import create_engine, text  # noqa: E402
 from sqlalchemy.engine import make_url  # noqa: E402
 from starlette.testclient import TestClient  # noqa: E402
 
-from service import migrate  # noqa: E402
-from service.api.health import health  # noqa: E402
 from service.config import Settings  # noqa: E402
-from service.db import make_engine  # noqa: E402
-from service.main import create_app  # noqa: E402
+from service.store import migrations as migrate  # noqa: E402
+from service.store.engine import make_engine  # noqa: E402
+from service.web.app import create_app  # noqa: E402
+from service.web.routes.health import health  # noqa: E402
 
 
 def fill(url: str, *, n_counts: int, n_detectors: int) -> None:

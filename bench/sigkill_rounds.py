@@ -40,9 +40,11 @@ from sqlalchemy import select
 REPO = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(REPO))
 
-from service import migrate, models, security  # noqa: E402
 from service.config import Settings  # noqa: E402
-from service.db import make_engine  # noqa: E402
+from service.store import keys as security  # noqa: E402
+from service.store import migrations as migrate  # noqa: E402
+from service.store import tables as models  # noqa: E402
+from service.store.engine import make_engine  # noqa: E402
 from tests.factories import make_detector  # noqa: E402
 
 DETECTORS = 4

@@ -6,7 +6,7 @@ from alembic import context
 from sqlalchemy import create_engine, pool
 
 from service.config import Settings
-from service.models import metadata
+from service.store.tables import metadata
 
 config = context.config
 url = config.get_main_option("sqlalchemy.url") or Settings().database_url

@@ -18,8 +18,8 @@ from typing import Any, TextIO
 import orjson
 from sqlalchemy.exc import OperationalError
 
-from .config import Settings, get_settings
-from .errors import TallywardError
+from service.config import Settings, get_settings
+from service.errors import TallywardError
 
 
 def table(rows: Sequence[Sequence[Any]], headers: Sequence[str], *, out: TextIO | None = None) -> None:
@@ -42,7 +42,7 @@ def _numeric(v: str) -> bool:
 
 
 def _engine(settings: Settings):  # type: ignore[no-untyped-def]
-    from .db import make_engine
+    from service.store.engine import make_engine
 
     return make_engine(settings)
 
@@ -51,7 +51,7 @@ def _engine(settings: Settings):  # type: ignore[no-untyped-def]
 
 
 def cmd_migrate(args: argparse.Namespace, settings: Settings) -> int:
-    from . import migrate
+    from service.store import migrations as migrate
 
     migrate.upgrade(settings.database_url)
     print(f"schema at head {migrate.head_revision(settings.database_url)} ({_safe_url(settings)})",
@@ -79,7 +79,8 @@ def _is_loopback_host(host: str) -> bool:
 def cmd_serve(args: argparse.Namespace, settings: Settings) -> int:
     import uvicorn
 
-    from . import migrate, server
+    from service.store import migrations as migrate
+    from service.web import server
 
     if settings.auth == "loopback-open":
         if not _is_loopback_host(args.host):
@@ -93,7 +94,7 @@ def cmd_serve(args: argparse.Namespace, settings: Settings) -> int:
               "Do not put a reverse proxy on this host in front of it; use "
               "TALLYWARD_AUTH=required for anything but a local demo.", file=sys.stderr)
     migrate.upgrade(settings.database_url)
-    uvicorn.run("service.main:app_from_env", factory=True, host=args.host, port=args.port,
+    uvicorn.run("service.web.app:app_from_env", factory=True, host=args.host, port=args.port,
                 workers=args.workers, log_level="warning", access_log=False,
                 http=server.protocol(), timeout_keep_alive=settings.http_keep_alive_s,
                 limit_concurrency=settings.http_max_connections,
@@ -102,7 +103,7 @@ def cmd_serve(args: argparse.Namespace, settings: Settings) -> int:
 
 
 def cmd_import_detectors(args: argparse.Namespace, settings: Settings) -> int:
-    from .registry import import_feature_collection
+    from service.store.detectors import import_feature_collection
 
     doc = orjson.loads(Path(args.file).read_bytes())
     result = import_feature_collection(_engine(settings), doc)
@@ -145,7 +146,7 @@ def csv_chunks(stream: TextIO, *, chunk: int) -> Iterator[tuple[int, bytes]]:
 def cmd_import_counts(args: argparse.Namespace, settings: Settings) -> int:
     from tqdm import tqdm
 
-    from . import ingest
+    from service.pipeline import ingest
 
     engine = _engine(settings)
     size = os.path.getsize(args.file)
@@ -193,8 +194,8 @@ def _file_pos(raw: Any, stream: Any) -> int:
 
 
 def cmd_keys(args: argparse.Namespace, settings: Settings) -> int:
-    from . import security
-    from .timefmt import format_utc
+    from service.store import keys as security
+    from service.timefmt import format_utc
 
     engine = _engine(settings)
     if args.keys_cmd == "create":
@@ -212,7 +213,7 @@ def cmd_keys(args: argparse.Namespace, settings: Settings) -> int:
 
 
 def _time_arg(text: str | None) -> int | None:
-    from .timefmt import parse_rfc3339
+    from service.timefmt import parse_rfc3339
 
     if text is None:
         return None
@@ -225,7 +226,7 @@ def _time_arg(text: str | None) -> int | None:
 def cmd_fit(args: argparse.Namespace, settings: Settings) -> int:
     from tqdm import tqdm
 
-    from . import fitting
+    from service.pipeline import fit as fitting
 
     engine = _engine(settings)
     ids = args.detector or fitting.all_detector_ids(engine)
@@ -252,7 +253,7 @@ def cmd_fit(args: argparse.Namespace, settings: Settings) -> int:
 def cmd_replay(args: argparse.Namespace, settings: Settings) -> int:
     from tqdm import tqdm
 
-    from .replay import ReplayError, replay, wait_for_scoring
+    from service.tools.replay import ReplayError, replay, wait_for_scoring
 
     try:
         with tqdm(unit="count", desc="replay", file=sys.stderr, disable=args.quiet) as bar:
@@ -274,13 +275,13 @@ def cmd_replay(args: argparse.Namespace, settings: Settings) -> int:
 
 
 def cmd_demo(args: argparse.Namespace, settings: Settings) -> int:
-    from .demo import main_demo
+    from service.tools.demo import main_demo
 
     return main_demo(args.feed, args.folder, workers=args.workers)
 
 
 def cmd_evaluate(args: argparse.Namespace, settings: Settings) -> int:
-    from . import evaluate
+    from service.tools import evaluate
 
     truth = evaluate.load_truth(args.truth)
     key = api_key(args)
@@ -294,7 +295,7 @@ def cmd_evaluate(args: argparse.Namespace, settings: Settings) -> int:
 
 
 def cmd_score(args: argparse.Namespace, settings: Settings) -> int:
-    from .alerting import score_pass
+    from service.pipeline.score import score_pass
 
     engine = _engine(settings)
     total = 0
@@ -312,7 +313,7 @@ def cmd_score(args: argparse.Namespace, settings: Settings) -> int:
 def cmd_plot(args: argparse.Namespace, settings: Settings) -> int:
     import httpx
 
-    from .plots import plot_day
+    from service.tools.plots import plot_day
 
     key = api_key(args)
     headers = {"Authorization": f"Bearer {key}"} if key else {}

@@ -1,4 +1,4 @@
-"""One exception hierarchy, mapped to HTTP in one place (``service.main``).
+"""One exception hierarchy, mapped to HTTP in one place (``service.web.app``).
 
 ::
 

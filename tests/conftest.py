@@ -21,14 +21,41 @@ from sqlalchemy import create_engine, text
 from sqlalchemy.engine import make_url
 from starlette.testclient import TestClient
 
-from service import migrate, security
 from service.config import Settings
-from service.db import make_engine
-from service.main import create_app
+from service.store import keys as security
+from service.store import migrations as migrate
+from service.store.engine import make_engine
+from service.web.app import create_app
 
 PG_URL = os.environ.get("TALLYWARD_TEST_DATABASE_URL")
 REPO = Path(__file__).resolve().parent.parent
 BACKENDS = ["sqlite"] + (["postgresql"] if PG_URL else [])
+
+
+DB_FIXTURES = {"database_url", "sqlite_url", "pg_database", "pg_admin_url", "sqlite_template",
+               "settings", "engine", "app", "client", "keys"}
+
+
+def _starts_servers(item: pytest.Item) -> bool:
+    """A test that starts a real server or process: it uses the live_server fixture or builds a
+    LiveServer / runs the CLI itself."""
+    if "live_server" in getattr(item, "fixturenames", ()):
+        return True
+    source = getattr(getattr(item, "function", None), "__code__", None)
+    names = set(source.co_names) if source is not None else set()
+    return bool(names & {"LiveServer", "run", "subprocess"})
+
+
+def pytest_collection_modifyitems(config: pytest.Config, items: list[pytest.Item]) -> None:
+    """Tiers by what a test needs: ``unit`` (no database, no process), ``db`` (a database),
+    ``http`` (a real server or CLI process); ``slow`` is set by hand on the long ones."""
+    for item in items:
+        if _starts_servers(item):
+            item.add_marker(pytest.mark.http)
+        elif DB_FIXTURES & set(getattr(item, "fixturenames", ())):
+            item.add_marker(pytest.mark.db)
+        else:
+            item.add_marker(pytest.mark.unit)
 
 
 @pytest.fixture(autouse=True)

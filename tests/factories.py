@@ -8,9 +8,9 @@ from typing import Any
 import numpy as np
 from sqlalchemy import Engine
 
-from service import registry
-from service.db import write_transaction
-from service.schemas import DetectorCreate
+from service.store import detectors as registry
+from service.store.engine import write_transaction
+from service.web.schemas import DetectorCreate
 
 # 2026-11-16 00:00 America/Chicago (CST, -06:00)
 MONDAY_LOCAL_MIDNIGHT = datetime(2026, 11, 16, 6, 0, tzinfo=UTC)
@@ -43,8 +43,9 @@ def count_items(detector_id: str = "D1", *, n: int = 12, interval_s: int = 300,
 
 def load_network(engine: Engine, network: Any, *, until_s: int | None = None) -> int:
     """Register a simulated network's detectors and store its counts (before ``until_s``)."""
-    from service import ingest, simulate
-    from service.registry import import_feature_collection
+    from service.pipeline import ingest
+    from service.store.detectors import import_feature_collection
+    from service.tools import simulate
 
     import_feature_collection(engine, simulate.detectors_geojson(network))
     ids = [d.detector_id for d in network.detectors]
@@ -59,7 +60,7 @@ def load_network(engine: Engine, network: Any, *, until_s: int | None = None) ->
 
 def small_network(detector_ids: tuple[str, ...], *, history_days: int = 21, test_days: int = 2,
                   inject: bool = False, seed: int = 7) -> Any:
-    from service import simulate
+    from service.tools import simulate
 
     specs = [d for d in simulate.default_detectors() if d.detector_id in detector_ids]
     return simulate.generate_network(seed=seed, detectors=specs, history_days=history_days,

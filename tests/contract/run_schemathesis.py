@@ -31,9 +31,11 @@ import httpx
 from sqlalchemy import create_engine, text
 from sqlalchemy.engine import make_url
 
-from service import fitting, migrate, security
 from service.config import Settings
-from service.db import make_engine
+from service.pipeline import fit as fitting
+from service.store import keys as security
+from service.store import migrations as migrate
+from service.store.engine import make_engine
 from tests.factories import load_network, small_network
 
 with warnings.catch_warnings():  # conftest's test-client import warns outside pytest's filters

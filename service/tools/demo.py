@@ -1,0 +1,194 @@
+"""The main job in one command, on the embedded SQLite default and the demo network.
+
+Creates ``demo_run/tallyward.db``, loads ``seed_feed/``'s detectors and history, fits every
+baseline as of the start of the test period, starts the service on a loopback port with the
+data clock, replays the test period through the HTTP API as field controllers would, waits
+for scoring, prints the alerts an operator would see and scores them against the truth.
+"""
+
+from __future__ import annotations
+
+import os
+import socket
+import subprocess
+import sys
+import time
+from pathlib import Path
+from typing import Any
+
+import httpx
+import orjson
+
+from service.cli import table
+from service.config import Settings
+from service.pipeline import fit as fitting
+from service.pipeline import ingest
+from service.store import keys as security
+from service.store import migrations as migrate
+from service.store.detectors import import_feature_collection
+from service.store.engine import make_engine
+from service.timefmt import parse_rfc3339
+from service.tools import evaluate
+from service.tools.replay import read_feed, replay, wait_for_scoring
+
+REPO = Path(__file__).resolve().parent.parent
+
+
+def _free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def _step(text: str) -> float:
+    print(f"\n== {text}", file=sys.stderr, flush=True)
+    return time.perf_counter()
+
+
+def load_history(engine: Any, counts_path: Path, *, until_s: int, settings: Settings) -> dict:
+    from tqdm import tqdm
+
+    total = ingest.BatchResult()
+    chunk: list[tuple[int, str, str, int]] = []
+    with tqdm(unit="count", desc="load history", file=sys.stderr) as bar:
+        for _line, det, start, start_s, count in read_feed(counts_path):
+            if start_s >= until_s:
+                break
+            chunk.append((len(chunk), det, start, count))
+            if len(chunk) >= 10_000:
+                total.merge(ingest.ingest_items(engine, chunk, future_tolerance_s=10**9))
+                bar.update(len(chunk))
+                chunk = []
+        if chunk:
+            total.merge(ingest.ingest_items(engine, chunk, future_tolerance_s=10**9))
+            bar.update(len(chunk))
+    return {"accepted": total.accepted, "duplicate": total.duplicate,
+            "rejected": len(total.rejected)}
+
+
+def run_demo(*, feed: Path, folder: Path, workers: int = 2, speed: str = "max") -> int:
+    from tqdm import tqdm
+
+    started = time.perf_counter()
+    truth = evaluate.load_truth(feed / "truth.json")
+    test_start = parse_rfc3339(truth["test"]["start"])
+    folder.mkdir(parents=True, exist_ok=True)
+    db_path = folder / "tallyward.db"
+    for suffix in ("", "-wal", "-shm"):
+        Path(f"{db_path}{suffix}").unlink(missing_ok=True)
+    url = f"sqlite:///{db_path}"
+    settings = Settings(database_url=url, clock="data")
+    t = _step(f"database {db_path} (SQLite, WAL) — migrating to head")
+    migrate.upgrade(url)
+    engine = make_engine(settings)
+    result = import_feature_collection(engine, orjson.loads((feed / "detectors.geojson").read_bytes()))
+    print(f"detectors: {result['created']} created, {len(result['errors'])} rejected", file=sys.stderr)
+
+    t = _step("bulk-loading the 6-week history")
+    loaded = load_history(engine, feed / "counts.csv.gz", until_s=test_start, settings=settings)
+    print(f"history: {loaded['accepted']:,} counts stored in {time.perf_counter() - t:.1f} s",
+          file=sys.stderr)
+
+    t = _step(f"fitting baselines as of {truth['test']['start']} ({workers} processes)")
+    with tqdm(total=result["created"], unit="det", desc="fit", file=sys.stderr) as bar:
+        fits = fitting.fit_many(settings, engine, as_of_s=test_start, workers=workers,
+                                progress=bar.update)
+    by_status: dict[str, int] = {}
+    for f in fits:
+        by_status[f["status"]] = by_status.get(f["status"], 0) + 1
+    print(f"fits: {by_status} in {time.perf_counter() - t:.1f} s", file=sys.stderr)
+
+    ingest_key = security.create_key(engine, name="demo-controllers", role="ingest")
+    read_key = security.create_key(engine, name="demo-dashboard", role="read")
+    engine.dispose()
+    port = _free_port()
+    base = f"http://127.0.0.1:{port}"
+    env = {**{k: v for k, v in os.environ.items() if not k.startswith("TALLYWARD_")},
+           "TALLYWARD_DATABASE_URL": url, "TALLYWARD_CLOCK": "data",
+           "TALLYWARD_LOG_LEVEL": "WARNING"}
+    t = _step(f"starting the service on {base} (data clock) and replaying the 2-week test period")
+    server = subprocess.Popen([sys.executable, "-m", "service.cli", "serve", "--port", str(port)],
+                              cwd=REPO, env=env, stdout=subprocess.DEVNULL,
+                              stderr=open(folder / "server.log", "wb"))  # noqa: SIM115
+    try:
+        for _ in range(300):
+            try:
+                if httpx.get(base + "/v1/health", timeout=1).status_code == 200:
+                    break
+            except httpx.HTTPError:
+                time.sleep(0.1)
+        with tqdm(unit="count", desc="replay", file=sys.stderr) as bar:
+            summary = replay(feed, url=base, key=ingest_key, speed=speed, from_s=test_start,
+                             batch=2000, progress=bar.update)
+        table([[f"{summary.rows:,}", summary.batches, f"{summary.accepted:,}",
+                f"{summary.duplicate:,}", summary.rejected, f"{summary.seconds:.1f}",
+                f"{summary.rows / max(summary.seconds, 1e-9):,.0f}"]],
+              ["rows", "batches", "accepted", "duplicate", "rejected", "seconds", "counts/s"])
+        t = _step("waiting for the scorer to finish")
+        backlog = wait_for_scoring(base, timeout_s=900)
+        print(f"scoring backlog {backlog} after {time.perf_counter() - t:.1f} s", file=sys.stderr)
+        alerts = evaluate.fetch_alerts(base, read_key)
+        intervals = evaluate.detector_intervals(base, read_key)
+        print_alerts(alerts, intervals)
+        report = evaluate.evaluate(truth, alerts, intervals=intervals)
+        print("\nDetection against the demo's injected truth (test period):")
+        evaluate.print_report(report)
+        (folder / "evaluation.json").write_bytes(orjson.dumps(report, option=orjson.OPT_INDENT_2))
+        picture = demo_plot(base, read_key, truth, alerts, folder)
+        if picture:
+            print(f"\nplot of one detector's day against its baseline: {picture}")
+    finally:
+        server.terminate()
+        try:
+            server.wait(15)
+        except subprocess.TimeoutExpired:
+            server.kill()
+    print(f"\ndemo finished in {time.perf_counter() - started:.0f} s; database left at {db_path}")
+    print("Alerts are advisory: verify in the field before acting (see README, Cautions).")
+    return 0
+
+
+def print_alerts(alerts: list[dict[str, Any]], intervals: dict[str, int]) -> None:
+    from datetime import datetime
+    from zoneinfo import ZoneInfo
+
+    zone = ZoneInfo("America/Chicago")
+    rows = []
+    for a in sorted(alerts, key=lambda a: a["start"]):
+        lo = datetime.fromisoformat(a["start"].replace("Z", "+00:00")).astimezone(zone)
+        hi = datetime.fromisoformat(a["end"].replace("Z", "+00:00")).astimezone(zone)
+        rows.append([a["id"], a["detector_id"] or f"[{a['group']}]", a["kind"], a["cause"],
+                     a["status"], lo.strftime("%a %m-%d %H:%M"),
+                     f"{(hi - lo).total_seconds() / 3600:.1f}", a["score"],
+                     (a["summary"][:70] + "…") if len(a["summary"]) > 71 else a["summary"]])
+    print(f"\nAlerts an operator would see ({len(alerts)}):")
+    table(rows, ["id", "detector", "kind", "cause", "status", "start (local)", "hours", "score",
+                 "summary"])
+
+
+def demo_plot(base: str, key: str, truth: dict[str, Any], alerts: list[dict[str, Any]],
+              folder: Path) -> Path | None:
+    from service.tools.plots import plot_day
+
+    target = next((i for i in truth["injections"] if i.get("period") == "test"
+                   and i["kind"] == "no_counts"), None)
+    if target is None:
+        return None
+    det = target["detector_ids"][0]
+    day = target["start"][:10]
+    headers = {"Authorization": f"Bearer {key}"}
+    with httpx.Client(base_url=base, headers=headers, timeout=30) as c:
+        doc = c.get(f"/v1/detectors/{det}/baseline", params={"date": day}).json()
+        lo, hi = doc["data"][0]["start"], doc["data"][-1]["start"]
+        counts = c.get("/v1/counts", params={"detector_id": det, "from": lo, "until": hi}).json()
+    mine = [a for a in alerts if a["detector_id"] == det]
+    return plot_day(doc, counts["data"], mine, title=f"{det} on {day} (demo: {target['id']})",
+                    out=folder / f"{det}_{day}.png")
+
+
+def main_demo(feed: str | None = None, folder: str | None = None, workers: int = 2) -> int:
+    feed_path = Path(feed) if feed else REPO / "seed_feed"
+    out = Path(folder) if folder else Path.cwd() / "demo_run"
+    if out.exists() and not (out / "tallyward.db").exists() and any(out.iterdir()):
+        raise SystemExit(f"{out} exists and is not a demo folder; pick another with --folder")
+    return run_demo(feed=feed_path, folder=out, workers=workers)

@@ -1,0 +1,162 @@
+"""Request and response models (pydantic). Counts are parsed by ``service.pipeline.ingest`` for speed."""
+
+from __future__ import annotations
+
+import re
+from functools import lru_cache
+from typing import Any, Literal
+from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
+
+from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
+
+from service.domain import CONTROL_CHARACTERS
+
+DETECTOR_ID_PATTERN = r"^[A-Za-z0-9][A-Za-z0-9._:\-]{0,63}$"
+DETECTOR_ID_RULE = "1-64 characters: letters, digits and . _ : - , starting with a letter or digit"
+_ID = re.compile(DETECTOR_ID_PATTERN)
+
+
+def control_character_error(text: str) -> str | None:
+    """A message naming the first control character of ``text``, or None when it has none."""
+    bad = CONTROL_CHARACTERS.search(text)
+    if bad is None:
+        return None
+    return (f"holds the control character U+{ord(bad.group()):04X} at position {bad.start() + 1}; "
+            "text fields take printable characters only (no NUL, tab or line break)")
+
+
+def detector_id_error(detector_id: str) -> str | None:
+    """What is wrong with a detector id (named ``detector_id`` in the message), or None."""
+    if _ID.fullmatch(detector_id):  # fullmatch: "$" alone would let a trailing newline through
+        return None
+    bad = CONTROL_CHARACTERS.search(detector_id)
+    if bad is not None:
+        return (f"detector_id holds the control character U+{ord(bad.group()):04X} at position "
+                f"{bad.start() + 1}; ids are {DETECTOR_ID_RULE}")
+    if len(detector_id) > 64:
+        return f"detector_id is {len(detector_id):,} characters long; ids are {DETECTOR_ID_RULE}"
+    shown = repr(detector_id[:64])
+    return f"detector_id {shown} is not a valid id; ids are {DETECTOR_ID_RULE}"
+
+
+class GeoPoint(BaseModel):
+    """A GeoJSON Point (RFC 7946): coordinates are [longitude, latitude] in WGS 84."""
+
+    model_config = ConfigDict(extra="forbid")
+    type: Literal["Point"]
+    coordinates: list[float] = Field(min_length=2, max_length=3)
+
+    @field_validator("coordinates", mode="before")
+    @classmethod
+    def _numbers_only(cls, value: Any) -> Any:
+        if isinstance(value, list) and any(isinstance(v, bool) or not isinstance(v, int | float)
+                                           for v in value):
+            raise ValueError("coordinates are numbers: [longitude, latitude]")
+        return value
+
+    @field_validator("coordinates")
+    @classmethod
+    def _in_range(cls, value: list[float]) -> list[float]:
+        lon, lat = value[0], value[1]
+        if not -180 <= lon <= 180 or not -90 <= lat <= 90:
+            raise ValueError("coordinates are [longitude -180..180, latitude -90..90]")
+        return value
+
+
+@lru_cache(maxsize=256)
+def _holiday_calendar_ok(code: str) -> str | None:
+    import holidays
+
+    country, _, subdiv = code.partition("-")
+    try:
+        holidays.country_holidays(country, subdiv=subdiv or None, years=2026)
+    except (NotImplementedError, KeyError, ValueError) as exc:
+        return str(exc) or "unknown calendar"
+    return None
+
+
+class DetectorCreate(BaseModel):
+    model_config = ConfigDict(extra="forbid", populate_by_name=True)
+
+    interval_s: int = Field(description="Reporting interval in seconds: 60..3600 and a divisor of 86400.")
+    lanes: int = Field(1, ge=1, le=16, description="Lanes the detector covers.")
+    timezone: str = Field(description="IANA time zone of the site, e.g. America/Chicago.")
+    group: str | None = Field(None, max_length=64, description="Site, approach or corridor segment.")
+    label: str | None = Field(None, max_length=200)
+    road_class: Literal["freeway", "arterial", "local"] = "arterial"
+    holiday_calendar: str | None = Field(
+        None, max_length=16, description="Country[-subdivision] code for the holidays library, e.g. US or US-CO."
+    )
+    location: GeoPoint | None = None
+    capacity_per_lane_h: float | None = Field(
+        None, gt=0, le=10_000, description="Override of the per-lane hourly capacity cap (veh/h/lane)."
+    )
+
+    @field_validator("timezone", "group", "label", "holiday_calendar", mode="before")
+    @classmethod
+    def _printable(cls, value: Any) -> Any:
+        if isinstance(value, str):
+            problem = control_character_error(value)
+            if problem:
+                raise ValueError(problem)
+        return value
+
+    @field_validator("interval_s")
+    @classmethod
+    def _interval(cls, value: int) -> int:
+        if not 60 <= value <= 3600 or 86400 % value:
+            raise ValueError("interval_s must be 60..3600 seconds and divide 86400 "
+                             "(e.g. 60, 300, 900, 3600)")
+        return value
+
+    @field_validator("timezone")
+    @classmethod
+    def _zone(cls, value: str) -> str:
+        try:
+            ZoneInfo(value)
+        except (ZoneInfoNotFoundError, ValueError):
+            raise ValueError(f"{value!r} is not an IANA time zone name such as America/Chicago") from None
+        return value
+
+    @field_validator("holiday_calendar")
+    @classmethod
+    def _calendar(cls, value: str | None) -> str | None:
+        if value is None or value == "":
+            return None
+        problem = _holiday_calendar_ok(value)
+        if problem:
+            raise ValueError(f"{value!r} is not a holiday calendar the holidays library knows "
+                             f"(use country[-subdivision], e.g. US or US-CO): {problem}")
+        return value
+
+
+class DetectorPublic(DetectorCreate):
+    detector_id: str
+    created: str
+    updated: str
+
+
+class DetectorsPublic(BaseModel):
+    data: list[DetectorPublic]
+    count: int
+
+
+class DetectorImportResult(BaseModel):
+    message: str
+    created: int
+    updated: int
+    errors: list[dict[str, Any]]
+
+
+class FeatureIn(BaseModel):
+    model_config = ConfigDict(extra="allow")
+    type: Literal["Feature"]
+    id: str | int | None = None
+    geometry: dict[str, Any] | None = None
+    properties: dict[str, Any]
+
+    @model_validator(mode="after")
+    def _has_id(self) -> FeatureIn:
+        if self.id is None and "detector_id" not in self.properties:
+            raise ValueError("a Feature needs an id or a detector_id property")
+        return self
