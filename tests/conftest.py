@@ -61,9 +61,9 @@ def pytest_collection_modifyitems(config: pytest.Config, items: list[pytest.Item
 @pytest.fixture(autouse=True)
 def _fresh_caches() -> None:
     """Every test database restarts its baseline ids, so no cached baseline may outlive a test."""
-    from service import alerting
+    from service.pipeline import score
 
-    alerting.clear_caches()
+    score.clear_caches()
 
 
 @pytest.fixture(autouse=True)
