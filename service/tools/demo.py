@@ -31,7 +31,7 @@ from service.timefmt import parse_rfc3339
 from service.tools import evaluate
 from service.tools.replay import read_feed, replay, wait_for_scoring
 
-REPO = Path(__file__).resolve().parent.parent
+REPO = Path(__file__).resolve().parents[2]
 
 
 def _free_port() -> int:
