@@ -706,3 +706,18 @@ def test_local_time_grid_handles_a_month_of_one_minute_starts_across_dst():
     start = datetime(2026, 10, 15)
     assert grid.local_day.min() == (start.date() - date(1970, 1, 1)).days
     assert grid.local_day.max() == (start.date() + timedelta(days=30) - date(1970, 1, 1)).days
+
+
+def test_expected_for_names_its_fields_and_still_unpacks():
+    """``expected_for`` gives mu, log_se and both alphas by name, broadcast, and unpacks in order."""
+    base = _flat_baseline([np.full(288, 2.0), np.full(288, 3.0), np.full(288, 4.0)], 300)
+    codes = np.array([[0], [1], [2]])
+    bins = np.array([0, 100, 287])
+    got = base.expected_for(codes, bins)
+    assert isinstance(got, bl.Expected)
+    mu, log_se, day_alpha, interval_alpha = got
+    assert mu is got.mu and log_se is got.log_se
+    assert day_alpha is got.day_alpha and interval_alpha is got.interval_alpha
+    np.testing.assert_array_equal(got.mu, np.array([[2.0] * 3, [3.0] * 3, [4.0] * 3]))
+    assert got.log_se.shape == got.day_alpha.shape == got.interval_alpha.shape == (3, 3)
+    np.testing.assert_array_equal(got.log_se, 0.01)

@@ -8,6 +8,7 @@ tolerance and how often it could fail by chance.
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import math
 
@@ -96,8 +97,7 @@ def score(counts, present, mu, thresholds, *, cap=10**6, warm_state=None, start_
 
 def budget_thresholds(mu_week, false_alerts_per_week=0.05, **kw):
     return calibrate(false_alerts_per_week, interval_s=INTERVAL_S, mu_week=mu_week,
-                                  interval_alpha=INTERVAL_ALPHA, day_alpha=DAY_ALPHA,
-                                  log_se=LOG_SE, **kw)
+                     interval_alpha=INTERVAL_ALPHA, day_alpha=DAY_ALPHA, log_se=LOG_SE, **kw)
 
 
 # --------------------------------------------------------------------------------------------
@@ -613,3 +613,13 @@ def test_inputs_are_validated():
         score_timeline(0, [1, 1, 1], [True, True], 1.0, 0.0, 0.0, 0.0, **ok)
     with pytest.raises(ValueError):
         score_timeline(0, [1], [True], 1.0, 0.0, 0.0, 0.0, interval_s=60, cap=100, thresholds=th)
+
+
+def test_thresholds_round_trip_through_json():
+    """Stored thresholds (``dataclasses.asdict`` as JSON) rebuild an equal frozen value."""
+    th = budget_thresholds(week_profile(40.0))
+    again = Thresholds(**json.loads(json.dumps(dataclasses.asdict(th))))
+    assert again == th
+    assert dict(again.expected_per_week) == dict(th.expected_per_week)
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        th.h_low = 1.0
