@@ -135,8 +135,8 @@ def _arls(h: float, laws: _StepLaws, states: int) -> np.ndarray:
     lo = np.clip(fl, -t, t).astype(int) + t
     hi = np.clip(fl + 1.0, -t, t).astype(int) + t
     rows = np.repeat(np.arange(k) * (2 * t + 1), ny)
-    g = np.bincount(rows + lo.ravel(), weights=(pmf * (1.0 - frac)).ravel(),
-                    minlength=k * (2 * t + 1))
+    g: np.ndarray = np.bincount(rows + lo.ravel(), weights=(pmf * (1.0 - frac)).ravel(),
+                                minlength=k * (2 * t + 1))
     g += np.bincount(rows + hi.ravel(), weights=(pmf * frac).ravel(), minlength=k * (2 * t + 1))
     g = g.reshape(k, 2 * t + 1)  # g[:, t + d]: probability of moving d grid steps
     below = np.cumsum(g, axis=1)
@@ -264,7 +264,8 @@ def cusum_limit(arl0: float, *, rho: float, mu: Any, alpha: Any = 0.0, states: i
 
 
 
-def held_cusum(z: np.ndarray, s0: int, limit: int, ceiling: int, release: int) -> np.ndarray:
+def held_cusum(z: np.ndarray, s0: int, limit: int, ceiling: int, release: int
+               ) -> tuple[np.ndarray, np.ndarray]:
     """Integer CUSUM that holds its alarm: S = max(0, S + z) below ``limit``; once S reaches
     ``limit`` it stays in alarm, with S = min(ceiling, S + z), until it falls below
     ``release``; then it restarts from 0.
