@@ -223,7 +223,7 @@ def bench_score(repeats: int) -> None:
 
     from service.pipeline import score as alerting
     from service.stats import baseline as bl
-    from service.stats import scoring
+    from service.stats import calendar, capacity, timeline
 
     print("== score: timeline scorer vs bare vectorised scipy.stats tails on the same arrays ==")
     days = 56
@@ -239,21 +239,21 @@ def bench_score(repeats: int) -> None:
     start = int(t[hist.sum()])
     n = 200_000
     grid = start + 300 * np.arange(n, dtype=np.int64)
-    tg = bl.local_time_grid(grid, interval_s=300, timezone="America/Chicago", holiday_calendar="US")
+    tg = calendar.local_time_grid(grid, interval_s=300, timezone="America/Chicago", holiday_calendar="US")
     mu, log_se, da, ia = base.expected_for(tg.day_type, tg.bin)
     rng = np.random.default_rng(3)
     y = rng.poisson(mu * rng.gamma(60, 1 / 60, n // 288 + 1).repeat(288)[:n])
     present = rng.random(n) > 0.005
-    cap = scoring.capacity_cap("arterial", lanes=1, interval_s=300)
+    cap = capacity.capacity_cap("arterial", lanes=1, interval_s=300)
     ours, bare = [], []
     for _ in range(repeats):
         t0 = time.perf_counter()
         state = None
         for lo in range(0, n, 288):  # one day a call, carrying the warm state: steady state
-            ev = scoring.score_timeline(int(grid[lo]), y[lo:lo + 288], present[lo:lo + 288],
-                                        mu[lo:lo + 288], log_se[lo:lo + 288], da[lo:lo + 288],
-                                        ia[lo:lo + 288], interval_s=300, cap=cap, thresholds=th,
-                                        warm_state=state)
+            ev = timeline.score_timeline(int(grid[lo]), y[lo:lo + 288], present[lo:lo + 288],
+                                         mu[lo:lo + 288], log_se[lo:lo + 288], da[lo:lo + 288],
+                                         ia[lo:lo + 288], interval_s=300, cap=cap, thresholds=th,
+                                         warm_state=state)
             state = ev.warm_state
         ours.append(n / (time.perf_counter() - t0))
         t0 = time.perf_counter()

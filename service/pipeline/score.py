@@ -1,6 +1,6 @@
 """Scoring at the database edge: evidence for new intervals, alert episodes, causes, seq.
 
-The statistics are in ``service.stats.scoring`` (pure numpy). This module decides *what* to score
+The statistics are in ``service.stats.timeline`` (pure numpy). This module decides *what* to score
 and keeps alerts a pure function of the stored counts and the baseline:
 
 - Ingest lowers ``detector_state.dirty_from_s`` in the transaction that stores counts.
@@ -48,7 +48,10 @@ from sqlalchemy.exc import DBAPIError
 
 from service.config import Settings
 from service.stats import baseline as bl
-from service.stats import scoring
+from service.stats.calendar import local_time_grid
+from service.stats.capacity import capacity_cap
+from service.stats.thresholds import Thresholds, calibrate
+from service.stats.timeline import WarmState, score_timeline
 from service.store import tables as models
 from service.store.engine import is_sqlite, read_transaction, write_transaction
 from service.timefmt import LocalOffsets
@@ -374,7 +377,7 @@ class Scored:
     end_s: int
     rows: list[dict[str, Any]] = field(default_factory=list)
     warm_state: Any = None
-    new_thresholds: scoring.Thresholds | None = None
+    new_thresholds: Thresholds | None = None
 
 
 def plan_segments(claim: Claim, info: DetectorInfo, *, latest_present_s: int | None,
@@ -494,17 +497,17 @@ def _score_one(conn: Connection, claim: Claim, info: DetectorInfo,
 
 
 def evaluate_piece(info: DetectorInfo, base: bl.Baseline, grid: np.ndarray, values: np.ndarray,
-                   present: np.ndarray, warm: Any, thresholds: scoring.Thresholds
+                   present: np.ndarray, warm: Any, thresholds: Thresholds
                    ) -> tuple[dict[str, np.ndarray], dict[str, np.ndarray], np.ndarray, Any]:
     """Flags and log p-values per kind for one stretch of consecutive intervals."""
     step = info.interval_s
-    tg = bl.local_time_grid(grid, interval_s=step, timezone=info.timezone,
+    tg = local_time_grid(grid, interval_s=step, timezone=info.timezone,
                             holiday_calendar=info.holiday_calendar)
     mu, log_se, day_alpha, interval_alpha = base.expected_for(tg.day_type, tg.bin)
-    cap = scoring.capacity_cap(info.road_class, lanes=info.lanes, interval_s=step,
+    cap = capacity_cap(info.road_class, lanes=info.lanes, interval_s=step,
                                per_lane_hourly=info.capacity_per_lane_h)
-    state = scoring.WarmState.from_dict(warm) if warm is not None else None
-    ev = scoring.score_timeline(int(grid[0]), values, present, mu, log_se, day_alpha,
+    state = WarmState.from_dict(warm) if warm is not None else None
+    ev = score_timeline(int(grid[0]), values, present, mu, log_se, day_alpha,
                                 interval_alpha, interval_s=step, cap=cap,
                                 thresholds=thresholds, warm_state=state, local_day=tg.local_day)
     flags = {k: np.asarray(ev.flag[k], bool) for k in KINDS}
@@ -512,7 +515,7 @@ def evaluate_piece(info: DetectorInfo, base: bl.Baseline, grid: np.ndarray, valu
     return flags, log_p, np.asarray(mu, float), ev.warm_state.to_dict()
 
 
-_THRESHOLDS: dict[tuple[int, float], scoring.Thresholds] = {}
+_THRESHOLDS: dict[tuple[int, float], Thresholds] = {}
 
 
 def clear_caches() -> None:
@@ -523,16 +526,16 @@ def clear_caches() -> None:
     _THRESHOLDS.clear()
 
 
-def thresholds_to_json(th: scoring.Thresholds) -> str:
+def thresholds_to_json(th: Thresholds) -> str:
     return orjson.dumps(dataclasses.asdict(th)).decode()
 
 
-def thresholds_from_json(text: str) -> scoring.Thresholds:
-    return scoring.Thresholds(**orjson.loads(text))
+def thresholds_from_json(text: str) -> Thresholds:
+    return Thresholds(**orjson.loads(text))
 
 
 def cached_thresholds(conn: Connection, baseline_id: int, budget: float
-                      ) -> scoring.Thresholds | None:
+                      ) -> Thresholds | None:
     """Thresholds computed before for this baseline and budget (memory, then database)."""
     hit = _THRESHOLDS.get((baseline_id, budget))
     if hit is not None:
@@ -547,14 +550,14 @@ def cached_thresholds(conn: Connection, baseline_id: int, budget: float
     return None
 
 
-def remember_thresholds(baseline_id: int, th: scoring.Thresholds) -> None:
+def remember_thresholds(baseline_id: int, th: Thresholds) -> None:
     if len(_THRESHOLDS) > 20_000:
         _THRESHOLDS.clear()
     _THRESHOLDS[(baseline_id, th.false_alerts_per_week)] = th
 
 
 def thresholds_for(base: bl.Baseline, info: DetectorInfo, settings: Settings
-                   ) -> scoring.Thresholds:
+                   ) -> Thresholds:
     """Every test's threshold for this detector and baseline, from the false-alert budget
     (Markov-chain CUSUM limits: about a second of CPU, so callers cache the result)."""
     week = []
@@ -569,7 +572,7 @@ def thresholds_for(base: bl.Baseline, info: DetectorInfo, settings: Settings
                     * base.bins_per_day)
     missing_rate = float(np.clip(1.0 - (base.intervals_used + base.intervals_trimmed)
                                  / scheduled, 0.002, 0.5))
-    thresholds = scoring.Thresholds.from_budget(
+    thresholds = calibrate(
         settings.false_alerts_per_week, interval_s=info.interval_s, mu_week=mu_week,
         interval_alpha=interval_alpha, day_alpha=day_alpha, log_se=log_se,
         missing_rate=missing_rate)

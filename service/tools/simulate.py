@@ -41,13 +41,13 @@ import json
 import math
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
-from datetime import UTC, date, datetime, timedelta
+from datetime import date, datetime, timedelta
 from pathlib import Path
 from zoneinfo import ZoneInfo
 
 import numpy as np
 
-from service.timefmt import parse_rfc3339
+from service.timefmt import parse_rfc3339, utc_offsets_s
 
 SCENARIO = "marrowick-autumn-2026"
 DEFAULT_SEED = 20261116
@@ -285,27 +285,6 @@ def day_type_of(day: date, *, holiday_calendar: str = HOLIDAY_CALENDAR) -> str:
     if day.weekday() == 6 or day in us_federal_holidays(day.year):
         return "sunday_holiday"
     return "saturday" if day.weekday() == 5 else "weekday"
-
-
-def utc_offsets_s(start_s: np.ndarray, timezone: str) -> np.ndarray:
-    """UTC offset (seconds, local minus UTC) in force at each instant ``start_s`` (epoch seconds).
-
-    Offsets are looked up once per quarter hour, which is exact for zones whose transitions fall
-    on quarter hours (all current tz database zones).
-    """
-    start_s = np.asarray(start_s, dtype=np.int64)
-    buckets, inverse = np.unique(start_s // 900, return_inverse=True)
-    tz = ZoneInfo(timezone)
-    offsets = np.array(
-        [
-            int(
-                datetime.fromtimestamp(int(b) * 900, UTC).astimezone(tz).utcoffset().total_seconds()
-            )
-            for b in buckets
-        ],
-        dtype=np.int64,
-    )
-    return offsets[inverse.reshape(-1)].reshape(start_s.shape)
 
 
 def local_midnight_s(day: date, timezone: str) -> int:

@@ -3,13 +3,13 @@
 from __future__ import annotations
 
 import re
-from functools import lru_cache
 from typing import Any, Literal
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
 from service.domain import CONTROL_CHARACTERS
+from service.stats.calendar import parse_holiday_calendar
 
 DETECTOR_ID_PATTERN = r"^[A-Za-z0-9][A-Za-z0-9._:\-]{0,63}$"
 DETECTOR_ID_RULE = "1-64 characters: letters, digits and . _ : - , starting with a letter or digit"
@@ -63,18 +63,6 @@ class GeoPoint(BaseModel):
         return value
 
 
-@lru_cache(maxsize=256)
-def _holiday_calendar_ok(code: str) -> str | None:
-    import holidays
-
-    country, _, subdiv = code.partition("-")
-    try:
-        holidays.country_holidays(country, subdiv=subdiv or None, years=2026)
-    except (NotImplementedError, KeyError, ValueError) as exc:
-        return str(exc) or "unknown calendar"
-    return None
-
-
 class DetectorCreate(BaseModel):
     model_config = ConfigDict(extra="forbid", populate_by_name=True)
 
@@ -123,10 +111,7 @@ class DetectorCreate(BaseModel):
     def _calendar(cls, value: str | None) -> str | None:
         if value is None or value == "":
             return None
-        problem = _holiday_calendar_ok(value)
-        if problem:
-            raise ValueError(f"{value!r} is not a holiday calendar the holidays library knows "
-                             f"(use country[-subdivision], e.g. US or US-CO): {problem}")
+        parse_holiday_calendar(value)  # ValueError saying what is accepted
         return value
 
 

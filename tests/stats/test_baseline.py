@@ -20,6 +20,7 @@ from scipy import optimize, stats
 from statsmodels.discrete.discrete_model import NegativeBinomial, Poisson
 
 from service.stats import baseline as bl
+from service.stats import calendar, dispersion, intervals, smoothing
 
 CHICAGO = "America/Chicago"
 
@@ -102,7 +103,7 @@ def test_local_time_grid_matches_zoneinfo_element_by_element(timezone):
     rng = np.random.default_rng(11)
     t = rng.integers(_epoch("2000-01-01T00:00", "UTC"), _epoch("2040-01-01T00:00", "UTC"), 4000)
     t = t - t % 60  # minute-aligned starts
-    grid = bl.local_time_grid(t, interval_s=900, timezone=timezone)
+    grid = calendar.local_time_grid(t, interval_s=900, timezone=timezone)
     zone = ZoneInfo(timezone)  # reference: Python's zoneinfo, one call per timestamp
     local = [datetime.fromtimestamp(int(s), zone) for s in t]
     want_bin = [(d.hour * 3600 + d.minute * 60 + d.second) // 900 for d in local]
@@ -117,7 +118,7 @@ def test_spring_forward_day_lacks_an_hour_of_bins():
     """2026-03-08 in Chicago (clocks 02:00 -> 03:00) has 23 hours: bins 02:00-02:55 never occur."""
     t = np.arange(_epoch("2026-03-08T00:00"), _epoch("2026-03-09T00:00"), 300)
     assert t.size == 23 * 12
-    grid = bl.local_time_grid(t, interval_s=300, timezone=CHICAGO)
+    grid = calendar.local_time_grid(t, interval_s=300, timezone=CHICAGO)
     counts = np.bincount(grid.bin, minlength=288)
     assert np.all(counts[24:36] == 0)
     assert np.all(np.delete(counts, np.arange(24, 36)) == 1)
@@ -128,7 +129,7 @@ def test_fall_back_day_maps_two_intervals_to_each_repeated_bin():
     """2026-11-01 in Chicago (clocks 02:00 -> 01:00) has 25 hours: bins 01:00-01:55 occur twice."""
     t = np.arange(_epoch("2026-11-01T00:00"), _epoch("2026-11-02T00:00"), 300)
     assert t.size == 25 * 12
-    grid = bl.local_time_grid(t, interval_s=300, timezone=CHICAGO)
+    grid = calendar.local_time_grid(t, interval_s=300, timezone=CHICAGO)
     counts = np.bincount(grid.bin, minlength=288)
     assert np.all(counts[12:24] == 2)
     assert np.all(np.delete(counts, np.arange(12, 24)) == 1)
@@ -139,15 +140,15 @@ def test_holidays_and_weekends_get_their_day_types():
     """Thanksgiving 2026-11-26 is sunday_holiday under "US", a weekday without; Sat is saturday."""
     days = ["2026-11-25", "2026-11-26", "2026-11-27", "2026-11-28", "2026-11-29"]
     t = np.array([_epoch(f"{d}T12:00") for d in days])
-    with_us = bl.local_time_grid(t, interval_s=300, timezone=CHICAGO, holiday_calendar="US")
-    without = bl.local_time_grid(t, interval_s=300, timezone=CHICAGO)
-    assert [bl.DAY_TYPES[c] for c in with_us.day_type] == [
+    with_us = calendar.local_time_grid(t, interval_s=300, timezone=CHICAGO, holiday_calendar="US")
+    without = calendar.local_time_grid(t, interval_s=300, timezone=CHICAGO)
+    assert [calendar.DAY_TYPES[c] for c in with_us.day_type] == [
         "weekday", "sunday_holiday", "weekday", "saturday", "sunday_holiday"]
-    assert [bl.DAY_TYPES[c] for c in without.day_type] == [
+    assert [calendar.DAY_TYPES[c] for c in without.day_type] == [
         "weekday", "weekday", "weekday", "saturday", "sunday_holiday"]
     # a state holiday from the subdivision calendar (holidays package: Colorado, Cabrini Day)
     cabrini = np.array([_epoch("2026-10-05T12:00", "America/Denver")])
-    co = bl.local_time_grid(cabrini, interval_s=300, timezone="America/Denver",
+    co = calendar.local_time_grid(cabrini, interval_s=300, timezone="America/Denver",
                             holiday_calendar="US-CO")
     assert co.day_type.tolist() == [2]
 
@@ -162,7 +163,7 @@ def test_bad_time_zone_calendar_or_interval_raise_value_error(kwargs, match):
     """Unknown zones and calendars, and intervals not dividing an hour, are ValueErrors."""
     args = {"interval_s": 300, **kwargs}
     with pytest.raises(ValueError, match=match):
-        bl.local_time_grid(np.array([0]), **args)
+        calendar.local_time_grid(np.array([0]), **args)
     with pytest.raises(ValueError, match=match):
         bl.fit_baseline(np.array([0]), np.array([1]), as_of_s=86_400, **args)
 
@@ -181,7 +182,7 @@ def test_poisson_irls_matches_statsmodels_glm_with_offset():
                          rng.normal(size=n)])
     exposure = rng.integers(1, 4, n).astype(float)
     y = rng.poisson(exposure * np.exp(X @ np.array([1.5, 0.8, -0.4, 0.2])))
-    coef, cov = bl.poisson_irls(X, y, exposure)
+    coef, cov = smoothing.poisson_irls(X, y, exposure)
     # reference: statsmodels GLM, Poisson family (log link), offset = log(exposure)
     ref = sm.GLM(y, X, family=sm.families.Poisson(), offset=np.log(exposure)).fit(tol=1e-13)
     np.testing.assert_allclose(coef, ref.params, rtol=1e-6)
@@ -197,8 +198,8 @@ def test_folded_band_storage_holds_the_dense_cyclic_hessian(n_bins):
     for i in range(n_bins):
         d[i, [(i - 1) % n_bins, i, (i + 1) % n_bins]] += [1.0, -2.0, 1.0]
     dense = np.diag(w) + 3.0 * d.T @ np.diag(v) @ d
-    pen = bl._cyclic_penalty(n_bins)
-    bands = bl._hessian_bands(w, v, 3.0, pen)
+    pen = smoothing._cyclic_penalty(n_bins)
+    bands = smoothing._hessian_bands(w, v, 3.0, pen)
     rebuilt = np.zeros((n_bins, n_bins))
     for k in range(5):
         j = np.arange(n_bins - k)
@@ -219,11 +220,11 @@ def test_profile_from_bin_totals_equals_interval_level_penalised_glm():
     totals = np.bincount(bin_idx, weights=y, minlength=n_bins)
     exposures = np.bincount(bin_idx, minlength=n_bins).astype(float)
     log_penalty = 2.0
-    log_rate, log_var, _ = bl.penalised_log_rate_fit(totals, exposures, smoothness_df=None,
+    log_rate, log_var, _ = smoothing.penalised_log_rate_fit(totals, exposures, smoothness_df=None,
                                                      log_penalty=log_penalty)
     # reference: dense IRLS on one row per interval, one-hot design, penalty exp(2) D'D
     design = np.eye(n_bins)[bin_idx]
-    coef, cov = bl.poisson_irls(design, y, np.ones(y.size),
+    coef, cov = smoothing.poisson_irls(design, y, np.ones(y.size),
                                 penalty=math.exp(log_penalty) * _cyclic_penalty_dense(n_bins))
     np.testing.assert_allclose(log_rate, coef, rtol=0, atol=1e-9)
     np.testing.assert_allclose(log_var, np.diag(cov), rtol=1e-8)
@@ -236,7 +237,7 @@ def test_student_t_profile_is_a_mode_of_its_penalised_likelihood():
     exposures = np.full(288, 30.0)
     totals = rng.poisson(truth * exposures).astype(float)
     log_penalty = 8.0
-    log_rate, _, _ = bl.penalised_log_rate_fit(totals, exposures, smoothness_df=4.0,
+    log_rate, _, _ = smoothing.penalised_log_rate_fit(totals, exposures, smoothness_df=4.0,
                                                log_penalty=log_penalty)
     lam, nu = math.exp(log_penalty), 4.0
 
@@ -260,11 +261,11 @@ def test_sharp_quarter_hour_peak_is_not_blurred_into_its_neighbours():
     exposures = np.full(288, 35.0)
     totals = truth * exposures  # the data's expectation: what remains is the method's own bias
     for interval_alpha in (0.0, 0.02):
-        fitted = np.exp(bl.penalised_log_rate_fit(totals, exposures,
+        fitted = np.exp(smoothing.penalised_log_rate_fit(totals, exposures,
                                                   interval_alpha=interval_alpha)[0])
         busy = truth >= 20
         assert np.abs(fitted[busy] / truth[busy] - 1).max() < 0.02  # dry run: 0.5 % and 1.2 %
-        quadratic = np.exp(bl.penalised_log_rate_fit(totals, exposures, smoothness_df=None,
+        quadratic = np.exp(smoothing.penalised_log_rate_fit(totals, exposures, smoothness_df=None,
                                                      interval_alpha=interval_alpha)[0])
         # the same LAML choice with a single quadratic penalty lifts the neighbours (bins 179 and
         # 183) by 6.5-11 % and cuts the peak's edges (dry run)
@@ -279,7 +280,7 @@ def test_quiet_bins_with_zero_totals_get_small_positive_rates():
     exposures = np.full(288, 35.0)
     totals = rng.poisson(truth * exposures).astype(float)
     assert np.sum(totals[:48] == 0) > 20
-    fitted = np.exp(bl.penalised_log_rate_fit(totals, exposures)[0])
+    fitted = np.exp(smoothing.penalised_log_rate_fit(totals, exposures)[0])
     assert np.all(fitted > 0) and np.all(np.isfinite(fitted))
     assert np.all(fitted[8:40] < 0.2)  # away from the steps at 04:00 and midnight
     # mean of the 3 peak bins: Poisson SE about 1/sqrt(3 * 35 * 90) = 1 %, so 5 % is 5 SE
@@ -296,7 +297,7 @@ def test_negative_binomial_ml_matches_statsmodels():
     rng = np.random.default_rng(13)
     mean = rng.uniform(300, 3000, 400)  # daily totals of differently complete days
     y = rng.poisson(mean * rng.gamma(1 / 0.03, 0.03, mean.size))
-    level, alpha = bl.negative_binomial_ml(y, mean, tol=1e-10)
+    level, alpha = dispersion.negative_binomial_ml(y, mean, tol=1e-10)
     # reference: statsmodels.discrete NegativeBinomial, loglike_method="nb2", offset = log(mean)
     model = NegativeBinomial(y, np.ones(y.size), offset=np.log(mean), loglike_method="nb2")
     rough = model.fit(method="bfgs", maxiter=1000, disp=0)  # its default Newton start diverges
@@ -315,7 +316,7 @@ def test_dean_score_statistic_matches_statsmodels():
     # reference: statsmodels count diagnostics, test_dispersion(), method "Dean B"
     ref = res.get_diagnostic().test_dispersion()
     dean_b = float(ref.statistic[list(ref.method).index("Dean B")])
-    ours = bl.dispersion_test(y, res.predict())
+    ours = dispersion.dispersion_test(y, res.predict())
     assert ours.statistic == pytest.approx(dean_b, rel=1e-10)
 
 
@@ -326,14 +327,14 @@ def test_bortkiewicz_horse_kicks_are_poisson():
     assert deaths.var(ddof=1) == pytest.approx(0.611, abs=1e-3)  # DOMAIN.md: variance ~ 0.611
     mean = np.full(deaths.size, deaths.mean())
     leverage = np.full(deaths.size, 1 / deaths.size)  # the mean was estimated from the counts
-    score = bl.dispersion_test(deaths, mean, leverage=leverage)
-    pearson = bl.dispersion_test(deaths, mean, leverage=leverage, method="pearson")
+    score = dispersion.dispersion_test(deaths, mean, leverage=leverage)
+    pearson = dispersion.dispersion_test(deaths, mean, leverage=leverage, method="pearson")
     assert score.p_value > 0.3 and pearson.p_value > 0.3
     # Pearson X^2 = sum (y - 0.61)^2 / 0.61 = 121.58 / 0.61 = 199.3 on 199 df (hand computation)
     assert pearson.statistic == pytest.approx(121.58 / 0.61, rel=1e-9)
-    assert bl.negative_binomial_ml(deaths, mean)[1] == 0.0  # variance below the mean: boundary
+    assert dispersion.negative_binomial_ml(deaths, mean)[1] == 0.0  # variance below the mean: boundary
     # X^2 = 199.3 on 199 df: the Pearson moment estimate of alpha is only just above 0
-    assert bl.pearson_alpha(deaths, mean, dof=deaths.size - 1) < 0.005
+    assert dispersion.pearson_alpha(deaths, mean, dof=deaths.size - 1) < 0.005
 
 
 def _weekday_only_history(rng, *, days, interval_s, day_alpha, interval_alpha):
@@ -360,7 +361,7 @@ def test_dispersion_estimators_recover_known_day_and_interval_alpha():
     assert weekday.distribution == "negative_binomial"
     # 780 weekdays: SE of the day-level ML about 0.02 * sqrt(2/780) = 5 %; 25 % is 5 SE
     assert weekday.day_alpha == pytest.approx(0.02, rel=0.25)
-    for name in bl.DAY_TYPES:  # 15 000+ intervals per type: SE about 2 %; 10 % is 5 SE
+    for name in calendar.DAY_TYPES:  # 15 000+ intervals per type: SE about 2 %; 10 % is 5 SE
         assert fit.baseline.profiles[name].interval_alpha == pytest.approx(0.05, rel=0.10), name
 
 
@@ -372,7 +373,7 @@ def test_genuinely_poisson_counts_are_called_poisson():
     fit = bl.fit_baseline(sim["t"], sim["counts"], interval_s=300, timezone=CHICAGO,
                           holiday_calendar="US", as_of_s=_epoch("2026-11-30T00:00"))
     # each profile's combined test has size 0.001: chance of a false "negative_binomial" ~0.3 %
-    for name in bl.DAY_TYPES:
+    for name in calendar.DAY_TYPES:
         prof = fit.baseline.profiles[name]
         assert prof.distribution == "poisson", (name, prof.smoothing)
         assert prof.day_alpha == 0.0 and prof.interval_alpha == 0.0
@@ -386,7 +387,7 @@ def test_genuinely_poisson_counts_are_called_poisson():
 
 def test_garwood_interval_matches_chi_square_formula_and_published_values():
     """Exact Poisson CI: x=10 -> (4.795, 18.390), x=0 -> (0, 3.689) (DOMAIN.md, Garwood 1936)."""
-    low, high = bl.garwood_interval(np.array([0, 10]))
+    low, high = intervals.garwood_interval(np.array([0, 10]))
     assert low[0] == 0.0 and high[0] == pytest.approx(3.689, abs=5e-4)
     assert low[1] == pytest.approx(4.795, abs=5e-4) and high[1] == pytest.approx(18.390, abs=5e-4)
     # reference: the defining tail equations, solved with mpmath (regularised incomplete gamma)
@@ -395,7 +396,7 @@ def test_garwood_interval_matches_chi_square_formula_and_published_values():
                                  x)
         hi_ref = mpmath.findroot(
             lambda m, x=x: mpmath.gammainc(x + 1, m, mpmath.inf, regularized=True) - 0.025, x + 3)
-        lo, hi = bl.garwood_interval(np.array([x]))
+        lo, hi = intervals.garwood_interval(np.array([x]))
         assert lo[0] == pytest.approx(float(lo_ref), rel=1e-9)
         assert hi[0] == pytest.approx(float(hi_ref), rel=1e-9)
 
@@ -414,7 +415,7 @@ def test_predictive_interval_is_the_mid_p_interval_of_the_gamma_mixed_count():
     cases = [(0.5, 0.0, 0.0, 0.0), (10.0, 0.0, 0.0, 0.0), (100.0, 0.0, 0.0, 0.0),
              (40.0, 0.05, 0.01, 0.02), (250.0, 0.02, 0.004, 0.01), (3.0, 0.1, 0.0, 0.3)]
     for mu, se, a_day, a_int in cases:
-        low, high = bl.predictive_interval(np.array([mu]), se, a_day, a_int)
+        low, high = intervals.predictive_interval(np.array([mu]), se, a_day, a_int)
         alpha = math.exp(se**2) * (1 + a_day) * (1 + a_int) - 1
         if alpha == 0:
             pmf = stats.poisson.pmf(ks, mu)  # reference pmfs: scipy.stats
@@ -422,7 +423,7 @@ def test_predictive_interval_is_the_mid_p_interval_of_the_gamma_mixed_count():
             pmf = stats.nbinom.pmf(ks, 1 / alpha, 1 / (1 + alpha * mu))
         assert (int(low[0]), int(high[0])) == _mid_p_bounds_brute_force(pmf, 0.025), mu
     # Poisson mean 10: P(Y<5) = 0.029, P(Y>16) = 0.027 -> [5, 16] (hand computation)
-    assert [int(v[0]) for v in bl.predictive_interval(np.array([10.0]), 0, 0, 0)] == [5, 16]
+    assert [int(v[0]) for v in intervals.predictive_interval(np.array([10.0]), 0, 0, 0)] == [5, 16]
 
 
 # ---------------------------------------------------------------------------------------------
@@ -465,7 +466,7 @@ def test_end_to_end_expected_volumes_are_within_5_percent_of_truth(busy_detector
     d = busy_detector
     assert d["fit"].status == "fitted"
     base = d["fit"].baseline
-    for code, name in enumerate(bl.DAY_TYPES):
+    for code, name in enumerate(calendar.DAY_TYPES):
         prof = base.profiles[name]
         assert prof.fitted_from == name
         clean = d["train"] & ~d["faulty"] & (d["types"] == code)
@@ -491,7 +492,7 @@ def test_end_to_end_predictive_intervals_cover_95_percent_of_held_out_counts(bus
     held_out = d["observed"] & (d["t"] >= d["as_of"])
     mu, log_se, day_alpha, interval_alpha = base.expected_for(d["types"][held_out],
                                                               d["bins"][held_out])
-    low, high = bl.predictive_interval(mu, log_se, day_alpha, interval_alpha, level=0.95)
+    low, high = intervals.predictive_interval(mu, log_se, day_alpha, interval_alpha, level=0.95)
     y = d["counts"][held_out]
     coverage = np.mean((y >= low) & (y <= high))
     # 60 dry-run seeds: 0.940-0.959, mean 0.950, sd 0.004: 93-97 % is 5 sd either side
@@ -510,7 +511,7 @@ def test_end_to_end_robust_fit_is_not_dragged_by_faulty_days(busy_detector):
     clean = bl.fit_baseline(d["t"][train], d["counts"][train], interval_s=300, timezone=CHICAGO,
                             holiday_calendar="US", as_of_s=d["as_of"], window_days=168,
                             exclude=d["faulty"][train]).baseline
-    for code, name in enumerate(bl.DAY_TYPES):
+    for code, name in enumerate(calendar.DAY_TYPES):
         busy = d["rhythm"][code] >= 20
         ratio = base.profiles[name].expected[busy] / clean.profiles[name].expected[busy]
         assert np.abs(ratio - 1).max() < 0.01, name  # dry runs: at most 0.2 %
@@ -655,7 +656,7 @@ def _flat_baseline(expected_by_type: list[np.ndarray], interval_s: int) -> bl.Ba
                                 log_se=np.full(e.size, 0.01), day_alpha=0.0, interval_alpha=0.0,
                                 distribution="poisson", dispersion_p_value=0.5, days_used=8,
                                 smoothing={})
-        for name, e in zip(bl.DAY_TYPES, expected_by_type, strict=True)
+        for name, e in zip(calendar.DAY_TYPES, expected_by_type, strict=True)
     }
     return bl.Baseline(interval_s=interval_s, bins_per_day=86_400 // interval_s, profiles=profiles,
                        window_start_s=0, window_end_s=86_400, intervals_used=0,
@@ -698,10 +699,25 @@ def test_expected_for_looks_up_codes_and_bins_vectorised():
 def test_local_time_grid_handles_a_month_of_one_minute_starts_across_dst():
     """A month of 1-minute starts across the fall-back change: one count per local minute."""
     t = np.arange(_epoch("2026-10-15T00:00"), _epoch("2026-11-15T00:00"), 60)
-    grid = bl.local_time_grid(t, interval_s=60, timezone=CHICAGO, holiday_calendar="US")
+    grid = calendar.local_time_grid(t, interval_s=60, timezone=CHICAGO, holiday_calendar="US")
     per_day = np.bincount(grid.local_day - grid.local_day.min())
     assert per_day.tolist().count(1500) == 1  # 2026-11-01 has 25 hours
     assert set(per_day.tolist()) == {1440, 1500}
     start = datetime(2026, 10, 15)
     assert grid.local_day.min() == (start.date() - date(1970, 1, 1)).days
     assert grid.local_day.max() == (start.date() + timedelta(days=30) - date(1970, 1, 1)).days
+
+
+def test_expected_for_names_its_fields_and_still_unpacks():
+    """``expected_for`` gives mu, log_se and both alphas by name, broadcast, and unpacks in order."""
+    base = _flat_baseline([np.full(288, 2.0), np.full(288, 3.0), np.full(288, 4.0)], 300)
+    codes = np.array([[0], [1], [2]])
+    bins = np.array([0, 100, 287])
+    got = base.expected_for(codes, bins)
+    assert isinstance(got, bl.Expected)
+    mu, log_se, day_alpha, interval_alpha = got
+    assert mu is got.mu and log_se is got.log_se
+    assert day_alpha is got.day_alpha and interval_alpha is got.interval_alpha
+    np.testing.assert_array_equal(got.mu, np.array([[2.0] * 3, [3.0] * 3, [4.0] * 3]))
+    assert got.log_se.shape == got.day_alpha.shape == got.interval_alpha.shape == (3, 3)
+    np.testing.assert_array_equal(got.log_se, 0.01)

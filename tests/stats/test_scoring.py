@@ -1,5 +1,6 @@
-"""Specifications of service.stats.scoring: exact tails, CUSUM run lengths, capacity caps, the
-false-alert budget, and the timeline scorer on simulated detectors.
+"""Specifications of service.stats tails, cusum, capacity, thresholds and timeline: exact tails,
+CUSUM run lengths, capacity caps, the false-alert budget, and the timeline scorer on simulated
+detectors.
 
 Random data come from seeded ``np.random.default_rng``; each statistical assertion states its
 tolerance and how often it could fail by chance.
@@ -7,6 +8,7 @@ tolerance and how often it could fail by chance.
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import math
 
@@ -15,22 +17,11 @@ import numpy as np
 import pytest
 from scipy import signal, stats
 
-from service.stats.scoring import (
-    KINDS,
-    Thresholds,
-    WarmState,
-    capacity_cap,
-    cusum_alarm_rate,
-    cusum_arl,
-    cusum_increment,
-    cusum_limit,
-    log_p_lower,
-    log_p_upper,
-    log_p_zero_run,
-    log_pmf,
-    score_timeline,
-    surprise,
-)
+from service.stats.capacity import capacity_cap
+from service.stats.cusum import cusum_alarm_rate, cusum_arl, cusum_increment, cusum_limit
+from service.stats.tails import log_p_lower, log_p_upper, log_p_zero_run, log_pmf, surprise
+from service.stats.thresholds import Thresholds, calibrate
+from service.stats.timeline import KINDS, WarmState, score_timeline
 
 INTERVAL_S = 300
 PER_DAY = 86400 // INTERVAL_S
@@ -105,9 +96,8 @@ def score(counts, present, mu, thresholds, *, cap=10**6, warm_state=None, start_
 
 
 def budget_thresholds(mu_week, false_alerts_per_week=0.05, **kw):
-    return Thresholds.from_budget(false_alerts_per_week, interval_s=INTERVAL_S, mu_week=mu_week,
-                                  interval_alpha=INTERVAL_ALPHA, day_alpha=DAY_ALPHA,
-                                  log_se=LOG_SE, **kw)
+    return calibrate(false_alerts_per_week, interval_s=INTERVAL_S, mu_week=mu_week,
+                     interval_alpha=INTERVAL_ALPHA, day_alpha=DAY_ALPHA, log_se=LOG_SE, **kw)
 
 
 # --------------------------------------------------------------------------------------------
@@ -433,7 +423,7 @@ def test_capacity_cap_scales_with_lanes_interval_margin_and_override():
 def test_thresholds_split_the_budget_bonferroni_style():
     """Without a profile each family's share F/5 over the week's intervals sets its alpha, the
     CUSUM limit is log ARL0 (Lorden's conservative bound) and no_data needs a run of q^L."""
-    th = Thresholds.from_budget(0.05, interval_s=INTERVAL_S, missing_rate=0.01)
+    th = calibrate(0.05, interval_s=INTERVAL_S, missing_rate=0.01)
     assert th.log_alpha_zero_run == pytest.approx(math.log(0.05 * 0.2 / PER_WEEK))
     assert th.log_alpha_low == pytest.approx(math.log(0.05 * 0.1 / PER_WEEK))
     assert th.h_low == pytest.approx(math.log(PER_WEEK / (0.05 * 0.1)))
@@ -613,7 +603,7 @@ def test_gap_flags_no_data_once_improbable_and_lone_missing_interval_is_nothing(
 
 def test_inputs_are_validated():
     """Negative counts, non-positive expectations and mismatched lengths are refused."""
-    th = Thresholds.from_budget(0.05, interval_s=INTERVAL_S)
+    th = calibrate(0.05, interval_s=INTERVAL_S)
     ok = dict(interval_s=INTERVAL_S, cap=100, thresholds=th)
     with pytest.raises(ValueError):
         score_timeline(0, [1, -1], [True, True], 1.0, 0.0, 0.0, 0.0, **ok)
@@ -623,3 +613,13 @@ def test_inputs_are_validated():
         score_timeline(0, [1, 1, 1], [True, True], 1.0, 0.0, 0.0, 0.0, **ok)
     with pytest.raises(ValueError):
         score_timeline(0, [1], [True], 1.0, 0.0, 0.0, 0.0, interval_s=60, cap=100, thresholds=th)
+
+
+def test_thresholds_round_trip_through_json():
+    """Stored thresholds (``dataclasses.asdict`` as JSON) rebuild an equal frozen value."""
+    th = budget_thresholds(week_profile(40.0))
+    again = Thresholds(**json.loads(json.dumps(dataclasses.asdict(th))))
+    assert again == th
+    assert dict(again.expected_per_week) == dict(th.expected_per_week)
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        th.h_low = 1.0

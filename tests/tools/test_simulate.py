@@ -21,6 +21,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
+from service.timefmt import utc_offsets_s
 from service.tools import simulate
 from service.tools.simulate import (
     DetectorSpec,
@@ -30,7 +31,6 @@ from service.tools.simulate import (
     read_counts_arrays,
     read_counts_csv,
     us_federal_holidays,
-    utc_offsets_s,
     write_feed,
 )
 

@@ -18,6 +18,7 @@ from service.errors import NotFound, ValidationFailed
 from service.pipeline import fit as fitting
 from service.pipeline.score import load_baseline
 from service.stats import baseline as bl
+from service.stats import calendar, intervals
 from service.store import tables as models
 from service.store.engine import read_transaction
 from service.timefmt import format_utc, parse_rfc3339
@@ -124,19 +125,19 @@ def get_baseline(
         nxt = day + timedelta(days=1)
         hi = int(datetime(nxt.year, nxt.month, nxt.day, tzinfo=zone).timestamp())
         starts = np.arange(lo, hi, step, dtype=np.int64)
-        grid = bl.local_time_grid(starts, interval_s=step, timezone=det.timezone,
+        grid = calendar.local_time_grid(starts, interval_s=step, timezone=det.timezone,
                                   holiday_calendar=det.holiday_calendar)
         codes, bins = grid.day_type, grid.bin
         labels = [datetime.fromtimestamp(int(t), zone).isoformat() for t in starts]
-        name = bl.DAY_TYPES[int(codes[0])]
+        name = calendar.DAY_TYPES[int(codes[0])]
     else:
         assert day_type is not None
         bins = np.arange(base.bins_per_day)
-        codes = np.full(bins.size, bl.DAY_TYPES.index(day_type))
+        codes = np.full(bins.size, calendar.DAY_TYPES.index(day_type))
         labels = [f"{int(b) * step // 3600:02d}:{int(b) * step % 3600 // 60:02d}" for b in bins]
         name = day_type
     mu, log_se, day_alpha, interval_alpha = base.expected_for(codes, bins)
-    low, high = bl.predictive_interval(mu, log_se, day_alpha, interval_alpha, level=level)
+    low, high = intervals.predictive_interval(mu, log_se, day_alpha, interval_alpha, level=level)
     data = [{"start": lab, "expected": round(float(m), 3), "low": int(lo_), "high": int(hi_)}
             for lab, m, lo_, hi_ in zip(labels, mu, low, high, strict=True)]
     return {"detector_id": detector_id, "date": date_, "day_type": name, "level": level,
