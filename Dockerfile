@@ -3,8 +3,9 @@ WORKDIR /app
 COPY pyproject.toml README.md alembic.ini ./
 COPY service ./service
 COPY migrations ./migrations
-COPY seed_feed ./seed_feed
-# The service runs as an unprivileged user that owns only the data volume.
+# The product only: the demo tools' extra (httpx, matplotlib) is not installed, and the
+# migrations ship inside the package (service/migrations). The service runs as an
+# unprivileged user that owns only the data volume.
 RUN pip install --no-cache-dir . \
     && groupadd --system --gid 10001 tallyward \
     && useradd --system --uid 10001 --gid 10001 --home-dir /app --no-create-home \

@@ -4,16 +4,25 @@ PYTHON ?= python3
 VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
+DEMO_STAMP := $(VENV)/.installed-demo
 
-.PHONY: demo test test-fast contract bench lint clean
+.PHONY: demo test test-fast contract bench lint typecheck clean
 
-$(STAMP): pyproject.toml
+$(BIN)/python:
 	$(PYTHON) -m venv $(VENV)
 	$(BIN)/pip install --quiet --upgrade pip
+
+# The developer's environment: the product, the demo tools and the test/lint tools.
+$(STAMP): pyproject.toml | $(BIN)/python
 	$(BIN)/pip install --quiet -e ".[test]"
 	touch $(STAMP)
 
-demo: $(STAMP)
+# The product with the optional demo extra only (simulator, replay, evaluation, plots).
+$(DEMO_STAMP): pyproject.toml | $(BIN)/python
+	$(BIN)/pip install --quiet -e ".[demo]"
+	touch $(DEMO_STAMP)
+
+demo: $(DEMO_STAMP)
 	$(BIN)/tallyward demo
 
 test: $(STAMP)
@@ -30,8 +39,14 @@ contract: $(STAMP)
 bench: $(STAMP)
 	$(BIN)/python bench/bench.py
 
+# ruff, then the import contracts of pyproject.toml ([tool.importlinter]: the layers' direction).
 lint: $(STAMP)
 	$(BIN)/ruff check service tests bench
+	$(BIN)/lint-imports
+
+# mypy on service/stats and service/store ([tool.mypy]); not yet part of `lint`.
+typecheck: $(STAMP)
+	$(BIN)/mypy
 
 clean:
 	rm -rf $(VENV) demo_run tallyward.db tallyward.db-wal tallyward.db-shm

@@ -33,7 +33,7 @@ from service.store import keys as security  # noqa: E402
 from service.store import migrations as migrate  # noqa: E402
 from service.store.engine import make_engine  # noqa: E402
 from service.timefmt import parse_rfc3339  # noqa: E402
-from tests.factories import make_detector  # noqa: E402
+from service.tools.networks import make_detector  # noqa: E402
 
 BATCH = 1000
 
@@ -272,7 +272,7 @@ def demo_database(folder: Path, *, until_s: int):  # type: ignore[no-untyped-def
     """A SQLite file with the demo network's detectors and history, fitted as of ``until_s``."""
     from service.pipeline import fit as fitting
     from service.store.detectors import import_feature_collection
-    from service.tools.demo import load_history
+    from service.tools import networks
 
     feed = REPO / "seed_feed"
     url = f"sqlite:///{folder / 'demo.db'}"
@@ -280,7 +280,7 @@ def demo_database(folder: Path, *, until_s: int):  # type: ignore[no-untyped-def
     settings = Settings(database_url=url, clock="data")
     engine = make_engine(settings)
     import_feature_collection(engine, orjson.loads((feed / "detectors.geojson").read_bytes()))
-    load_history(engine, feed / "counts.csv.gz", until_s=until_s, settings=settings)
+    networks.store_history(engine, networks.feed_history(feed / "counts.csv.gz", until_s=until_s))
     fitting.fit_many(settings, engine, as_of_s=until_s, workers=2)
     return url, settings, engine
 

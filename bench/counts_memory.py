@@ -30,7 +30,7 @@ from service.config import Settings  # noqa: E402
 from service.store import keys as security  # noqa: E402
 from service.store import migrations as migrate  # noqa: E402
 from service.store.engine import make_engine  # noqa: E402
-from tests.factories import make_detector  # noqa: E402
+from service.tools.networks import make_detector  # noqa: E402
 
 DETECTORS = 5
 FIRST_START_S = 1_700_000_100  # a multiple of 300 s

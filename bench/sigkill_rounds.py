@@ -45,7 +45,7 @@ from service.store import keys as security  # noqa: E402
 from service.store import migrations as migrate  # noqa: E402
 from service.store import tables as models  # noqa: E402
 from service.store.engine import make_engine  # noqa: E402
-from tests.factories import make_detector  # noqa: E402
+from service.tools.networks import make_detector  # noqa: E402
 
 DETECTORS = 4
 INTERVALS = 25  # per detector per batch: 100 items a batch

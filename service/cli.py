@@ -1,4 +1,7 @@
-"""``tallyward`` command line: serve, migrate, imports, keys (and later fit, replay, evaluate).
+"""``tallyward`` command line: serve, migrate, import-detectors, import-counts, keys, fit, score.
+
+The demo tools (replay, demo, evaluate, plot) add their commands through the entry-point
+group ``tallyward.commands`` when installed with the ``demo`` extra.
 
 Configured by the same ``TALLYWARD_*`` environment variables as the service.
 """
@@ -6,39 +9,20 @@ Configured by the same ``TALLYWARD_*`` environment variables as the service.
 from __future__ import annotations
 
 import argparse
-import gzip
-import io
 import os
 import sys
 import time
-from collections.abc import Iterator, Sequence
+from collections.abc import Callable, Sequence
+from importlib.metadata import entry_points
 from pathlib import Path
-from typing import Any, TextIO
+from typing import Any
 
 import orjson
 from sqlalchemy.exc import OperationalError
 
 from service.config import Settings, get_settings
 from service.errors import TallywardError
-
-
-def table(rows: Sequence[Sequence[Any]], headers: Sequence[str], *, out: TextIO | None = None) -> None:
-    """Print a plain aligned table."""
-    out = out or sys.stdout
-    cells = [[str(h) for h in headers]] + [["" if v is None else str(v) for v in r] for r in rows]
-    widths = [max(len(r[i]) for r in cells) for i in range(len(headers))]
-
-    def line(r: Sequence[str]) -> str:
-        return "  ".join(v.rjust(w) if _numeric(v) else v.ljust(w) for v, w in zip(r, widths, strict=True)).rstrip()
-
-    print(line(cells[0]), file=out)
-    print("  ".join("-" * w for w in widths), file=out)
-    for r in cells[1:]:
-        print(line(r), file=out)
-
-
-def _numeric(v: str) -> bool:
-    return v.replace(".", "", 1).replace("-", "", 1).replace(",", "").replace("%", "").isdigit()
+from service.textio import csv_chunks, file_pos, open_text, table
 
 
 def _engine(settings: Settings):  # type: ignore[no-untyped-def]
@@ -114,35 +98,6 @@ def cmd_import_detectors(args: argparse.Namespace, settings: Settings) -> int:
     return 0 if not result["errors"] else 1
 
 
-def open_text(path: str) -> TextIO:
-    """A text stream of a CSV file, gzip-compressed or not (decided by its first bytes)."""
-    raw = open(path, "rb")  # noqa: SIM115 - returned to the caller
-    magic = raw.read(2)
-    raw.seek(0)
-    if magic == b"\x1f\x8b":
-        return io.TextIOWrapper(gzip.GzipFile(fileobj=raw), encoding="utf-8-sig", newline="")
-    return io.TextIOWrapper(raw, encoding="utf-8-sig", newline="")
-
-
-def csv_chunks(stream: TextIO, *, chunk: int) -> Iterator[tuple[int, bytes]]:
-    """(first data line number, CSV bytes with header) chunks of a counts CSV."""
-    header = stream.readline()
-    if not header:
-        raise TallywardError("the file is empty; expected the header detector_id,start,count")
-    lines: list[str] = []
-    line_no = 2
-    first = line_no
-    for line in stream:
-        lines.append(line)
-        line_no += 1
-        if len(lines) >= chunk:
-            yield first, (header + "".join(lines)).encode()
-            lines = []
-            first = line_no
-    if lines:
-        yield first, (header + "".join(lines)).encode()
-
-
 def cmd_import_counts(args: argparse.Namespace, settings: Settings) -> int:
     from tqdm import tqdm
 
@@ -153,7 +108,6 @@ def cmd_import_counts(args: argparse.Namespace, settings: Settings) -> int:
     total = ingest.BatchResult()
     started = time.perf_counter()
     stream = open_text(args.file)
-    raw = stream.buffer.raw if hasattr(stream.buffer, "raw") else None  # type: ignore[attr-defined]
     bar = tqdm(total=size, unit="B", unit_scale=True, desc="import counts", file=sys.stderr,
                disable=args.quiet)
     seen_items = 0
@@ -167,7 +121,7 @@ def cmd_import_counts(args: argparse.Namespace, settings: Settings) -> int:
             r["line"] = first_line - 2 + r["line"] if "line" in r else first_line + r["index"]
         total.merge(result, index_offset=seen_items)
         seen_items += len(items)
-        pos = _file_pos(raw, stream)
+        pos = file_pos(stream)
         bar.update(pos - last_pos)
         last_pos = pos
     bar.close()
@@ -181,16 +135,6 @@ def cmd_import_counts(args: argparse.Namespace, settings: Settings) -> int:
     if len(total.rejected) > 20:
         print(f"  ... and {len(total.rejected) - 20:,} more rejected rows", file=sys.stderr)
     return 0 if not total.rejected else 1
-
-
-def _file_pos(raw: Any, stream: Any) -> int:
-    fileobj = getattr(stream.buffer, "fileobj", None)
-    try:
-        if fileobj is not None:
-            return fileobj.tell()
-        return stream.buffer.tell()
-    except (OSError, ValueError):
-        return 0
 
 
 def cmd_keys(args: argparse.Namespace, settings: Settings) -> int:
@@ -250,50 +194,6 @@ def cmd_fit(args: argparse.Namespace, settings: Settings) -> int:
     return 0 if not by_status.get("failed") else 1
 
 
-def cmd_replay(args: argparse.Namespace, settings: Settings) -> int:
-    from tqdm import tqdm
-
-    from service.tools.replay import ReplayError, replay, wait_for_scoring
-
-    try:
-        with tqdm(unit="count", desc="replay", file=sys.stderr, disable=args.quiet) as bar:
-            summary = replay(args.feed, url=args.url, key=api_key(args), speed=args.speed,
-                             from_s=_time_arg(args.from_), until_s=_time_arg(args.until),
-                             batch=args.batch, progress=bar.update)
-    except ReplayError as exc:
-        print(f"replay stopped: {exc}", file=sys.stderr)
-        return 1
-    table([[f"{summary.rows:,}", summary.batches, f"{summary.accepted:,}",
-            f"{summary.duplicate:,}", summary.conflict, summary.rejected, summary.retries,
-            f"{summary.seconds:.1f}"]],
-          ["rows", "batches", "accepted", "duplicate", "conflict", "rejected", "retries", "seconds"])
-    if args.wait_scored:
-        backlog = wait_for_scoring(args.url)
-        if backlog:
-            print(f"scoring backlog still {backlog} after waiting", file=sys.stderr)
-    return 0 if not summary.rejected else 1
-
-
-def cmd_demo(args: argparse.Namespace, settings: Settings) -> int:
-    from service.tools.demo import main_demo
-
-    return main_demo(args.feed, args.folder, workers=args.workers)
-
-
-def cmd_evaluate(args: argparse.Namespace, settings: Settings) -> int:
-    from service.tools import evaluate
-
-    truth = evaluate.load_truth(args.truth)
-    key = api_key(args)
-    alerts = evaluate.fetch_alerts(args.url, key)
-    report = evaluate.evaluate(truth, alerts, intervals=evaluate.detector_intervals(args.url, key))
-    if args.json:
-        print(orjson.dumps(report, option=orjson.OPT_INDENT_2).decode())
-    else:
-        evaluate.print_report(report)
-    return 0
-
-
 def cmd_score(args: argparse.Namespace, settings: Settings) -> int:
     from service.pipeline.score import score_pass
 
@@ -310,66 +210,7 @@ def cmd_score(args: argparse.Namespace, settings: Settings) -> int:
     return 0
 
 
-def cmd_plot(args: argparse.Namespace, settings: Settings) -> int:
-    import httpx
-
-    from service.tools.plots import plot_day
-
-    key = api_key(args)
-    headers = {"Authorization": f"Bearer {key}"} if key else {}
-    with httpx.Client(base_url=args.url, headers=headers, timeout=30) as c:
-        r = c.get(f"/v1/detectors/{args.detector}/baseline", params={"date": args.date})
-        if r.status_code != 200:
-            raise TallywardError(f"baseline: {r.status_code} {r.text[:300]}")
-        doc = r.json()
-        lo, hi = doc["data"][0]["start"], doc["data"][-1]["start"]
-        counts = c.get("/v1/counts", params={"detector_id": args.detector, "from": lo,
-                                             "until": hi}).json()["data"]
-        alerts = c.get("/v1/alerts", params={"detector_id": args.detector, "limit": 1000}).json()
-    out = plot_day(doc, counts, [a for a in alerts["data"] if not a["withdrawn"]],
-                   title=f"{args.detector} on {args.date}", out=args.out)
-    print(out)
-    return 0
-
-
 # ----------------------------------------------------------------------------- parser
-
-
-KEY_ENV = "TALLYWARD_API_KEY"
-OLD_KEY_ENV = "TALLYWARD_KEY"  # the earlier name, still read
-
-
-def _server_args(parser: argparse.ArgumentParser, *, role: str) -> None:
-    """--url and the API key of a command that talks to a running Tallyward."""
-    parser.add_argument("--url", default="http://127.0.0.1:8000", help="the service's base URL")
-    given = parser.add_mutually_exclusive_group()
-    given.add_argument("--key-file", help=f"file holding the API key (role {role}); "
-                                          f"default: ${KEY_ENV}")
-    given.add_argument("--key", help="the API key itself; other users of this machine can read "
-                                     f"it in the process list, so prefer --key-file or ${KEY_ENV}")
-
-
-def api_key(args: argparse.Namespace) -> str | None:
-    """The key from --key-file, --key, $TALLYWARD_API_KEY or $TALLYWARD_KEY, in that order."""
-    if getattr(args, "key_file", None):
-        path = Path(args.key_file)
-        try:
-            text = path.read_text(encoding="utf-8")
-            mode = path.stat().st_mode
-        except (OSError, UnicodeDecodeError) as exc:
-            raise TallywardError(f"--key-file {path}: cannot read it ({exc})") from None
-        lines = [line.strip() for line in text.splitlines() if line.strip()]
-        if len(lines) != 1 or any(ch.isspace() for ch in lines[0]):
-            raise TallywardError(f"--key-file {path}: expected one line holding the key")
-        if mode & 0o077:
-            print(f"warning: --key-file {path} is readable by other users; chmod 600 it",
-                  file=sys.stderr)
-        return lines[0]
-    if getattr(args, "key", None):
-        print(f"warning: --key is visible to other users in the process list; prefer --key-file "
-              f"or ${KEY_ENV}", file=sys.stderr)
-        return args.key
-    return os.environ.get(KEY_ENV) or os.environ.get(OLD_KEY_ENV) or None
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -415,43 +256,30 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--quiet", action="store_true")
     s.set_defaults(func=cmd_fit)
 
-    s = sub.add_parser("replay", help="post a recorded feed through the HTTP API in time order")
-    s.add_argument("feed", help="feed folder (with counts.csv.gz) or a counts CSV file")
-    _server_args(s, role="ingest")
-    s.add_argument("--speed", default="max", help="max, or a factor such as 60x")
-    s.add_argument("--from", dest="from_", help="RFC 3339: first interval to send")
-    s.add_argument("--until", help="RFC 3339: send intervals before this")
-    s.add_argument("--batch", type=int, default=5000, help="items per batch at max speed")
-    s.add_argument("--wait-scored", action="store_true",
-                   help="afterwards, wait until the service has scored everything")
-    s.add_argument("--quiet", action="store_true")
-    s.set_defaults(func=cmd_replay)
-
-    s = sub.add_parser("demo", help="the main job on the demo network (embedded SQLite)")
-    s.add_argument("--feed", help="feed folder; default seed_feed/")
-    s.add_argument("--folder", help="working folder; default ./demo_run")
-    s.add_argument("--workers", type=int, default=2)
-    s.set_defaults(func=cmd_demo)
-
-    s = sub.add_parser("evaluate", help="score a service's alerts against a feed's truth file")
-    s.add_argument("--truth", required=True)
-    _server_args(s, role="read")
-    s.add_argument("--json", action="store_true", help="print the report as JSON")
-    s.set_defaults(func=cmd_evaluate)
-
     s = sub.add_parser("score", help="score pending counts (a worker beside the service)")
     s.add_argument("--loop", action="store_true", help="keep running")
     s.add_argument("--idle", type=float, default=1.0)
     s.set_defaults(func=cmd_score)
 
-    s = sub.add_parser("plot", help="PNG of a detector's day against its baseline band")
-    s.add_argument("detector")
-    s.add_argument("--date", required=True, help="local date YYYY-MM-DD")
-    s.add_argument("--out", required=True, help="PNG path")
-    _server_args(s, role="read")
-    s.set_defaults(func=cmd_plot)
-
+    for register in command_plugins():
+        register(sub)
     return p
+
+
+COMMANDS_GROUP = "tallyward.commands"
+
+
+def command_plugins() -> list[Callable[[Any], None]]:
+    """The ``register(subparsers)`` functions of the installed ``tallyward.commands`` entry
+    points (the demo tools' commands come this way; the product never imports them)."""
+    found = []
+    for ep in sorted(entry_points(group=COMMANDS_GROUP), key=lambda ep: ep.name):
+        try:
+            found.append(ep.load())
+        except ImportError as exc:
+            print(f"warning: commands {ep.name!r} ({ep.value}) not loaded: {exc}",
+                  file=sys.stderr)
+    return found
 
 
 def main(argv: Sequence[str] | None = None) -> int:

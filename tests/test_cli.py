@@ -11,9 +11,10 @@ import sys
 import pytest
 from sqlalchemy import func, select
 
-from service.cli import api_key, build_parser
+from service.cli import build_parser
 from service.errors import TallywardError
 from service.store import tables as models
+from service.tools.commands import api_key
 from tests.conftest import REPO, LiveServer
 from tests.factories import count_items, make_detector
 

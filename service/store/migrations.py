@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import functools
+import importlib.util
 import os
 from pathlib import Path
 
@@ -11,24 +13,38 @@ from alembic.runtime.migration import MigrationContext
 from alembic.script import ScriptDirectory
 from sqlalchemy import Engine
 
+PACKAGE = "service.migrations"  # migrations/ as installed (pyproject.toml: package-dir)
 
-def _migrations_dir() -> Path:
-    """The Alembic folder: beside the package in a checkout, or in the working folder
-    (a container copies it there), or where TALLYWARD_MIGRATIONS_DIR says."""
+
+@functools.cache
+def migrations_dir() -> Path:
+    """The Alembic folder, looked up on first use: where ``TALLYWARD_MIGRATIONS_DIR`` says,
+    else beside the package in a checkout, else inside the installed package
+    (``service/migrations``), else ``./migrations`` (a container's working folder)."""
     for candidate in (os.environ.get("TALLYWARD_MIGRATIONS_DIR"),
                       Path(__file__).resolve().parents[2] / "migrations",
+                      _installed_dir(),
                       Path.cwd() / "migrations"):
-        if candidate and (Path(candidate) / "env.py").exists():
+        if candidate and (Path(candidate) / "env.py").is_file():
             return Path(candidate)
-    raise FileNotFoundError("the migrations folder was not found; set TALLYWARD_MIGRATIONS_DIR")
+    raise FileNotFoundError("the migrations folder was not found (neither in the installed "
+                            "package nor beside it); set TALLYWARD_MIGRATIONS_DIR to the folder "
+                            "holding env.py")
 
 
-MIGRATIONS = _migrations_dir()
+def _installed_dir() -> Path | None:
+    try:
+        spec = importlib.util.find_spec(PACKAGE)
+    except ImportError:
+        return None
+    if spec is None or not spec.submodule_search_locations:
+        return None
+    return Path(next(iter(spec.submodule_search_locations)))
 
 
 def alembic_config(database_url: str) -> Config:
     cfg = Config()
-    cfg.set_main_option("script_location", str(MIGRATIONS))
+    cfg.set_main_option("script_location", str(migrations_dir()))
     cfg.set_main_option("sqlalchemy.url", database_url.replace("%", "%%"))
     return cfg
 

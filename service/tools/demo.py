@@ -19,19 +19,18 @@ from typing import Any
 import httpx
 import orjson
 
-from service.cli import table
 from service.config import Settings
 from service.pipeline import fit as fitting
-from service.pipeline import ingest
 from service.store import keys as security
 from service.store import migrations as migrate
 from service.store.detectors import import_feature_collection
 from service.store.engine import make_engine
+from service.textio import table
 from service.timefmt import parse_rfc3339
-from service.tools import evaluate
-from service.tools.replay import read_feed, replay, wait_for_scoring
+from service.tools import evaluate, networks
+from service.tools.replay import replay, wait_for_scoring
 
-REPO = Path(__file__).resolve().parents[2]
+REPO = Path(__file__).resolve().parents[2]  # the checkout: service/tools/demo.py -> ../../..
 
 
 def _free_port() -> int:
@@ -45,23 +44,13 @@ def _step(text: str) -> float:
     return time.perf_counter()
 
 
-def load_history(engine: Any, counts_path: Path, *, until_s: int, settings: Settings) -> dict:
+def load_history(engine: Any, counts_path: Path, *, until_s: int) -> dict:
+    """Store a feed's counts before ``until_s``, with a progress bar."""
     from tqdm import tqdm
 
-    total = ingest.BatchResult()
-    chunk: list[tuple[int, str, str, int]] = []
     with tqdm(unit="count", desc="load history", file=sys.stderr) as bar:
-        for _line, det, start, start_s, count in read_feed(counts_path):
-            if start_s >= until_s:
-                break
-            chunk.append((len(chunk), det, start, count))
-            if len(chunk) >= 10_000:
-                total.merge(ingest.ingest_items(engine, chunk, future_tolerance_s=10**9))
-                bar.update(len(chunk))
-                chunk = []
-        if chunk:
-            total.merge(ingest.ingest_items(engine, chunk, future_tolerance_s=10**9))
-            bar.update(len(chunk))
+        total = networks.store_history(engine, networks.feed_history(counts_path, until_s=until_s),
+                                       progress=bar.update)
     return {"accepted": total.accepted, "duplicate": total.duplicate,
             "rejected": len(total.rejected)}
 
@@ -85,7 +74,7 @@ def run_demo(*, feed: Path, folder: Path, workers: int = 2, speed: str = "max") 
     print(f"detectors: {result['created']} created, {len(result['errors'])} rejected", file=sys.stderr)
 
     t = _step("bulk-loading the 6-week history")
-    loaded = load_history(engine, feed / "counts.csv.gz", until_s=test_start, settings=settings)
+    loaded = load_history(engine, feed / "counts.csv.gz", until_s=test_start)
     print(f"history: {loaded['accepted']:,} counts stored in {time.perf_counter() - t:.1f} s",
           file=sys.stderr)
 
@@ -187,7 +176,11 @@ def demo_plot(base: str, key: str, truth: dict[str, Any], alerts: list[dict[str,
 
 
 def main_demo(feed: str | None = None, folder: str | None = None, workers: int = 2) -> int:
-    feed_path = Path(feed) if feed else REPO / "seed_feed"
+    if feed:
+        feed_path = Path(feed)
+    else:  # the working folder's seed_feed/ first (an installed package has no checkout)
+        feed_path = next((p for p in (Path.cwd() / "seed_feed", REPO / "seed_feed")
+                          if (p / "truth.json").exists()), REPO / "seed_feed")
     out = Path(folder) if folder else Path.cwd() / "demo_run"
     if out.exists() and not (out / "tallyward.db").exists() and any(out.iterdir()):
         raise SystemExit(f"{out} exists and is not a demo folder; pick another with --folder")

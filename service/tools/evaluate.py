@@ -163,7 +163,7 @@ def load_truth(path: str | Path) -> dict[str, Any]:
 
 
 def print_report(report: dict[str, Any], *, out=None) -> None:  # type: ignore[no-untyped-def]
-    from service.cli import table
+    from service.textio import table
 
     rows = [[i["id"], i["kind"], ",".join(i["detectors"])[:34], _short(i["start"]),
              "yes" if i["detected"] else "MISSED", i["alert_kind"] or "", i["delay_min"],

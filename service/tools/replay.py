@@ -9,7 +9,6 @@ service's idempotent ingest makes a resend safe); a 401/403 stops at once.
 
 from __future__ import annotations
 
-import csv
 import sys
 import time
 import zlib
@@ -73,35 +72,45 @@ def controllers(detectors_file: Path | None) -> dict[str, str]:
     return out
 
 
+FEED_CHUNK_LINES = 10_000  # lines parsed at a time
+
+
 def read_feed(path: Path) -> Iterator[tuple[int, str, str, int, int]]:
     """(line, detector_id, start text, start_s, count) rows; a bad or truncated file raises
-    ``ReplayError`` naming the line."""
-    from service.cli import open_text
+    ``ReplayError`` naming the line.
+
+    The file is read by the product's count-CSV reader (``textio.csv_chunks`` and
+    ``ingest.parse_csv_batch``), so a feed replays exactly what ``import-counts`` would load.
+    """
+    from service.errors import TallywardError
+    from service.pipeline.ingest import parse_csv_batch
+    from service.textio import csv_chunks, open_text
 
     stream: TextIO = open_text(str(path))
     line = 1
+    starts: dict[str, int] = {}
     try:
-        reader = csv.reader(stream)
-        header = [h.strip().lower() for h in next(reader)]
-        try:
-            di, si, ci = (header.index(c) for c in ("detector_id", "start", "count"))
-        except ValueError:
-            raise ReplayError(f"{path} line 1: header must name detector_id,start,count, "
-                              f"got {','.join(header)!r}") from None
-        starts: dict[str, int] = {}
-        for row in reader:
-            line += 1
-            if not row:
-                continue
+        for first, body in csv_chunks(stream, chunk=FEED_CHUNK_LINES):
             try:
-                det, start, count = row[di].strip(), row[si].strip(), int(row[ci])
-                start_s = starts.get(start)
-                if start_s is None:
-                    start_s = starts[start] = parse_rfc3339(start)
-            except (IndexError, ValueError) as exc:
-                raise ReplayError(f"{path} line {line}: malformed row {','.join(row)!r} ({exc})"
-                                  ) from None
-            yield line, det, start, start_s, count
+                batch = parse_csv_batch(body, max_items=FEED_CHUNK_LINES + 1)
+            except TallywardError as exc:
+                if not body.split(b"\n", 1)[1].strip():  # only blank lines in this chunk
+                    continue
+                raise ReplayError(f"{path} line 1: {exc.message}") from None
+            for (_index, det, start, count), chunk_line in zip(batch, batch.lines, strict=True):
+                line = first - 2 + chunk_line
+                try:
+                    if not isinstance(count, int):  # a malformed line or a non-digit count
+                        count = int(getattr(count, "text", None) or "")
+                    start_s = starts.get(start)
+                    if start_s is None:
+                        start_s = starts[start] = parse_rfc3339(start)
+                except (TypeError, ValueError) as exc:
+                    problem = getattr(batch[_index][3], "problem", None) or str(exc)
+                    raise ReplayError(f"{path} line {line}: malformed row ({problem})") from None
+                yield line, det, start, start_s, count
+    except TallywardError as exc:
+        raise ReplayError(f"{path}: {exc.message}") from None
     except (EOFError, zlib.error, OSError) as exc:
         raise ReplayError(f"{path} is truncated or corrupt after line {line} ({exc}); rows up to "
                           "there were sent") from None

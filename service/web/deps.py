@@ -20,7 +20,7 @@ FORWARDING_HEADERS = ("forwarded", "x-forwarded-for", "x-real-ip")
 PRINCIPAL_SCOPE_KEY = "tallyward.principal"
 
 
-def get_settings(request: Request) -> Settings:
+def settings_of(request: Request) -> Settings:
     return request.app.state.settings
 
 
@@ -28,7 +28,7 @@ def get_engine(request: Request) -> Engine:
     return request.app.state.engine
 
 
-SettingsDep = Annotated[Settings, Depends(get_settings)]
+SettingsDep = Annotated[Settings, Depends(settings_of)]
 EngineDep = Annotated[Engine, Depends(get_engine)]
 
 

@@ -79,6 +79,7 @@ def dead_at_peak(net, det="bra3-nb-t1"):  # type: ignore[no-untyped-def]
     return edit, lo, hi
 
 
+@pytest.mark.slow
 def test_dead_detector_at_peak_raises_one_detector_alert(database_url, engine, network) -> None:
     """A lane stuck at zero through the morning peak: one no_counts alert, cause detector,
     raised within 30 minutes, closed once counts return."""
@@ -95,6 +96,7 @@ def test_dead_detector_at_peak_raises_one_detector_alert(database_url, engine, n
     assert hi - 30 * 60 <= end < hi
 
 
+@pytest.mark.slow
 def test_alerts_do_not_depend_on_arrival_order(database_url, engine, network, tmp_path) -> None:
     """The same counts fed in time order in one go, or shuffled in small batches with
     duplicates and scoring between batches, give the same alerts."""
@@ -208,6 +210,7 @@ def test_group_offline_raises_one_communications_alert(database_url, engine, net
     assert lo <= start <= lo + 30 * 60 and status == "closed"
 
 
+@pytest.mark.slow
 def test_lone_missing_interval_raises_nothing(database_url, engine, network) -> None:
     """One interval missing in steady reporting is ragged data, not an alert."""
     settings = scoring_settings(database_url)
@@ -218,6 +221,7 @@ def test_lone_missing_interval_raises_nothing(database_url, engine, network) -> 
     assert not [a for a in visible_alerts(engine) if a[1] == "no_data"]
 
 
+@pytest.mark.slow
 def test_incident_on_whole_group_is_traffic(database_url, engine, network) -> None:
     """Every detector of the approach drops to a fifth for 45 minutes at midday: low-volume
     or no-counts alerts whose cause is traffic."""

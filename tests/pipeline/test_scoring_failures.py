@@ -190,6 +190,7 @@ def test_database_refusing_one_detectors_writes_rolls_back_only_that_detector(
     assert visible_alerts(engine) == expected
 
 
+@pytest.mark.slow
 def test_live_server_keeps_scoring_past_a_broken_detector(database_url, fitted, network,
                                                           keys) -> None:
     """Through real HTTP and the server's own scorer thread: counts posted for a group with one
@@ -269,6 +270,7 @@ def test_health_reports_a_stalled_backlog_when_no_scorer_runs(database_url, fitt
     assert body["status"] == "ok" and body["scoring"]["longest_wait_s"] is None
 
 
+@pytest.mark.slow
 def test_a_count_stored_as_text_fails_only_its_detector(sqlite_url, network) -> None:
     """SQLite keeps any value in any column: a count written as text by hand breaks the batch
     read that a pass shares, so the pass is redone detector by detector, the damaged detector

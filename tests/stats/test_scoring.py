@@ -441,6 +441,7 @@ def test_thresholds_spend_the_whole_budget_with_a_profile():
     assert th.h_low < math.log(PER_WEEK / (0.05 * 0.1))
 
 
+@pytest.mark.slow
 def test_false_alert_rate_within_factor_two_of_budget_in_simulation():
     """Normal traffic with gamma day factors, AR(1) hour factors, interval excess, baseline
     error and 1 % ragged data: false alert episodes per detector-week are within a factor of 2
@@ -472,6 +473,7 @@ def normal_detector(seed, peak, weeks):
     return counts[0], present[0], np.tile(mu_week, weeks), mu_week
 
 
+@pytest.mark.slow
 def test_chunked_scoring_is_identical_to_one_call():
     """Scoring in chunks, passing a JSON round trip of warm_state, gives bit-identical output."""
     y, present, mu, mu_week = normal_detector(3, 40.0, 3)
@@ -514,6 +516,7 @@ def tmg_zero_hours_rule(counts):
     return None
 
 
+@pytest.mark.slow
 def test_dead_detector_on_busy_road_flagged_in_minutes_where_tmg_rule_needs_seven_hours():
     """A busy arterial's detector dies at 07:00 on a Wednesday: the scorer raises no_counts
     within 30 min; the TMG 7-zero-hours rule (per DOMAIN.md) fires 7 h later at the earliest."""
@@ -530,6 +533,7 @@ def test_dead_detector_on_busy_road_flagged_in_minutes_where_tmg_rule_needs_seve
     assert fired is not None and (fired - dead + 1) * INTERVAL_S >= 7 * 3600
 
 
+@pytest.mark.slow
 def test_quiet_rural_nights_with_normal_zeros_raise_nothing_unlike_any_zero_hour_rule():
     """A quiet rural detector (a few vehicles an hour at night) has many zero hours a naive
     'any zero hour' rule would flag; the scorer raises no no_counts episode in two weeks. The
@@ -544,6 +548,7 @@ def test_quiet_rural_nights_with_normal_zeros_raise_nothing_unlike_any_zero_hour
     assert 2 * th.expected_per_week["no_counts"] < 0.01  # chance of a false failure < 1 %
 
 
+@pytest.mark.slow
 def test_chattering_detector_flags_high_volume_and_over_capacity():
     """Counts tripled by crosstalk on a 2-lane arterial: high_volume over most of the fault,
     and over_capacity where the tripled count passes the HCM-based cap (475 per 5 min)."""
@@ -559,6 +564,7 @@ def test_chattering_detector_flags_high_volume_and_over_capacity():
     assert not ev.flag["over_capacity"][: start].any()
 
 
+@pytest.mark.slow
 def test_frozen_value_flags_repeated_value():
     """A controller repeating 37 every 5 min from 10:00 is flagged repeated_value within the
     fault's first six intervals; a normal fortnight before has no such flag."""
@@ -572,6 +578,7 @@ def test_frozen_value_flags_repeated_value():
     assert not ev.flag["repeated_value"][:start].any()
 
 
+@pytest.mark.slow
 def test_one_lane_dead_flags_low_volume_and_level_does_not_absorb_it():
     """A station summing two lanes loses one at 07:00 (counts halve): low_volume covers most of
     the 10-hour fault, and because flagged intervals are left out the level estimate stays near
@@ -585,6 +592,7 @@ def test_one_lane_dead_flags_low_volume_and_level_does_not_absorb_it():
     assert ev.level[fault].min() > 0.75
 
 
+@pytest.mark.slow
 def test_gap_flags_no_data_once_improbable_and_lone_missing_interval_is_nothing():
     """A 6-interval gap raises no_data from its L-th interval (q^L below the budget share);
     lone missing intervals every hour raise nothing at all."""

@@ -141,3 +141,30 @@ def test_replay_gives_up_with_resume_hint(engine, keys, tmp_path) -> None:
         replay(feed, url="http://127.0.0.1:9", key=keys["ingest"], max_wait_s=1.0,
                out=io.StringIO())
     assert time.monotonic() - started < 30
+
+
+def test_read_feed_reads_what_import_counts_reads(tmp_path) -> None:
+    """The feed reader is the product's CSV reader: BOM, CRLF, blank lines and column order
+    are accepted, and line numbers count the header as line 1."""
+    from service.tools.replay import read_feed
+
+    path = tmp_path / "counts.csv"
+    path.write_bytes(b"\xef\xbb\xbfcount,start,detector_id\r\n"
+                     b"7,2026-11-16T06:00:00Z,A1\r\n\r\n"
+                     b"9,2026-11-16T06:05:00Z,A1\r\n")
+    rows = list(read_feed(path))
+    assert rows == [(2, "A1", "2026-11-16T06:00:00Z", parse_rfc3339("2026-11-16T06:00:00Z"), 7),
+                    (4, "A1", "2026-11-16T06:05:00Z", parse_rfc3339("2026-11-16T06:05:00Z"), 9)]
+
+
+def test_read_feed_names_the_line_of_a_short_row_and_of_a_bad_header(tmp_path) -> None:
+    """A row with too few fields, or a header without the three columns, stops with its line."""
+    from service.tools.replay import read_feed
+
+    path = tmp_path / "counts.csv"
+    path.write_text("detector_id,start,count\nA1,2026-11-16T06:00:00Z,7\nA1,oops\n")
+    with pytest.raises(ReplayError, match=r"line 3: malformed row \(has 2 field"):
+        list(read_feed(path))
+    path.write_text("detector,start,count\nA1,2026-11-16T06:00:00Z,7\n")
+    with pytest.raises(ReplayError, match="line 1: .*detector_id"):
+        list(read_feed(path))

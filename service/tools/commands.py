@@ -1,0 +1,189 @@
+"""The demo tools' commands, plugged into ``tallyward`` through the entry-point group
+``tallyward.commands`` (see ``pyproject.toml``): replay, demo, evaluate, plot.
+
+The product's CLI never imports this module; it calls :func:`register` for every entry
+point of the group it finds installed. The tools' own dependencies (httpx, matplotlib) come
+with the ``demo`` extra: ``pip install 'tallyward[demo]'``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+from pathlib import Path
+
+import orjson
+
+from service.config import Settings
+from service.errors import TallywardError
+from service.textio import table
+from service.timefmt import parse_rfc3339
+
+KEY_ENV = "TALLYWARD_API_KEY"
+OLD_KEY_ENV = "TALLYWARD_KEY"  # the earlier name, still read
+DEMO_EXTRA = "the demo tools need the demo extra: pip install 'tallyward[demo]'"
+
+
+def _needs_extra(exc: ImportError) -> TallywardError:
+    return TallywardError(f"{DEMO_EXTRA} ({exc})")
+
+
+def _time_arg(text: str | None) -> int | None:
+    if text is None:
+        return None
+    try:
+        return parse_rfc3339(text)
+    except ValueError as exc:
+        raise TallywardError(str(exc)) from None
+
+
+def _server_args(parser: argparse.ArgumentParser, *, role: str) -> None:
+    """--url and the API key of a command that talks to a running Tallyward."""
+    parser.add_argument("--url", default="http://127.0.0.1:8000", help="the service's base URL")
+    given = parser.add_mutually_exclusive_group()
+    given.add_argument("--key-file", help=f"file holding the API key (role {role}); "
+                                          f"default: ${KEY_ENV}")
+    given.add_argument("--key", help="the API key itself; other users of this machine can read "
+                                     f"it in the process list, so prefer --key-file or ${KEY_ENV}")
+
+
+def api_key(args: argparse.Namespace) -> str | None:
+    """The key from --key-file, --key, $TALLYWARD_API_KEY or $TALLYWARD_KEY, in that order."""
+    if getattr(args, "key_file", None):
+        path = Path(args.key_file)
+        try:
+            text = path.read_text(encoding="utf-8")
+            mode = path.stat().st_mode
+        except (OSError, UnicodeDecodeError) as exc:
+            raise TallywardError(f"--key-file {path}: cannot read it ({exc})") from None
+        lines = [line.strip() for line in text.splitlines() if line.strip()]
+        if len(lines) != 1 or any(ch.isspace() for ch in lines[0]):
+            raise TallywardError(f"--key-file {path}: expected one line holding the key")
+        if mode & 0o077:
+            print(f"warning: --key-file {path} is readable by other users; chmod 600 it",
+                  file=sys.stderr)
+        return lines[0]
+    if getattr(args, "key", None):
+        print(f"warning: --key is visible to other users in the process list; prefer --key-file "
+              f"or ${KEY_ENV}", file=sys.stderr)
+        return args.key
+    return os.environ.get(KEY_ENV) or os.environ.get(OLD_KEY_ENV) or None
+
+
+# ----------------------------------------------------------------------------- commands
+
+
+def cmd_replay(args: argparse.Namespace, settings: Settings) -> int:
+    from tqdm import tqdm
+
+    try:
+        from service.tools.replay import ReplayError, replay, wait_for_scoring
+    except ImportError as exc:
+        raise _needs_extra(exc) from None
+
+    try:
+        with tqdm(unit="count", desc="replay", file=sys.stderr, disable=args.quiet) as bar:
+            summary = replay(args.feed, url=args.url, key=api_key(args), speed=args.speed,
+                             from_s=_time_arg(args.from_), until_s=_time_arg(args.until),
+                             batch=args.batch, progress=bar.update)
+    except ReplayError as exc:
+        print(f"replay stopped: {exc}", file=sys.stderr)
+        return 1
+    table([[f"{summary.rows:,}", summary.batches, f"{summary.accepted:,}",
+            f"{summary.duplicate:,}", summary.conflict, summary.rejected, summary.retries,
+            f"{summary.seconds:.1f}"]],
+          ["rows", "batches", "accepted", "duplicate", "conflict", "rejected", "retries", "seconds"])
+    if args.wait_scored:
+        backlog = wait_for_scoring(args.url)
+        if backlog:
+            print(f"scoring backlog still {backlog} after waiting", file=sys.stderr)
+    return 0 if not summary.rejected else 1
+
+
+def cmd_demo(args: argparse.Namespace, settings: Settings) -> int:
+    try:
+        from service.tools.demo import main_demo
+    except ImportError as exc:
+        raise _needs_extra(exc) from None
+
+    return main_demo(args.feed, args.folder, workers=args.workers)
+
+
+def cmd_evaluate(args: argparse.Namespace, settings: Settings) -> int:
+    try:
+        from service.tools import evaluate
+    except ImportError as exc:
+        raise _needs_extra(exc) from None
+
+    truth = evaluate.load_truth(args.truth)
+    key = api_key(args)
+    alerts = evaluate.fetch_alerts(args.url, key)
+    report = evaluate.evaluate(truth, alerts, intervals=evaluate.detector_intervals(args.url, key))
+    if args.json:
+        print(orjson.dumps(report, option=orjson.OPT_INDENT_2).decode())
+    else:
+        evaluate.print_report(report)
+    return 0
+
+
+def cmd_plot(args: argparse.Namespace, settings: Settings) -> int:
+    try:
+        import httpx
+
+        from service.tools.plots import plot_day
+    except ImportError as exc:
+        raise _needs_extra(exc) from None
+
+    key = api_key(args)
+    headers = {"Authorization": f"Bearer {key}"} if key else {}
+    with httpx.Client(base_url=args.url, headers=headers, timeout=30) as c:
+        r = c.get(f"/v1/detectors/{args.detector}/baseline", params={"date": args.date})
+        if r.status_code != 200:
+            raise TallywardError(f"baseline: {r.status_code} {r.text[:300]}")
+        doc = r.json()
+        lo, hi = doc["data"][0]["start"], doc["data"][-1]["start"]
+        counts = c.get("/v1/counts", params={"detector_id": args.detector, "from": lo,
+                                             "until": hi}).json()["data"]
+        alerts = c.get("/v1/alerts", params={"detector_id": args.detector, "limit": 1000}).json()
+    out = plot_day(doc, counts, [a for a in alerts["data"] if not a["withdrawn"]],
+                   title=f"{args.detector} on {args.date}", out=args.out)
+    print(out)
+    return 0
+
+
+# ----------------------------------------------------------------------------- registration
+
+
+def register(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+    """Add the tools' commands to ``tallyward``'s subcommands (the entry point's target)."""
+    s = sub.add_parser("replay", help="post a recorded feed through the HTTP API in time order")
+    s.add_argument("feed", help="feed folder (with counts.csv.gz) or a counts CSV file")
+    _server_args(s, role="ingest")
+    s.add_argument("--speed", default="max", help="max, or a factor such as 60x")
+    s.add_argument("--from", dest="from_", help="RFC 3339: first interval to send")
+    s.add_argument("--until", help="RFC 3339: send intervals before this")
+    s.add_argument("--batch", type=int, default=5000, help="items per batch at max speed")
+    s.add_argument("--wait-scored", action="store_true",
+                   help="afterwards, wait until the service has scored everything")
+    s.add_argument("--quiet", action="store_true")
+    s.set_defaults(func=cmd_replay)
+
+    s = sub.add_parser("demo", help="the main job on the demo network (embedded SQLite)")
+    s.add_argument("--feed", help="feed folder; default seed_feed/")
+    s.add_argument("--folder", help="working folder; default ./demo_run")
+    s.add_argument("--workers", type=int, default=2)
+    s.set_defaults(func=cmd_demo)
+
+    s = sub.add_parser("evaluate", help="score a service's alerts against a feed's truth file")
+    s.add_argument("--truth", required=True)
+    _server_args(s, role="read")
+    s.add_argument("--json", action="store_true", help="print the report as JSON")
+    s.set_defaults(func=cmd_evaluate)
+
+    s = sub.add_parser("plot", help="PNG of a detector's day against its baseline band")
+    s.add_argument("detector")
+    s.add_argument("--date", required=True, help="local date YYYY-MM-DD")
+    s.add_argument("--out", required=True, help="PNG path")
+    _server_args(s, role="read")
+    s.set_defaults(func=cmd_plot)
