@@ -15,6 +15,7 @@ from service.config import Settings
 from service.pipeline import fit, ingest, score
 from service.store import scoring as store_scoring
 from service.store import tables
+from service.store.baselines import BaselineCache
 from tests.factories import load_network, rfc3339, small_network
 
 GROUP = ("bra3-nb-lt", "bra3-nb-t1", "bra3-nb-t2")
@@ -237,3 +238,34 @@ def test_incident_on_whole_group_is_traffic(database_url, engine, network) -> No
            and a[2] < hi and a[3] >= lo]
     assert len({a[0] for a in low}) >= 2, visible_alerts(engine)
     assert all(a[5] == "traffic" for a in low), low
+
+
+def test_baseline_cache_keeps_what_it_read_until_its_owner_drops_it(database_url, engine,
+                                                                    network) -> None:
+    """A cache returns the baseline and thresholds it read even after the stored row changes;
+    a new cache (a new scorer) reads the row afresh. Thresholds are found only for the budget
+    they were derived for."""
+    settings = scoring_settings(database_url)
+    prepared(engine, settings, network)
+    b = tables.baselines
+    cache = BaselineCache()
+    budget = settings.false_alerts_per_week
+    with engine.connect() as conn:
+        baseline_id = conn.execute(select(b.c.baseline_id)
+                                   .where(b.c.detector_id == GROUP[0])).scalar_one()
+        base = cache.baseline(conn, baseline_id)
+        thresholds = cache.thresholds(conn, baseline_id, budget)
+        assert thresholds is not None and thresholds.false_alerts_per_week == budget
+        assert cache.thresholds(conn, baseline_id, budget * 2) is None
+    with engine.begin() as conn:
+        conn.execute(b.update().where(b.c.baseline_id == baseline_id)
+                     .values(model='{"torn": 1}', thresholds=None))
+    with engine.connect() as conn:
+        assert cache.baseline(conn, baseline_id) is base
+        assert cache.thresholds(conn, baseline_id, budget) is thresholds
+        fresh = BaselineCache()
+        with pytest.raises(KeyError):
+            fresh.baseline(conn, baseline_id)
+        assert fresh.thresholds(conn, baseline_id, budget) is None
+        cache.clear()
+        assert cache.thresholds(conn, baseline_id, budget) is None
