@@ -66,6 +66,7 @@ log = logging.getLogger("tallyward.scoring")
 BLOCK_S = 86_400  # scoring restarts afresh at each UTC-day block
 WARMUP_S = 6 * 3600  # seconds scored before a block to warm the tests' state
 Piece = tuple[int, int, int, Any]  # run_from, keep_from, end (epoch s), warm state
+Failure = tuple[str, Exception, int | None]  # detector, error, interval to rescore from
 
 
 class ScoringCache:
@@ -271,6 +272,10 @@ def evaluate_piece(info: DetectorInfo, base: bl.Baseline, grid: np.ndarray, valu
 # ----------------------------------------------------------------------------- writing
 
 
+# Groups whose detectors' alerts changed: the span rebuilt and the members concerned.
+Touched = dict[str, tuple[tuple[int, int], list[Scored]]]
+
+
 def write_scored(engine: Engine, scored: Sequence[Scored], settings: Settings, *,
                  failed: Sequence[tuple[str, Exception]] = ()) -> int:
     """Store evidence, rebuild episodes, reconcile alerts and causes: one short transaction.
@@ -284,7 +289,7 @@ def write_scored(engine: Engine, scored: Sequence[Scored], settings: Settings, *
     with write_transaction(engine) as conn:
         store.next_seqs(conn, 0)  # take the sequence row lock first: alert writers queue here
         writer = store.AlertWriter(conn, now)
-        failures: list[tuple[str, Exception, int | None]] = [(d, exc, None) for d, exc in failed]
+        failures: list[Failure] = [(d, exc, None) for d, exc in failed]
         succeeded, touched = _write_detectors(conn, writer, scored, failures, now=now,
                                               close_after=close_after)
         _refresh_groups(conn, writer, touched, succeeded, failures, close_after=close_after)
@@ -294,12 +299,8 @@ def write_scored(engine: Engine, scored: Sequence[Scored], settings: Settings, *
         return writer.changes
 
 
-# Groups whose detectors' alerts changed: (earliest, latest) rebuilt and the members concerned.
-Touched = dict[str, tuple[tuple[int, int], list[Scored]]]
-
-
 def _write_detectors(conn: Connection, writer: store.AlertWriter, scored: Sequence[Scored],
-                     failures: list[tuple[str, Exception, int | None]], *, now: float,
+                     failures: list[Failure], *, now: float,
                      close_after: int) -> tuple[dict[str, None], Touched]:
     """Each detector's results in its own SAVEPOINT; the detectors written (in order) and the
     groups to refresh. A detector that fails is added to ``failures``."""
@@ -327,7 +328,7 @@ def _write_detectors(conn: Connection, writer: store.AlertWriter, scored: Sequen
 
 
 def _refresh_groups(conn: Connection, writer: store.AlertWriter, touched: Touched,
-                    succeeded: dict[str, None], failures: list[tuple[str, Exception, int | None]],
+                    succeeded: dict[str, None], failures: list[Failure],
                     *, close_after: int) -> None:
     """Each touched group's refresh in its own SAVEPOINT. A group that fails leaves its
     members' own alerts standing and marks the members for rescoring from their new work."""
