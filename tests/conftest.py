@@ -59,14 +59,6 @@ def pytest_collection_modifyitems(config: pytest.Config, items: list[pytest.Item
 
 
 @pytest.fixture(autouse=True)
-def _fresh_caches() -> None:
-    """Every test database restarts its baseline ids, so no cached baseline may outlive a test."""
-    from service.pipeline import score
-
-    score.clear_caches()
-
-
-@pytest.fixture(autouse=True)
 def _clean_env(monkeypatch: pytest.MonkeyPatch) -> None:
     """No TALLYWARD_* variable of the caller's shell leaks into a test."""
     for name in list(os.environ):

@@ -15,12 +15,13 @@ from concurrent.futures import ProcessPoolExecutor, as_completed
 from typing import Any
 
 import numpy as np
-import orjson
 from sqlalchemy import Connection, Engine, select
 
 from service.config import Settings
 from service.stats import baseline as bl
+from service.stats.baseline_thresholds import thresholds_for_baseline
 from service.store import tables as models
+from service.store.baselines import insert_baseline, point_scoring_at, thresholds_to_json
 from service.store.engine import make_worker_engine, read_transaction, write_transaction
 
 DAY_S = 86_400
@@ -77,21 +78,17 @@ def fit_one(engine: Engine, detector_id: str, *, as_of_s: int, settings: Setting
             thresholds: bool = True) -> dict[str, Any]:
     """Fit one detector and store the baseline; with ``thresholds``, also derive its scoring
     thresholds from the false-alert budget (otherwise the first scoring pass does)."""
-    d = models.detectors
     started = time.perf_counter()
     lo = as_of_s - settings.fit_window_days * DAY_S
     with read_transaction(engine) as conn:
-        det = conn.execute(select(d).where(d.c.detector_id == detector_id)).first()
+        det = conn.execute(select(models.detectors).where(
+            models.detectors.c.detector_id == detector_id)).first()
         if det is None:
             return {"detector_id": detector_id, "status": "failed", "reason": "unknown detector"}
         start_s, counts = _load_history(conn, detector_id, lo, as_of_s)
         exclude = _excluded(conn, detector_id, start_s, lo, as_of_s)
     try:
-        result = bl.fit_baseline(
-            start_s, counts, interval_s=det.interval_s, timezone=det.timezone,
-            holiday_calendar=det.holiday_calendar, as_of_s=as_of_s,
-            window_days=settings.fit_window_days, half_life_days=settings.fit_half_life_days,
-            min_completeness=settings.fit_min_completeness, exclude=exclude)
+        result = _fit(det, start_s, counts, exclude, as_of_s=as_of_s, settings=settings)
     except Exception as exc:  # noqa: BLE001 - one detector's failure must not stop the network
         return {"detector_id": detector_id, "status": "failed",
                 "reason": f"{type(exc).__name__}: {exc}"}
@@ -102,34 +99,29 @@ def fit_one(engine: Engine, detector_id: str, *, as_of_s: int, settings: Setting
     summary = summarise(result)
     thresholds_json = None
     if thresholds:
-        from service.pipeline.score import DetectorInfo, thresholds_for, thresholds_to_json
-
-        info = DetectorInfo(det.detector_id, det.label, det.group_id, det.road_class, det.lanes,
-                            det.interval_s, det.timezone, det.holiday_calendar,
-                            det.capacity_per_lane_h)
-        thresholds_json = thresholds_to_json(thresholds_for(result.baseline, info, settings))
+        thresholds_json = thresholds_to_json(thresholds_for_baseline(
+            result.baseline, interval_s=det.interval_s,
+            false_alerts_per_week=settings.false_alerts_per_week))
     now = time.time()
-    b, s = models.baselines, models.detector_state
     with write_transaction(engine) as conn:
-        baseline_id = conn.execute(b.insert().values(
-            detector_id=detector_id, fitted_s=now, as_of_s=as_of_s,
-            window_start_s=int(result.baseline.window_start_s),
-            window_end_s=int(result.baseline.window_end_s),
-            model=orjson.dumps(result.baseline.to_dict(),
-                               option=orjson.OPT_SERIALIZE_NUMPY).decode(),
-            summary=orjson.dumps(summary).decode(),
-            thresholds=thresholds_json).returning(b.c.baseline_id)).scalar_one()
-        state = conn.execute(select(s.c.detector_id).where(s.c.detector_id == detector_id)).first()
-        if state is None:
-            conn.execute(s.insert().values(detector_id=detector_id, baseline_id=baseline_id,
-                                           score_from_s=as_of_s, dirty_from_s=as_of_s,
-                                           scored_through_s=None, warm_state=None, updated_s=now))
-        else:
-            conn.execute(s.update().where(s.c.detector_id == detector_id)
-                         .values(baseline_id=baseline_id, updated_s=now))
+        baseline_id = insert_baseline(conn, detector_id=detector_id, baseline=result.baseline,
+                                      fitted_s=now, as_of_s=as_of_s, summary=summary,
+                                      thresholds_json=thresholds_json)
+        point_scoring_at(conn, detector_id=detector_id, baseline_id=baseline_id,
+                         as_of_s=as_of_s, now=now)
     out.update(baseline_id=baseline_id, summary=summary,
                seconds=round(time.perf_counter() - started, 3))
     return out
+
+
+def _fit(det: Any, start_s: np.ndarray, counts: np.ndarray, exclude: np.ndarray, *,
+         as_of_s: int, settings: Settings) -> bl.FitResult:
+    """The baseline of a detector's registry row ``det`` from its history."""
+    return bl.fit_baseline(
+        start_s, counts, interval_s=det.interval_s, timezone=det.timezone,
+        holiday_calendar=det.holiday_calendar, as_of_s=as_of_s,
+        window_days=settings.fit_window_days, half_life_days=settings.fit_half_life_days,
+        min_completeness=settings.fit_min_completeness, exclude=exclude)
 
 
 _worker_engine: Engine | None = None

@@ -102,7 +102,7 @@ baselines = Table(
     Column("window_end_s", BigInteger, nullable=False),
     Column("model", Text, nullable=False),  # JSON: baseline.Baseline.to_dict()
     Column("summary", Text, nullable=False),  # JSON: what a person reads about the fit
-    Column("thresholds", Text, nullable=True),  # JSON: scoring.Thresholds for the budget in force
+    Column("thresholds", Text, nullable=True),  # JSON: stats.thresholds.Thresholds for the budget in force
     Index("ix_baselines_detector_id_baseline_id", "detector_id", "baseline_id"),
 )
 

@@ -14,8 +14,9 @@ from hypothesis import strategies as st
 from sqlalchemy import Engine, select, text
 
 from service.config import Settings
-from service.pipeline import score as alerting
-from service.store import tables as models
+from service.pipeline import score
+from service.store import scoring as store_scoring
+from service.store import tables
 from tests.factories import small_network
 from tests.pipeline.test_score import HOUR, period_rows, post, prepared, visible_alerts
 
@@ -42,13 +43,6 @@ def window_rows(net) -> list[list[Any]]:  # type: ignore[no-untyped-def]
     return [r for r in period_rows(net, edit=edit) if r[1] >= start][:WINDOW]
 
 
-@pytest.fixture(autouse=True)
-def _fresh_model_caches() -> None:
-    """Baselines are cached by id in the process, and ids restart in every test database."""
-    alerting._BASELINES.clear()
-    alerting._THRESHOLDS.clear()
-
-
 class Fitted:
     """The detector's history stored and fitted once; ``reset`` returns the database to that
     state (no test-period counts, evidence or alerts) so that one test can feed many orders."""
@@ -57,10 +51,10 @@ class Fitted:
         self.engine, self.settings, self.test_start_s = engine, settings, net.test_start_s
         prepared(engine, settings, net)
         with engine.connect() as conn:
-            self.state = [dict(r._mapping) for r in conn.execute(select(models.detector_state))]
+            self.state = [dict(r._mapping) for r in conn.execute(select(tables.detector_state))]
 
     def reset(self) -> None:
-        s = models.detector_state
+        s = tables.detector_state
         with self.engine.begin() as conn:
             for table in ("alerts", "evidence", "count_conflicts"):
                 conn.execute(text(f"DELETE FROM {table}"))
@@ -77,21 +71,21 @@ class Fitted:
         for i, batch in enumerate(batches):
             post(self.engine, batch)
             if (i + 1) % score_every == 0 or i == len(batches) - 1:
-                alerting.score_until_idle(self.engine, self.settings)
+                score.score_until_idle(self.engine, self.settings)
                 seen.append(alert_rows(self.engine))
         return seen
 
     def assert_drained(self) -> None:
-        s = models.detector_state
+        s = tables.detector_state
         with self.engine.connect() as conn:
-            assert alerting.scoring_backlog(conn, self.settings) == 0
+            assert store_scoring.scoring_backlog(conn, self.settings) == 0
             failures = conn.execute(select(s.c.detector_id, s.c.failures, s.c.last_error)
                                     .where(s.c.failures > 0)).all()
         assert not failures, failures
 
 
 def alert_rows(engine: Engine) -> dict[tuple[str, int], tuple[int, int, int]]:
-    a = models.alerts
+    a = tables.alerts
     with engine.connect() as conn:
         return {(r.kind, r.start_s): (r.alert_id, r.seq, r.withdrawn) for r in conn.execute(
             select(a.c.kind, a.c.start_s, a.c.alert_id, a.c.seq, a.c.withdrawn))}

@@ -12,10 +12,10 @@ from hypothesis import strategies as st
 from sqlalchemy import select
 
 from service.config import Settings
-from service.pipeline import fit as fitting
-from service.pipeline import ingest
-from service.pipeline import score as alerting
-from service.store import tables as models
+from service.pipeline import fit, ingest, score
+from service.store import scoring as store_scoring
+from service.store import tables
+from service.store.baselines import BaselineCache
 from tests.factories import load_network, rfc3339, small_network
 
 GROUP = ("bra3-nb-lt", "bra3-nb-t1", "bra3-nb-t2")
@@ -29,7 +29,7 @@ def scoring_settings(database_url: str) -> Settings:
 def prepared(engine, settings, net):  # type: ignore[no-untyped-def]
     """History stored and fitted as of the test start."""
     load_network(engine, net, until_s=net.test_start_s)
-    results = fitting.fit_many(settings, engine, as_of_s=net.test_start_s, workers=1)
+    results = fit.fit_many(settings, engine, as_of_s=net.test_start_s, workers=1)
     assert all(r["status"] == "fitted" for r in results), results
 
 
@@ -49,11 +49,11 @@ def post(engine, rows, *, batch=5000):  # type: ignore[no-untyped-def]
         items = [(i, d, rfc3339(datetime.fromtimestamp(t, UTC)), c)
                  for i, (d, t, c) in enumerate(rows[lo : lo + batch])]
         ingest.ingest_items(engine, items, future_tolerance_s=10**9,
-                            after_store=alerting.mark_dirty)
+                            after_store=store_scoring.mark_dirty)
 
 
 def visible_alerts(engine) -> set[tuple]:  # type: ignore[no-untyped-def]
-    a = models.alerts
+    a = tables.alerts
     with engine.connect() as conn:
         rows = conn.execute(select(a.c.subject, a.c.kind, a.c.start_s, a.c.end_s, a.c.status,
                                    a.c.cause, a.c.n_intervals).where(
@@ -87,7 +87,7 @@ def test_dead_detector_at_peak_raises_one_detector_alert(database_url, engine, n
     prepared(engine, settings, network)
     edit, lo, hi = dead_at_peak(network)
     post(engine, period_rows(network, edit=edit))
-    alerting.score_until_idle(engine, settings)
+    score.score_until_idle(engine, settings)
     alerts = [a for a in visible_alerts(engine) if a[0] == "bra3-nb-t1" and a[1] == "no_counts"]
     assert len(alerts) == 1, visible_alerts(engine)
     subject, kind, start, end, status, cause, n = alerts[0]
@@ -105,7 +105,7 @@ def test_alerts_do_not_depend_on_arrival_order(database_url, engine, network, tm
     edit, _, _ = dead_at_peak(network)
     rows = period_rows(network, edit=edit)
     post(engine, rows)
-    alerting.score_until_idle(engine, settings)
+    score.score_until_idle(engine, settings)
     expected = visible_alerts(engine)
     assert expected
 
@@ -125,7 +125,7 @@ def test_alerts_do_not_depend_on_arrival_order(database_url, engine, network, tm
     shuffled = [rows[i] for i in order] + [rows[i] for i in order[:300]]
     for lo in range(0, len(shuffled), 700):
         post(engine, shuffled[lo : lo + 700])
-        alerting.score_until_idle(engine, settings)
+        score.score_until_idle(engine, settings)
     assert visible_alerts(engine) == expected
 
 
@@ -149,7 +149,7 @@ def prepared_template(tmp_path_factory, sqlite_template, network):  # type: igno
     engine = make_engine(scoring_settings(f"sqlite:///{scored}"))
     edit, _, _ = dead_at_peak(network)
     post(engine, period_rows(network, edit=edit))
-    alerting.score_until_idle(engine, scoring_settings(f"sqlite:///{scored}"))
+    score.score_until_idle(engine, scoring_settings(f"sqlite:///{scored}"))
     expected = visible_alerts(engine)
     engine.dispose()
     assert any(a[1] == "no_counts" for a in expected), expected
@@ -187,8 +187,8 @@ def test_batching_never_changes_alerts_property(prepared_template, network, batc
         for i, lo in enumerate(range(0, len(rows), batch)):
             post(engine, rows[lo : lo + batch], batch=batch)
             if every and i % every == 0:
-                alerting.score_until_idle(engine, settings)
-        alerting.score_until_idle(engine, settings)
+                score.score_until_idle(engine, settings)
+        score.score_until_idle(engine, settings)
         got = visible_alerts(engine)
         engine.dispose()
     assert got == expected
@@ -202,7 +202,7 @@ def test_group_offline_raises_one_communications_alert(database_url, engine, net
     lo = network.test_start_s + 10 * HOUR
     hi = lo + HOUR
     post(engine, period_rows(network, edit=lambda r: None if lo <= r[1] < hi else r))
-    alerting.score_until_idle(engine, settings)
+    score.score_until_idle(engine, settings)
     shown = [a for a in visible_alerts(engine) if a[1] == "no_data"]
     assert len(shown) == 1, visible_alerts(engine)
     subject, kind, start, end, status, cause, n = shown[0]
@@ -217,7 +217,7 @@ def test_lone_missing_interval_raises_nothing(database_url, engine, network) -> 
     prepared(engine, settings, network)
     gap = network.test_start_s + 12 * HOUR
     post(engine, period_rows(network, edit=lambda r: None if r[1] == gap and r[0] == GROUP[0] else r))
-    alerting.score_until_idle(engine, settings)
+    score.score_until_idle(engine, settings)
     assert not [a for a in visible_alerts(engine) if a[1] == "no_data"]
 
 
@@ -237,8 +237,39 @@ def test_incident_on_whole_group_is_traffic(database_url, engine, network) -> No
         return r
 
     post(engine, period_rows(network, edit=edit))
-    alerting.score_until_idle(engine, settings)
+    score.score_until_idle(engine, settings)
     low = [a for a in visible_alerts(engine) if a[1] in ("low_volume", "no_counts")
            and a[2] < hi and a[3] >= lo]
     assert len({a[0] for a in low}) >= 2, visible_alerts(engine)
     assert all(a[5] == "traffic" for a in low), low
+
+
+def test_baseline_cache_keeps_what_it_read_until_its_owner_drops_it(database_url, engine,
+                                                                    network) -> None:
+    """A cache returns the baseline and thresholds it read even after the stored row changes;
+    a new cache (a new scorer) reads the row afresh. Thresholds are found only for the budget
+    they were derived for."""
+    settings = scoring_settings(database_url)
+    prepared(engine, settings, network)
+    b = tables.baselines
+    cache = BaselineCache()
+    budget = settings.false_alerts_per_week
+    with engine.connect() as conn:
+        baseline_id = conn.execute(select(b.c.baseline_id)
+                                   .where(b.c.detector_id == GROUP[0])).scalar_one()
+        base = cache.baseline(conn, baseline_id)
+        thresholds = cache.thresholds(conn, baseline_id, budget)
+        assert thresholds is not None and thresholds.false_alerts_per_week == budget
+        assert cache.thresholds(conn, baseline_id, budget * 2) is None
+    with engine.begin() as conn:
+        conn.execute(b.update().where(b.c.baseline_id == baseline_id)
+                     .values(model='{"torn": 1}', thresholds=None))
+    with engine.connect() as conn:
+        assert cache.baseline(conn, baseline_id) is base
+        assert cache.thresholds(conn, baseline_id, budget) is thresholds
+        fresh = BaselineCache()
+        with pytest.raises(KeyError):
+            fresh.baseline(conn, baseline_id)
+        assert fresh.thresholds(conn, baseline_id, budget) is None
+        cache.clear()
+        assert cache.thresholds(conn, baseline_id, budget) is None

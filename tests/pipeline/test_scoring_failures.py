@@ -11,8 +11,9 @@ from sqlalchemy import Engine, select
 from starlette.testclient import TestClient
 
 from service.config import Settings
-from service.pipeline import score as alerting
-from service.store import tables as models
+from service.pipeline import score
+from service.store import scoring as store_scoring
+from service.store import tables
 from service.web.app import create_app
 from tests.conftest import LiveServer, auth
 from tests.factories import rfc3339, small_network
@@ -26,13 +27,6 @@ BROKEN, HEALTHY = "bra3-nb-t1", "bra3-nb-t2"
 @pytest.fixture(scope="module")
 def network():  # type: ignore[no-untyped-def]
     return small_network(GROUP, history_days=21, test_days=2, seed=3)
-
-
-@pytest.fixture(autouse=True)
-def _fresh_model_caches() -> None:
-    """Baselines are cached by id in the process, and ids restart in every test database."""
-    alerting._BASELINES.clear()
-    alerting._THRESHOLDS.clear()
 
 
 @pytest.fixture
@@ -56,7 +50,7 @@ def reference_alerts(fitted: Fitted, rows: list[list]) -> set[tuple]:
     """The alerts of the rows scored with nothing failing; leaves the database reset."""
     fitted.reset()
     post(fitted.engine, rows)
-    alerting.score_until_idle(fitted.engine, fitted.settings)
+    score.score_until_idle(fitted.engine, fitted.settings)
     fitted.assert_drained()
     expected = visible_alerts(fitted.engine)
     for det in (BROKEN, HEALTHY):
@@ -66,14 +60,14 @@ def reference_alerts(fitted: Fitted, rows: list[list]) -> set[tuple]:
 
 
 def state(engine: Engine, detector_id: str):  # type: ignore[no-untyped-def]
-    s = models.detector_state
+    s = tables.detector_state
     with engine.connect() as conn:
         return conn.execute(select(s).where(s.c.detector_id == detector_id)).one()
 
 
 def let_retry_time_pass(engine: Engine, detector_id: str) -> None:
     """Stand-in for waiting out the backoff: move the detector's retry time to the past."""
-    s = models.detector_state
+    s = tables.detector_state
     with engine.begin() as conn:
         conn.execute(s.update().where(s.c.detector_id == detector_id)
                      .values(retry_after_s=time.time() - 1))
@@ -98,25 +92,24 @@ def test_corrupt_baseline_fails_alone_retries_with_backoff_and_shows_in_health(
     engine, settings = fitted.engine, fitted.settings
     rows = two_dead_spells(network)
     expected = reference_alerts(fitted, rows)
-    b = models.baselines
+    b = tables.baselines
     with engine.begin() as conn:
         model = conn.execute(select(b.c.model).where(b.c.detector_id == BROKEN)).scalar_one()
         conn.execute(b.update().where(b.c.detector_id == BROKEN).values(model='{"torn": 1}'))
-    alerting._BASELINES.clear()  # as a scorer process started after the damage would be
     post(engine, rows)
 
     for failures in (1, 2, 3):
         before = time.time()
-        alerting.score_until_idle(engine, settings)
+        score.score_until_idle(engine, settings)
         after = time.time()
         row = state(engine, BROKEN)
         assert row.failures == failures and row.last_error.startswith("KeyError")
-        delay = alerting.RETRY_FIRST_S * 2 ** (failures - 1)
+        delay = store_scoring.RETRY_FIRST_S * 2 ** (failures - 1)
         assert before + delay <= row.retry_after_s <= after + delay
         assert row.claimed_from_s is not None and row.lease_until_s is None  # work kept
         assert only(visible_alerts(engine), HEALTHY) == only(expected, HEALTHY)
         assert not only(visible_alerts(engine), BROKEN)
-        assert alerting.score_pass(engine, settings) == 0, "retried before its backoff ran out"
+        assert score.score_pass(engine, settings) == 0, "retried before its backoff ran out"
         code, body = health(engine, database_url)
         assert code == 200
         assert body["status"] == ("degraded" if failures >= 3 else "ok"), body
@@ -133,8 +126,7 @@ def test_corrupt_baseline_fails_alone_retries_with_backoff_and_shows_in_health(
 
     with engine.begin() as conn:
         conn.execute(b.update().where(b.c.detector_id == BROKEN).values(model=model))
-    alerting._BASELINES.clear()
-    alerting.score_until_idle(engine, settings)
+    score.score_until_idle(engine, settings)
     fitted.assert_drained()
     assert visible_alerts(engine) == expected
     code, body = health(engine, database_url)
@@ -175,7 +167,7 @@ def test_database_refusing_one_detectors_writes_rolls_back_only_that_detector(
     run_sql(engine, REFUSE[dialect])
     try:
         post(engine, rows)
-        alerting.score_until_idle(engine, settings)
+        score.score_until_idle(engine, settings)
         row = state(engine, BROKEN)
         assert row.failures == 1 and "evidence refused" in row.last_error
         assert row.scored_through_s is None and row.claimed_from_s is not None
@@ -185,7 +177,7 @@ def test_database_refusing_one_detectors_writes_rolls_back_only_that_detector(
     finally:
         run_sql(engine, ALLOW[dialect])
     let_retry_time_pass(engine, BROKEN)
-    alerting.score_until_idle(engine, settings)
+    score.score_until_idle(engine, settings)
     fitted.assert_drained()
     assert visible_alerts(engine) == expected
 
@@ -199,7 +191,7 @@ def test_live_server_keeps_scoring_past_a_broken_detector(database_url, fitted, 
     engine = fitted.engine
     fitted.reset()
     with engine.begin() as conn:
-        b = models.baselines
+        b = tables.baselines
         conn.execute(b.update().where(b.c.detector_id == BROKEN).values(model='{"torn": 1}'))
     items = [{"detector_id": d, "start": rfc3339_s(t), "count": c}
              for d, t, c in two_dead_spells(network)]
@@ -223,7 +215,7 @@ def test_live_server_keeps_scoring_past_a_broken_detector(database_url, fitted, 
         server.stop()
     assert body["status"] == "degraded", body
     assert [f["detector_id"] for f in body["scoring"]["failing"]] == [BROKEN]
-    assert body["scoring"]["failing"][0]["failures"] >= alerting.DEGRADED_AFTER_FAILURES
+    assert body["scoring"]["failing"][0]["failures"] >= store_scoring.DEGRADED_AFTER_FAILURES
     assert any(a["kind"] == "no_counts" and not a["withdrawn"] for a in alerts), alerts
 
 
@@ -237,7 +229,7 @@ def test_health_names_no_detector_when_scoring_keeps_up(database_url, fitted, ne
     """All detectors scored: health is ok with an empty backlog and nothing failing."""
     fitted.reset()
     post(fitted.engine, two_dead_spells(network))
-    alerting.score_until_idle(fitted.engine, fitted.settings)
+    score.score_until_idle(fitted.engine, fitted.settings)
     code, body = health(fitted.engine, database_url)
     assert code == 200 and body["status"] == "ok"
     scoring = body["scoring"]
@@ -256,16 +248,16 @@ def test_health_reports_a_stalled_backlog_when_no_scorer_runs(database_url, fitt
     scoring = body["scoring"]
     assert code == 200 and body["status"] == "ok", body
     assert scoring["backlog"] == len(GROUP) and scoring["failing"] == []
-    assert 0 <= scoring["longest_wait_s"] < alerting.STALLED_AFTER_S
+    assert 0 <= scoring["longest_wait_s"] < store_scoring.STALLED_AFTER_S
     assert scoring["oldest_unscored_age_s"] > 0
-    s = models.detector_state
+    s = tables.detector_state
     with engine.begin() as conn:  # as if the counts had arrived 11 minutes ago
         conn.execute(s.update().values(pending_since_s=s.c.pending_since_s - 660))
     code, body = health(engine, database_url)
     assert code == 200 and body["status"] == "degraded", body
     assert body["scoring"]["reasons"] == ["backlog_stalled"]
     assert body["scoring"]["longest_wait_s"] >= 660
-    alerting.score_until_idle(engine, fitted.settings)
+    score.score_until_idle(engine, fitted.settings)
     code, body = health(engine, database_url)
     assert body["status"] == "ok" and body["scoring"]["longest_wait_s"] is None
 
@@ -289,7 +281,7 @@ def test_a_count_stored_as_text_fails_only_its_detector(sqlite_url, network) -> 
                                     "start_s = ?", (spot["d"], spot["t"])).scalar_one()
         conn.exec_driver_sql("UPDATE counts SET count = 'twelve' WHERE detector_id = ? AND "
                              "start_s = ?", (spot["d"], spot["t"]))
-    alerting.score_until_idle(engine, settings)
+    score.score_until_idle(engine, settings)
     row = state(engine, BROKEN)
     assert row.failures == 1 and row.last_error.startswith("ValueError")
     assert only(visible_alerts(engine), HEALTHY) == only(expected, HEALTHY)
@@ -298,7 +290,7 @@ def test_a_count_stored_as_text_fails_only_its_detector(sqlite_url, network) -> 
         conn.exec_driver_sql("UPDATE counts SET count = ? WHERE detector_id = ? AND start_s = ?",
                              (good, spot["d"], spot["t"]))
     let_retry_time_pass(engine, BROKEN)
-    alerting.score_until_idle(engine, settings)
+    score.score_until_idle(engine, settings)
     fitted.assert_drained()
     assert visible_alerts(engine) == expected
     engine.dispose()

@@ -32,7 +32,7 @@ def count_episodes(ev, *, close_after: int) -> int:  # type: ignore[no-untyped-d
     """Alert episodes as ``service.pipeline.score.episodes_from_rows`` forms them: flagged
     intervals of one kind, split by ``close_after`` or more unflagged ones (missing data by
     two hours of reporting, as there)."""
-    from service.pipeline.score import NO_DATA_REOPEN_S
+    from service.stats.episodes import NO_DATA_REOPEN_S
 
     total = 0
     for kind in KINDS:

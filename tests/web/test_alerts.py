@@ -10,8 +10,8 @@ import time
 import httpx
 import pytest
 
-from service.pipeline import score as alerting
 from service.store.engine import write_transaction
+from service.store.scoring import AlertWriter
 from tests.conftest import PG_URL, auth
 from tests.factories import make_detector
 
@@ -30,7 +30,7 @@ def alert_values(detector_id: str, start_s: int, **extra) -> dict:  # type: igno
 
 def write_alert(engine, detector_id: str, start_s: int, **extra) -> int:  # type: ignore[no-untyped-def]
     with write_transaction(engine) as conn:
-        writer = alerting._Writer(conn, time.time())
+        writer = AlertWriter(conn, time.time())
         return writer.upsert(None, alert_values(detector_id, start_s, **extra))
 
 
@@ -106,7 +106,7 @@ def test_acknowledge_does_not_stop_an_alert_from_closing(client, engine, keys) -
 
     with write_transaction(engine) as conn:
         row = conn.execute(select(models.alerts).where(models.alerts.c.alert_id == alert_id)).first()
-        alerting._Writer(conn, time.time()).upsert(row, {"status": "closed",
+        AlertWriter(conn, time.time()).upsert(row, {"status": "closed",
                                                          "closed_s": BASE_T + 1800})
     a = client.get(f"/v1/alerts/{alert_id}", headers=auth(keys["read"])).json()
     assert a["status"] == "closed" and a["acknowledged"]["by"] == "desk"
@@ -134,7 +134,7 @@ def test_poller_sees_every_change_once_with_concurrent_writers(database_url, eng
 
         for i in range(25):
             with write_transaction(engine) as conn:
-                w = alerting._Writer(conn, time.time())
+                w = AlertWriter(conn, time.time())
                 start = BASE_T + (worker * 1000 + i) * 600
                 w.upsert(None, alert_values(f"W{worker}", start))
                 if i and rng.random() < 0.5:

@@ -14,9 +14,10 @@ from sqlalchemy import Connection, func, select
 
 from service.domain import INT32_MAX, INT64_MAX, plain_text, prose
 from service.errors import NotFound, ValidationFailed
-from service.pipeline.score import KINDS, next_seqs
+from service.stats.episodes import KINDS
 from service.store import tables as models
 from service.store.engine import read_transaction, write_transaction
+from service.store.scoring import next_seqs
 from service.timefmt import format_utc
 from service.web.deps import EngineDep, OperateDep, ReadDep, SettingsDep
 from service.web.schemas import DETECTOR_ID_PATTERN
@@ -157,7 +158,7 @@ def detector_health(detector_id: Annotated[str, Path(pattern=DETECTOR_ID_PATTERN
                                                     description="Detector id.")],
                     engine: EngineDep, settings: SettingsDep, _: ReadDep) -> dict[str, Any]:
     """Completeness, open alerts and share of intervals flagged over the last 24 h and 7 days."""
-    from service.pipeline.score import clock_now
+    from service.store.scoring import clock_now
 
     d, c, e, a = models.detectors, models.counts, models.evidence, models.alerts
     with read_transaction(engine) as conn:

@@ -16,10 +16,10 @@ from sqlalchemy import select
 
 from service.errors import NotFound, ValidationFailed
 from service.pipeline import fit as fitting
-from service.pipeline.score import load_baseline
 from service.stats import baseline as bl
 from service.stats import calendar, intervals
 from service.store import tables as models
+from service.store.baselines import load_baseline
 from service.store.engine import read_transaction
 from service.timefmt import format_utc, parse_rfc3339
 from service.web.deps import AdminDep, EngineDep, ReadDep, SettingsDep

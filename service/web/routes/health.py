@@ -21,9 +21,9 @@ from pydantic import BaseModel, Field
 from sqlalchemy import Connection, text
 from sqlalchemy.exc import DBAPIError
 
-from service.pipeline.score import scoring_health
 from service.store import migrations as migrate
 from service.store.engine import read_transaction
+from service.store.scoring import scoring_health
 from service.timefmt import format_utc
 from service.web.deps import EngineDep, SettingsDep
 

@@ -1,0 +1,254 @@
+"""Alert episodes from flagged intervals: grouping, likely cause and the sentence a person reads.
+
+Pure Python: no database, no web. The scoring pass (``service.pipeline.score``) stores flagged
+intervals as evidence rows; the functions here turn such rows (anything with the attributes of
+``FlaggedInterval``) into ``Episode`` values, name a likely cause from what the detector's
+group neighbours show, and write the one-line summary. Times are epoch seconds (UTC), interval
+starts on the detector's grid; counts are vehicles per interval.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass
+from datetime import datetime
+from typing import Protocol
+from zoneinfo import ZoneInfo
+
+# Trade facts (to move to ``service.domain`` when it names them).
+KINDS = ("no_counts", "low_volume", "high_volume", "over_capacity", "repeated_value", "no_data")
+LOW_KINDS = frozenset({"no_counts", "low_volume"})
+CAUSES = ("traffic", "detector", "communications", "unknown")
+NO_DATA_REOPEN_S = 2 * 3600  # gaps closer than this are one intermittent-reporting episode
+
+GroupRun = tuple[int, int, list[str], float, float]  # start, last start, members, expected, log p
+
+
+class FlaggedInterval(Protocol):
+    """One flagged interval of one detector, as the evidence table stores it."""
+
+    @property
+    def detector_id(self) -> str: ...
+    @property
+    def kind(self) -> str: ...
+    @property
+    def start_s(self) -> int: ...
+    @property
+    def log_p(self) -> float: ...
+    @property
+    def observed(self) -> float | None: ...
+    @property
+    def expected(self) -> float | None: ...
+
+
+@dataclass
+class Episode:
+    subject: str
+    detector_id: str | None
+    kind: str
+    start_s: int
+    end_s: int  # start of the last anomalous interval
+    closed_s: int | None
+    n_intervals: int
+    observed: float | None
+    expected: float
+    log_p: float
+
+    @property
+    def status(self) -> str:
+        return "open" if self.closed_s is None else "closed"
+
+
+# ----------------------------------------------------------------------------- grouping
+
+
+def episodes_from_rows(detector_id: str, rows: Sequence[FlaggedInterval], *, interval_s: int,
+                       scored_end_s: int, close_after: int) -> list[Episode]:
+    """Group flagged intervals (sorted by kind, start) into episodes.
+
+    An episode closes after ``close_after`` scored intervals without its flag; shorter gaps do
+    not split it. Missing data closes as soon as data returns, but a new gap within
+    ``NO_DATA_REOPEN_S`` (or ``close_after`` intervals, if longer) reopens the same episode:
+    intermittent reporting is one alert, not one per gap."""
+    by_kind: dict[str, list[FlaggedInterval]] = {}
+    for r in rows:
+        by_kind.setdefault(r.kind, []).append(r)
+    episodes: list[Episode] = []
+    for kind, items in by_kind.items():
+        items.sort(key=lambda r: r.start_s)
+        closing = 1 if kind == "no_data" else close_after
+        split = max(close_after, NO_DATA_REOPEN_S // interval_s) if kind == "no_data" \
+            else close_after
+        for part in _runs(items, interval_s=interval_s, split=split):
+            episodes.append(_episode(detector_id, kind, part, interval_s=interval_s,
+                                     closing=closing, scored_end_s=scored_end_s))
+    return episodes
+
+
+def _runs(items: Sequence[FlaggedInterval], *, interval_s: int, split: int
+          ) -> list[list[FlaggedInterval]]:
+    """Sorted intervals cut where ``split`` or more unflagged intervals lie between two."""
+    runs: list[list[FlaggedInterval]] = []
+    current: list[FlaggedInterval] = []
+    for r in items:
+        if current and (r.start_s - current[-1].start_s) // interval_s - 1 >= split:
+            runs.append(current)
+            current = []
+        current.append(r)
+    if current:
+        runs.append(current)
+    return runs
+
+
+def _episode(detector_id: str, kind: str, part: Sequence[FlaggedInterval], *, interval_s: int,
+             closing: int, scored_end_s: int) -> Episode:
+    """One run's episode: closed once ``closing`` intervals after its last were scored."""
+    last = part[-1].start_s
+    closes_at = last + interval_s * (closing + 1)
+    observed = None if kind == "no_data" else float(sum(p.observed or 0 for p in part))
+    return Episode(
+        subject=detector_id, detector_id=detector_id, kind=kind,
+        start_s=part[0].start_s, end_s=last,
+        closed_s=closes_at - interval_s if closes_at <= scored_end_s else None,
+        n_intervals=len(part), observed=observed,
+        expected=float(sum(p.expected or 0 for p in part)),
+        log_p=float(min(p.log_p for p in part)))
+
+
+def communications_runs(rows: Sequence[FlaggedInterval], *, n_members: int, step: int
+                        ) -> list[GroupRun]:
+    """Stretches where most of a group's ``n_members`` detectors are flagged missing together.
+
+    ``rows`` are the group's ``no_data`` intervals; ``step`` the group's shortest interval (s).
+    Returns (start, last start, members, expected, strongest log p) per stretch."""
+    need = max(2, math.ceil(n_members / 2))
+    at: dict[int, dict[str, FlaggedInterval]] = {}
+    for r in rows:
+        at.setdefault(r.start_s, {})[r.detector_id] = r
+    runs: list[GroupRun] = []
+    current: list[int] = []
+    for t in sorted(at):
+        if len(at[t]) < need:
+            continue
+        if current and t - current[-1] > step:
+            runs.append(_group_run(current, at))
+            current = []
+        current.append(t)
+    if current:
+        runs.append(_group_run(current, at))
+    return runs
+
+
+def _group_run(times: list[int], at: dict[int, dict[str, FlaggedInterval]]) -> GroupRun:
+    dets = sorted({d for t in times for d in at[t]})
+    expected = float(sum(r.expected or 0 for t in times for r in at[t].values()))
+    log_p = float(min(r.log_p for t in times for r in at[t].values()))
+    return times[0], times[-1], dets, expected, log_p
+
+
+# ----------------------------------------------------------------------------- causes
+
+
+def cause_for(kind: str, *, others: Sequence[str], neighbour_kinds: dict[str, set[str]]) -> str:
+    """Likely cause of an episode from what the detector's group neighbours show meanwhile.
+
+    ``traffic``: at least one neighbour deviates the same way at the same time (several
+    detectors of one group together point to traffic). ``detector``: the neighbours look
+    normal. ``communications``: missing data, or values frozen on several detectors at once
+    (a stuck controller or polling fault). ``unknown``: no neighbours to compare."""
+    if kind == "no_data":
+        return "communications"
+    if not others:
+        return "unknown"
+    if kind == "repeated_value":  # frozen together: the controller or its polling, not a loop
+        together = any("repeated_value" in neighbour_kinds.get(o, set()) for o in others)
+        return "communications" if together else "detector"
+    if kind == "over_capacity":
+        return "detector"
+    same = LOW_KINDS if kind in LOW_KINDS else frozenset({"high_volume", "over_capacity"})
+    if any(neighbour_kinds.get(o, set()) & same for o in others):
+        return "traffic"
+    return "detector"
+
+
+# ----------------------------------------------------------------------------- text
+
+
+def _duration(seconds: int) -> str:
+    minutes = max(1, round(seconds / 60))
+    if minutes < 60:
+        return f"{minutes} min"
+    hours, rest = divmod(minutes, 60)
+    if hours < 48:
+        return f"{hours} h {rest:02d} min" if rest else f"{hours} h"
+    return f"{hours / 24:.1f} days"
+
+
+def _local(t: int, tz: str, fmt: str) -> str:
+    return datetime.fromtimestamp(t, ZoneInfo(tz)).strftime(fmt)
+
+
+def _when(start_s: int, span_end_s: int, timezone: str) -> str:
+    """The episode's local time span: a range within a day, else where it started."""
+    if span_end_s - start_s < 86_400:
+        return f"{_local(start_s, timezone, '%a %H:%M')}–{_local(span_end_s, timezone, '%H:%M')}"
+    return f"from {_local(start_s, timezone, '%a %m-%d %H:%M')}"
+
+
+def _cause_tail(cause: str, group: str | None) -> str:
+    return {
+        "detector": "likely a detector fault",
+        "traffic": f"neighbours in {group} deviate too — likely a traffic event",
+        "communications": "likely a communications loss",
+        "unknown": "cause unknown (no neighbours to compare)",
+    }[cause]
+
+
+def summary_sentence(ep: Episode, cause: str, *, interval_s: int, timezone: str,
+                     label: str | None = None, group: str | None = None,
+                     members: Sequence[str] = ()) -> str:
+    """One sentence a person can read on a phone."""
+    span_end = ep.end_s + interval_s
+    when = _when(ep.start_s, span_end, timezone)
+    length = _duration(span_end - ep.start_s)
+    where = label or ep.detector_id or f"group {group}"
+    tail = _cause_tail(cause, group)
+    if ep.kind == "no_data":
+        return _no_data_sentence(ep, where=where, length=length, when=when, tail=tail,
+                                 interval_s=interval_s, group=group, members=members)
+    return _count_sentence(ep, cause, where=where, length=length, when=when, tail=tail)
+
+
+def _no_data_sentence(ep: Episode, *, where: str, length: str, when: str, tail: str,
+                      interval_s: int, group: str | None, members: Sequence[str]) -> str:
+    if ep.detector_id is None:
+        return (f"No reports from {len(members)} detectors of {group} for {length} ({when} "
+                f"local) — likely a controller or communications loss.")
+    if ep.n_intervals * interval_s < ep.end_s + interval_s - ep.start_s:
+        return (f"{where}: intermittent reporting, {ep.n_intervals} intervals missing over "
+                f"{length} ({when} local) — {tail}.")
+    return f"{where}: no reports for {length} ({when} local) — {tail}."
+
+
+def _count_sentence(ep: Episode, cause: str, *, where: str, length: str, when: str,
+                    tail: str) -> str:
+    observed, expected = ep.observed or 0.0, ep.expected
+    if ep.kind == "no_counts":
+        what = "dead loop or card" if cause == "detector" else "closure or blockage"
+        return (f"{where}: counted 0 vehicles for {length} ({when} local) where about "
+                f"{expected:,.0f} were expected — {tail} ({what}).")
+    if ep.kind == "low_volume":
+        share = observed / expected if expected else 0.0
+        return (f"{where}: counted {observed:,.0f} vehicles in {length} ({when} local), "
+                f"{share:.0%} of the {expected:,.0f} expected — {tail}.")
+    if ep.kind == "high_volume":
+        ratio = observed / expected if expected else float("inf")
+        what = " (chattering or double counting)" if cause == "detector" else ""
+        return (f"{where}: counted {observed:,.0f} vehicles in {length} ({when} local), "
+                f"{ratio:.1f}× the {expected:,.0f} expected — {tail}{what}.")
+    if ep.kind == "over_capacity":
+        return (f"{where}: counted {observed:,.0f} vehicles in {length} ({when} local), more than "
+                f"its lanes can carry — physically implausible, likely double counting.")
+    return (f"{where}: the same count repeated {ep.n_intervals} times ({when} local) — likely "
+            f"a frozen controller or stuck detector.")

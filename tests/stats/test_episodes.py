@@ -1,0 +1,162 @@
+"""Alert episodes from flagged intervals, their likely cause and summary: pure, no database."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import pytest
+
+from service.stats.episodes import (
+    NO_DATA_REOPEN_S,
+    Episode,
+    cause_for,
+    communications_runs,
+    episodes_from_rows,
+    summary_sentence,
+)
+
+STEP = 300  # five-minute intervals
+T0 = 1_767_225_600  # 2026-01-01T00:00:00Z, a Thursday
+DET = "det-1"
+
+
+@dataclass(frozen=True)
+class Flag:
+    detector_id: str
+    kind: str
+    start_s: int
+    log_p: float = -5.0
+    observed: float | None = 0.0
+    expected: float | None = 10.0
+
+
+def flags(kind: str, indexes: list[int], *, detector_id: str = DET, **values: float) -> list[Flag]:
+    return [Flag(detector_id, kind, T0 + i * STEP, **values) for i in indexes]
+
+
+def episodes(rows: list[Flag], *, scored_through: int = 1000, close_after: int = 3
+             ) -> list[Episode]:
+    return episodes_from_rows(DET, rows, interval_s=STEP, scored_end_s=T0 + scored_through * STEP,
+                              close_after=close_after)
+
+
+def test_gap_shorter_than_close_after_keeps_one_episode() -> None:
+    """Two unflagged intervals between flags, with close_after 3, do not split the episode."""
+    (ep,) = episodes(flags("low_volume", [0, 1, 4, 5]))
+    assert (ep.start_s, ep.end_s, ep.n_intervals) == (T0, T0 + 5 * STEP, 4)
+
+
+def test_gap_of_close_after_intervals_splits_episodes() -> None:
+    """Three unflagged intervals with close_after 3 end the first episode; the next flag opens
+    a second one."""
+    first, second = episodes(flags("low_volume", [0, 1, 5]))
+    assert (first.start_s, first.end_s, first.status) == (T0, T0 + STEP, "closed")
+    assert first.closed_s == T0 + (1 + 3) * STEP
+    assert second.start_s == second.end_s == T0 + 5 * STEP
+
+
+def test_episode_stays_open_until_close_after_intervals_are_scored() -> None:
+    """Closed only once close_after unflagged intervals after its last flag have been scored."""
+    rows = flags("no_counts", [10, 11])
+    (still_open,) = episodes(rows, scored_through=11 + 3)
+    (closed,) = episodes(rows, scored_through=11 + 4)
+    assert still_open.status == "open" and still_open.closed_s is None
+    assert closed.status == "closed" and closed.closed_s == T0 + (11 + 3) * STEP
+
+
+def test_episode_sums_counts_and_keeps_strongest_log_p() -> None:
+    """Observed and expected add up over the episode's intervals; log_p is the smallest."""
+    rows = [Flag(DET, "high_volume", T0, log_p=-4.0, observed=30.0, expected=10.0),
+            Flag(DET, "high_volume", T0 + STEP, log_p=-9.0, observed=40.0, expected=12.0)]
+    (ep,) = episodes(rows)
+    assert (ep.observed, ep.expected, ep.log_p) == (70.0, 22.0, -9.0)
+    assert ep.subject == ep.detector_id == DET and ep.kind == "high_volume"
+
+
+def test_kinds_form_separate_episodes() -> None:
+    """Flags of different kinds on the same intervals are episodes of their own."""
+    got = episodes(flags("no_counts", [0, 1]) + flags("repeated_value", [0, 1]))
+    assert sorted(ep.kind for ep in got) == ["no_counts", "repeated_value"]
+
+
+def test_missing_data_closes_as_soon_as_data_returns() -> None:
+    """A no_data episode closes one interval after its last missing interval, not close_after."""
+    (ep,) = episodes(flags("no_data", [0, 1], observed=None), scored_through=3)
+    assert ep.status == "closed" and ep.closed_s == T0 + 2 * STEP and ep.observed is None
+
+
+def test_intermittent_reporting_within_reopen_window_is_one_episode() -> None:
+    """Gaps less than NO_DATA_REOPEN_S apart reopen the same missing-data episode."""
+    within = NO_DATA_REOPEN_S // STEP - 1  # unflagged intervals between the two gaps
+    (ep,) = episodes(flags("no_data", [0, within + 1], observed=None))
+    assert ep.n_intervals == 2 and ep.end_s == T0 + (within + 1) * STEP
+
+
+def test_missing_data_gaps_further_apart_are_two_episodes() -> None:
+    """Gaps NO_DATA_REOPEN_S or more apart are separate missing-data episodes."""
+    apart = NO_DATA_REOPEN_S // STEP  # unflagged intervals between the two gaps
+    assert len(episodes(flags("no_data", [0, apart + 1], observed=None))) == 2
+
+
+def test_rows_out_of_order_give_the_same_episodes() -> None:
+    """Row order within a kind does not matter."""
+    rows = flags("low_volume", [0, 1, 2, 9, 10])
+    assert episodes(rows[::-1]) == episodes(rows)
+
+
+@pytest.mark.parametrize(("kind", "neighbours", "cause"), [
+    ("no_data", {}, "communications"),
+    ("low_volume", None, "unknown"),
+    ("low_volume", {"n1": {"no_counts"}}, "traffic"),
+    ("no_counts", {"n1": {"high_volume"}}, "detector"),
+    ("high_volume", {"n1": {"over_capacity"}}, "traffic"),
+    ("high_volume", {}, "detector"),
+    ("over_capacity", {"n1": {"high_volume"}}, "detector"),
+    ("repeated_value", {"n1": {"repeated_value"}}, "communications"),
+    ("repeated_value", {"n1": {"low_volume"}}, "detector"),
+])
+def test_cause_follows_what_the_neighbours_show(kind: str, neighbours: dict[str, set[str]] | None,
+                                                cause: str) -> None:
+    """Same-direction deviation on a neighbour means traffic, normal neighbours a detector
+    fault, missing data or values frozen together communications, no neighbours unknown."""
+    others = [] if neighbours is None else ["n1", "n2"]
+    assert cause_for(kind, others=others, neighbour_kinds=neighbours or {}) == cause
+
+
+def test_communications_runs_need_most_of_the_group_missing_together() -> None:
+    """Two of three members missing together form a run; one alone does not; a gap of more
+    than one interval ends the run."""
+    rows = (flags("no_data", [0, 1, 2, 6], detector_id="a", observed=None)
+            + flags("no_data", [0, 1, 6], detector_id="b", observed=None)
+            + flags("no_data", [5], detector_id="c", observed=None))
+    runs = communications_runs(rows, n_members=3, step=STEP)
+    assert [(r[0], r[1], r[2]) for r in runs] == [(T0, T0 + STEP, ["a", "b"]),
+                                                  (T0 + 6 * STEP, T0 + 6 * STEP, ["a", "b"])]
+    assert runs[0][3] == 40.0 and runs[0][4] == -5.0
+
+
+def test_summary_names_a_dead_detector_fault() -> None:
+    """A no_counts episode blamed on the detector reads as a dead loop with the local time."""
+    ep = Episode(subject=DET, detector_id=DET, kind="no_counts", start_s=T0, end_s=T0 + 11 * STEP,
+                 closed_s=None, n_intervals=12, observed=0.0, expected=240.0, log_p=-30.0)
+    text = summary_sentence(ep, "detector", interval_s=STEP, timezone="UTC", label="Main St NB")
+    assert text == ("Main St NB: counted 0 vehicles for 1 h (Thu 00:00–01:00 local) where about "
+                    "240 were expected — likely a detector fault (dead loop or card).")
+
+
+def test_summary_calls_gappy_missing_data_intermittent() -> None:
+    """A missing-data episode with reported intervals inside reads as intermittent reporting."""
+    ep = Episode(subject=DET, detector_id=DET, kind="no_data", start_s=T0, end_s=T0 + 5 * STEP,
+                 closed_s=T0 + 6 * STEP, n_intervals=2, observed=None, expected=20.0, log_p=-8.0)
+    text = summary_sentence(ep, "communications", interval_s=STEP, timezone="UTC")
+    assert text.startswith(f"{DET}: intermittent reporting, 2 intervals missing over 30 min")
+
+
+def test_summary_of_group_outage_counts_its_members() -> None:
+    """A group's missing-data episode names the group and how many detectors went silent."""
+    ep = Episode(subject="group:g1", detector_id=None, kind="no_data", start_s=T0,
+                 end_s=T0 + 3 * STEP, closed_s=None, n_intervals=4, observed=None, expected=0.0,
+                 log_p=-8.0)
+    text = summary_sentence(ep, "communications", interval_s=STEP, timezone="UTC", group="g1",
+                            members=["a", "b", "c"])
+    assert text.startswith("No reports from 3 detectors of g1 for 20 min")
