@@ -195,12 +195,13 @@ def cmd_fit(args: argparse.Namespace, settings: Settings) -> int:
 
 
 def cmd_score(args: argparse.Namespace, settings: Settings) -> int:
-    from service.pipeline.score import score_pass
+    from service.pipeline.score import ScoringCache, score_pass
 
     engine = _engine(settings)
+    cache = ScoringCache()  # baselines parsed once for the life of this command
     total = 0
     while True:
-        n = score_pass(engine, settings)
+        n = score_pass(engine, settings, cache=cache)
         total += n
         if n == 0:
             if not args.loop:
