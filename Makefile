@@ -39,12 +39,13 @@ contract: $(STAMP)
 bench: $(STAMP)
 	$(BIN)/python bench/bench.py
 
-# ruff, then the import contracts of pyproject.toml ([tool.importlinter]: the layers' direction).
+# ruff, the import contracts of pyproject.toml ([tool.importlinter]: the layers' direction),
+# then mypy on service/stats and service/store ([tool.mypy]).
 lint: $(STAMP)
-	$(BIN)/ruff check service tests bench
+	$(BIN)/ruff check service tests bench migrations
 	$(BIN)/lint-imports
+	$(BIN)/mypy
 
-# mypy on service/stats and service/store ([tool.mypy]); not yet part of `lint`.
 typecheck: $(STAMP)
 	$(BIN)/mypy
 

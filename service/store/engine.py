@@ -57,7 +57,7 @@ def _pg_timeouts(engine: Engine, settings: Settings) -> None:
     lock_ms = int(settings.db_lock_timeout_s * 1000)
 
     @event.listens_for(engine, "connect")
-    def _set_timeouts(dbapi_conn, _record):  # type: ignore[no-untyped-def]
+    def _set_timeouts(dbapi_conn, _record):
         # Session settings, set outside any transaction so that a rollback keeps them.
         autocommit = dbapi_conn.autocommit
         dbapi_conn.autocommit = True
@@ -79,7 +79,7 @@ def make_engine(settings: Settings) -> Engine:
         )
 
         @event.listens_for(engine, "connect")
-        def _sqlite_pragmas(dbapi_conn, _record):  # type: ignore[no-untyped-def]
+        def _sqlite_pragmas(dbapi_conn, _record):
             cur = dbapi_conn.cursor()
             cur.execute("PRAGMA journal_mode=WAL")
             cur.execute("PRAGMA synchronous=NORMAL")

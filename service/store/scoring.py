@@ -100,7 +100,7 @@ def claim(engine: Engine, settings: Settings, *, limit: int = 64) -> tuple[list[
     s, d = models.detector_state, models.detectors
     now = time.time()
 
-    def due_query(clock: float):  # type: ignore[no-untyped-def]
+    def due_query(clock: float):
         due = or_(s.c.dirty_from_s.is_not(None), s.c.claimed_from_s.is_not(None),
                   s.c.scored_through_s.is_(None),
                   s.c.scored_through_s + d.c.interval_s + settings.missing_grace_s <= clock)
@@ -140,7 +140,7 @@ MIN_INTERVAL_S = 60  # the detectors table's smallest allowed interval_s
 ANY_TIME = -(2**62)
 
 
-def _due_by_clock(clock: float, settings: Settings):  # type: ignore[no-untyped-def]
+def _due_by_clock(clock: float, settings: Settings):
     """Conditions on detector_state joined to detectors: scored intervals lag the clock.
 
     The first term only narrows the range so that the scored_through_s index is used."""
@@ -149,7 +149,7 @@ def _due_by_clock(clock: float, settings: Settings):  # type: ignore[no-untyped-
             s.c.scored_through_s + d.c.interval_s + settings.missing_grace_s <= clock)
 
 
-def _backlog_query(clock: float, settings: Settings):  # type: ignore[no-untyped-def]
+def _backlog_query(clock: float, settings: Settings):
     """Count of detectors with scoring work waiting (those waiting for a retry included).
 
     A sum over disjoint cases, each an index range (``+ 0`` keeps a planner off the index of
@@ -166,7 +166,7 @@ def _backlog_query(clock: float, settings: Settings):  # type: ignore[no-untyped
         select(func.count()).select_from(s).join(d, d.c.detector_id == s.c.detector_id)
         .where(has_baseline, not_dirty, not_claimed, *_due_by_clock(clock, settings)),
     )
-    total = cases[0].scalar_subquery()
+    total: Any = cases[0].scalar_subquery()
     for case_ in cases[1:]:
         total = total + case_.scalar_subquery()
     return select(total)
@@ -347,7 +347,7 @@ def evidence_rows(conn: Connection, detector_ids: Sequence[str], lo: int, hi: in
                        e.c.start_s < hi)
     if kinds is not None:
         q = q.where(e.c.kind.in_(list(kinds)))
-    return conn.execute(q.order_by(e.c.detector_id, e.c.kind, e.c.start_s)).all()
+    return list(conn.execute(q.order_by(e.c.detector_id, e.c.kind, e.c.start_s)).all())
 
 
 def neighbour_kinds(conn: Connection, others: Sequence[str], lo: int, hi: int
@@ -488,7 +488,7 @@ def alerts_from(conn: Connection, subject: str, lo: int, *, kind: str | None = N
     q = select(a).where(a.c.subject == subject, a.c.start_s >= lo)
     if kind is not None:
         q = q.where(a.c.kind == kind)
-    return conn.execute(q).all()
+    return list(conn.execute(q).all())
 
 
 def earliest_alert_ending_after(conn: Connection, subject: str, after_s: int) -> int | None:
@@ -501,6 +501,6 @@ def earliest_alert_ending_after(conn: Connection, subject: str, after_s: int) ->
 def group_detector_alerts(conn: Connection, group: str, lo: int, hi: int) -> list[Any]:
     """Live alerts of the group's detectors ending at ``lo`` or later and starting before ``hi``."""
     a = models.alerts
-    return conn.execute(select(a).where(
+    return list(conn.execute(select(a).where(
         a.c.group_id == group, a.c.detector_id.is_not(None), a.c.withdrawn == 0,
-        a.c.end_s >= lo, a.c.start_s < hi)).all()
+        a.c.end_s >= lo, a.c.start_s < hi)).all())
