@@ -92,6 +92,8 @@ import numpy as np
 from scipy import optimize, special, stats
 from scipy.linalg import lapack
 
+from service.domain import INTERVAL_RULE_TEXT, interval_ok
+
 __all__ = [
     "DAY_TYPES",
     "Baseline",
@@ -161,11 +163,8 @@ def _check_interval(interval_s: Any) -> int:
     if isinstance(interval_s, bool) or not isinstance(interval_s, int | np.integer):
         raise ValueError(f"interval_s must be an integer number of seconds, got {interval_s!r}")
     interval_s = int(interval_s)
-    if interval_s <= 0 or 3600 % interval_s:
-        raise ValueError(
-            "interval_s must divide one hour (3600 s) exactly, e.g. 60, 300 or 900; "
-            f"got {interval_s}"
-        )
+    if not interval_ok(interval_s):
+        raise ValueError(f"interval_s must be {INTERVAL_RULE_TEXT}; got {interval_s}")
     return interval_s
 
 

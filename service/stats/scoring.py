@@ -71,6 +71,8 @@ from typing import Any
 import numpy as np
 from scipy import special
 
+from service.domain import INTERVAL_RULE_TEXT, interval_ok
+
 __all__ = [
     "KINDS",
     "Evidence",
@@ -979,8 +981,8 @@ class Thresholds:
             raise ValueError("false_alerts_per_week must be positive")
         if not 0 <= level_guard_s <= level_memory_s <= level_memory_max_s:
             raise ValueError("need 0 <= level_guard_s <= level_memory_s <= level_memory_max_s")
-        if interval_s <= 0 or SECONDS_PER_WEEK % interval_s:
-            raise ValueError("interval_s must divide a week")
+        if not interval_ok(int(interval_s)):
+            raise ValueError(f"interval_s must be {INTERVAL_RULE_TEXT}; got {interval_s}")
         sh = dict(DEFAULT_SHARES if shares is None else shares)
         if set(sh) != set(DEFAULT_SHARES) or abs(sum(sh.values()) - 1.0) > 1e-9:
             raise ValueError(f"shares must give {sorted(DEFAULT_SHARES)} summing to 1")

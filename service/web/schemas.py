@@ -2,41 +2,18 @@
 
 from __future__ import annotations
 
-import re
 from functools import lru_cache
 from typing import Any, Literal
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
-from service.domain import CONTROL_CHARACTERS
-
-DETECTOR_ID_PATTERN = r"^[A-Za-z0-9][A-Za-z0-9._:\-]{0,63}$"
-DETECTOR_ID_RULE = "1-64 characters: letters, digits and . _ : - , starting with a letter or digit"
-_ID = re.compile(DETECTOR_ID_PATTERN)
-
-
-def control_character_error(text: str) -> str | None:
-    """A message naming the first control character of ``text``, or None when it has none."""
-    bad = CONTROL_CHARACTERS.search(text)
-    if bad is None:
-        return None
-    return (f"holds the control character U+{ord(bad.group()):04X} at position {bad.start() + 1}; "
-            "text fields take printable characters only (no NUL, tab or line break)")
-
-
-def detector_id_error(detector_id: str) -> str | None:
-    """What is wrong with a detector id (named ``detector_id`` in the message), or None."""
-    if _ID.fullmatch(detector_id):  # fullmatch: "$" alone would let a trailing newline through
-        return None
-    bad = CONTROL_CHARACTERS.search(detector_id)
-    if bad is not None:
-        return (f"detector_id holds the control character U+{ord(bad.group()):04X} at position "
-                f"{bad.start() + 1}; ids are {DETECTOR_ID_RULE}")
-    if len(detector_id) > 64:
-        return f"detector_id is {len(detector_id):,} characters long; ids are {DETECTOR_ID_RULE}"
-    shown = repr(detector_id[:64])
-    return f"detector_id {shown} is not a valid id; ids are {DETECTOR_ID_RULE}"
+from service.domain import (
+    INTERVAL_RULE_TEXT,
+    ROAD_CLASSES,
+    control_character_error,
+    interval_error,
+)
 
 
 class GeoPoint(BaseModel):
@@ -78,12 +55,12 @@ def _holiday_calendar_ok(code: str) -> str | None:
 class DetectorCreate(BaseModel):
     model_config = ConfigDict(extra="forbid", populate_by_name=True)
 
-    interval_s: int = Field(description="Reporting interval in seconds: 60..3600 and a divisor of 86400.")
+    interval_s: int = Field(description=f"Reporting interval in seconds: {INTERVAL_RULE_TEXT}.")
     lanes: int = Field(1, ge=1, le=16, description="Lanes the detector covers.")
     timezone: str = Field(description="IANA time zone of the site, e.g. America/Chicago.")
     group: str | None = Field(None, max_length=64, description="Site, approach or corridor segment.")
     label: str | None = Field(None, max_length=200)
-    road_class: Literal["freeway", "arterial", "local"] = "arterial"
+    road_class: Literal[ROAD_CLASSES] = "arterial"  # type: ignore[valid-type]
     holiday_calendar: str | None = Field(
         None, max_length=16, description="Country[-subdivision] code for the holidays library, e.g. US or US-CO."
     )
@@ -104,9 +81,9 @@ class DetectorCreate(BaseModel):
     @field_validator("interval_s")
     @classmethod
     def _interval(cls, value: int) -> int:
-        if not 60 <= value <= 3600 or 86400 % value:
-            raise ValueError("interval_s must be 60..3600 seconds and divide 86400 "
-                             "(e.g. 60, 300, 900, 3600)")
+        problem = interval_error(value)
+        if problem:
+            raise ValueError(problem)
         return value
 
     @field_validator("timezone")

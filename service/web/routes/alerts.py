@@ -12,14 +12,13 @@ from fastapi import APIRouter, Path, Query, Request, Response
 from pydantic import AfterValidator, BaseModel, Field
 from sqlalchemy import Connection, func, select
 
-from service.domain import INT32_MAX, INT64_MAX, plain_text, prose
+from service.domain import DETECTOR_ID_PATTERN, INT32_MAX, INT64_MAX, plain_text, prose
 from service.errors import NotFound, ValidationFailed
 from service.pipeline.score import KINDS, next_seqs
 from service.store import tables as models
 from service.store.engine import read_transaction, write_transaction
 from service.timefmt import format_utc
 from service.web.deps import EngineDep, OperateDep, ReadDep, SettingsDep
-from service.web.schemas import DETECTOR_ID_PATTERN
 
 router = APIRouter(prefix="/v1/alerts", tags=["alerts"])
 LN10 = math.log(10.0)

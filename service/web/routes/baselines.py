@@ -14,6 +14,7 @@ from fastapi.concurrency import run_in_threadpool
 from pydantic import BaseModel, Field
 from sqlalchemy import select
 
+from service.domain import DETECTOR_ID_PATTERN
 from service.errors import NotFound, ValidationFailed
 from service.pipeline import fit as fitting
 from service.pipeline.score import load_baseline
@@ -22,7 +23,6 @@ from service.store import tables as models
 from service.store.engine import read_transaction
 from service.timefmt import format_utc, parse_rfc3339
 from service.web.deps import AdminDep, EngineDep, ReadDep, SettingsDep
-from service.web.schemas import DETECTOR_ID_PATTERN
 
 router = APIRouter(prefix="/v1", tags=["baselines"])
 DetectorId = Annotated[str, Path(pattern=DETECTOR_ID_PATTERN)]
