@@ -3,16 +3,29 @@
 from __future__ import annotations
 
 from functools import lru_cache
-from typing import Any, Literal
+from typing import Annotated, Any, Literal
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
-from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
+from pydantic import (
+    AfterValidator,
+    BaseModel,
+    ConfigDict,
+    Field,
+    field_validator,
+    model_validator,
+)
 
 from service.domain import (
+    ALERT_STATUSES,
+    CAUSES,
+    DAY_TYPES,
     INTERVAL_RULE_TEXT,
+    KINDS,
     ROAD_CLASSES,
     control_character_error,
     interval_error,
+    plain_text,
+    prose,
 )
 
 
@@ -137,3 +150,174 @@ class FeatureIn(BaseModel):
         if self.id is None and "detector_id" not in self.properties:
             raise ValueError("a Feature needs an id or a detector_id property")
         return self
+
+
+# ---------------------------------------------------------------------------- baselines
+
+
+class FitRequest(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+    detector_ids: list[str] | None = Field(None, description="Default: every detector.")
+    as_of: str | None = Field(None, description="RFC 3339 end of the history window; default: "
+                                                "just after the latest stored count.")
+
+
+class FitOutcome(BaseModel):
+    detector_id: str
+    status: Literal["fitted", "insufficient_history", "failed"]
+    reason: str | None = Field(description="Why the fit did not happen, when it did not.")
+    baseline_id: int | None = Field(description="The stored baseline, when fitted.")
+
+
+class FitResult(BaseModel):
+    seconds: float = Field(description="Wall time the fits took.")
+    data: list[FitOutcome]
+
+
+class TimeWindow(BaseModel):
+    start: str
+    end: str
+
+
+class BaselineModel(BaseModel):
+    """The fitted profile a baseline day is served from."""
+
+    baseline_id: int
+    fitted_at: str
+    window: TimeWindow = Field(description="History window of the fit (RFC 3339, UTC).")
+    day_type: Literal[DAY_TYPES]  # type: ignore[valid-type]
+    fitted_from: str = Field(description="Day type whose days the profile was fitted from.")
+    fallback: bool = Field(description="True when fitted from another day type (too few days).")
+    distribution: str = Field(description="'poisson' or 'negative_binomial'.")
+    day_alpha: float
+    interval_alpha: float
+    dispersion_p_value: float | None
+    days_used: int
+
+
+class BaselinePoint(BaseModel):
+    start: str = Field(description="Local interval start: RFC 3339 for a date, HH:MM for a "
+                                   "day type.")
+    expected: float = Field(description="Expected vehicles in the interval.")
+    low: int = Field(description="Lower end of the predictive interval (vehicles).")
+    high: int = Field(description="Upper end of the predictive interval (vehicles).")
+
+
+class BaselineDay(BaseModel):
+    detector_id: str
+    date: str | None = Field(description="The local date asked for, or null for a day type.")
+    day_type: Literal[DAY_TYPES]  # type: ignore[valid-type]
+    level: float = Field(description="Central predictive interval level.")
+    interval_s: int
+    model: BaselineModel
+    expected_total: float = Field(description="Expected vehicles over the whole local day.")
+    data: list[BaselinePoint]
+
+
+class BaselineProfile(BaseModel):
+    detector_id: str
+    lanes: int
+    baseline_id: int
+    fitted_at: str
+    fit: dict[str, Any] = Field(description="What the fit found (per day type: days used, "
+                                            "distribution, fallback).")
+    day_types: dict[str, Any] = Field(description="Per day type: expected daily volume, hourly "
+                                                  "volumes, peak hour and K-factor.")
+
+
+# ---------------------------------------------------------------------------- counts
+
+
+class CountPublic(BaseModel):
+    start: str = Field(description="RFC 3339 interval start (UTC).")
+    count: int
+
+
+class CountsPage(BaseModel):
+    detector_id: str
+    data: list[CountPublic]
+    next_from: str | None = Field(description="Ask for this start next (as `from`); null at the "
+                                              "end.")
+
+
+class ConflictPublic(BaseModel):
+    id: int
+    detector_id: str
+    start: str
+    stored: int = Field(description="The count kept.")
+    offered: int = Field(description="The differing count offered later.")
+    received: str = Field(description="When the differing count was offered.")
+
+
+class ConflictsPage(BaseModel):
+    data: list[ConflictPublic]
+    next_after: int = Field(description="Ask for conflicts after this id next.")
+
+
+# ---------------------------------------------------------------------------- alerts
+
+
+class Acknowledgement(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+    by: Annotated[str, Field(min_length=1, max_length=100), AfterValidator(plain_text)] = Field(
+        description="Who acknowledges (name or desk); no control characters.")
+    note: Annotated[str | None, Field(max_length=2000), AfterValidator(prose)] = Field(
+        None, description="Free text; may hold tabs and line breaks, no other control characters.")
+
+
+class AcknowledgementPublic(BaseModel):
+    by: str
+    at: str
+    note: str | None
+
+
+class AlertPublic(BaseModel):
+    id: int
+    seq: int = Field(description="Change sequence number: raised on every change of the alert.")
+    detector_id: str | None = Field(description="Null for a group alert.")
+    group: str | None
+    kind: Literal[KINDS]  # type: ignore[valid-type]
+    cause: Literal[CAUSES]  # type: ignore[valid-type]
+    status: Literal[ALERT_STATUSES]  # type: ignore[valid-type]
+    withdrawn: bool
+    start: str
+    end: str = Field(description="End of the last interval of the episode.")
+    closed_at: str | None
+    intervals: int
+    observed: float | None
+    expected: float | None
+    p_value: float | None
+    score: float | None = Field(description="-log10(p_value).")
+    baseline_id: int | None
+    summary: str
+    detectors: list[str] | None = Field(description="Members, for a group alert.")
+    acknowledged: AcknowledgementPublic | None
+
+
+class AlertsPage(BaseModel):
+    data: list[AlertPublic]
+    next_after: int = Field(description="Poll again with after=next_after.")
+
+
+class HealthWindow(BaseModel):
+    model_config = ConfigDict(populate_by_name=True)
+    from_: str = Field(alias="from")
+    until: str
+    intervals: int = Field(description="Intervals the detector should have reported.")
+    reported: int
+    completeness: float
+    flagged_share: float
+
+
+class OpenAlertRef(BaseModel):
+    id: int
+    kind: Literal[KINDS]  # type: ignore[valid-type]
+    start: str
+
+
+class DetectorHealth(BaseModel):
+    detector_id: str
+    clock: Literal["wall", "data"]
+    last_24h: HealthWindow
+    last_7d: HealthWindow
+    open_alerts: list[OpenAlertRef]
