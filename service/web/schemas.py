@@ -164,7 +164,7 @@ class FitRequest(BaseModel):
 
 class FitOutcome(BaseModel):
     detector_id: str
-    status: Literal["fitted", "insufficient_history", "failed"]
+    status: str = Field(description="'fitted', 'insufficient_history' or 'failed'.")
     reason: str | None = Field(description="Why the fit did not happen, when it did not.")
     baseline_id: int | None = Field(description="The stored baseline, when fitted.")
 
