@@ -34,6 +34,7 @@ import orjson
 from sqlalchemy import Connection, Engine, select
 from sqlalchemy.exc import DBAPIError, OperationalError
 
+from service.domain import DETECTOR_ID_PATTERN, detector_id_error
 from service.errors import (
     BadRequest,
     PayloadTooLarge,
@@ -44,7 +45,6 @@ from service.errors import (
 from service.store import tables as models
 from service.store.engine import write_transaction
 from service.timefmt import LocalOffsets, format_utc, parse_interval_start, shown
-from service.web.schemas import DETECTOR_ID_PATTERN, detector_id_error
 
 MAX_COUNT = 1_000_000  # no detector interval can hold a million vehicles; larger is a data error
 MAX_COUNT_DIGITS = 20  # a longer digit string is refused before int() ever sees it

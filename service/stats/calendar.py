@@ -16,6 +16,7 @@ from zoneinfo import ZoneInfo
 import holidays
 import numpy as np
 
+from service.domain import DAY_TYPES, INTERVAL_RULE_TEXT, interval_ok
 from service.timefmt import SECONDS_PER_DAY, offset_segments, offsets_from_segments
 
 __all__ = [
@@ -34,7 +35,7 @@ __all__ = [
     "time_zone",
 ]
 
-DAY_TYPES = ("weekday", "saturday", "sunday_holiday")  # codes 0, 1, 2
+# DAY_TYPES (service.domain) names the day-type codes 0, 1, 2
 WEEKDAY, SATURDAY, SUNDAY_HOLIDAY = 0, 1, 2
 _UNIX_EPOCH_ORDINAL = date(1970, 1, 1).toordinal()
 _GRID_CHUNK = 1 << 16
@@ -60,15 +61,13 @@ class TimeGrid:
 
 
 def check_interval_s(interval_s: Any) -> int:
-    """``interval_s`` as an int, or ValueError unless it is whole seconds dividing an hour."""
+    """``interval_s`` as an int, or ValueError unless it meets the one interval rule
+    (:func:`service.domain.interval_ok`)."""
     if isinstance(interval_s, bool) or not isinstance(interval_s, int | np.integer):
         raise ValueError(f"interval_s must be an integer number of seconds, got {interval_s!r}")
     interval_s = int(interval_s)
-    if interval_s <= 0 or 3600 % interval_s:
-        raise ValueError(
-            "interval_s must divide one hour (3600 s) exactly, e.g. 60, 300 or 900; "
-            f"got {interval_s}"
-        )
+    if not interval_ok(interval_s):
+        raise ValueError(f"interval_s must be {INTERVAL_RULE_TEXT}; got {interval_s}")
     return interval_s
 
 

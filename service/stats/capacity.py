@@ -7,13 +7,14 @@ from __future__ import annotations
 
 import math
 
+from service.domain import BASE_CAPACITY_PER_LANE_H
+
 __all__ = ["BASE_CAPACITY_PER_LANE_H", "CAPACITY_MARGIN", "capacity_cap"]
 
 # Highway Capacity Manual base capacities (from memory): basic freeway segment 2,400 pc/h/ln
 # (HCM 2000 table, free-flow speed >= 70 mph; HCM 6th ed. c = 2,200 + 10 (FFS - 50) capped at
 # 2,400); base saturation flow at a signalized approach 1,900 pc/h/ln. Local roads take the
 # signalized figure (their flow is governed by intersections).
-BASE_CAPACITY_PER_LANE_H = {"freeway": 2400.0, "arterial": 1900.0, "local": 1900.0}
 # Headroom above the base capacity before a count is called physically implausible: heavy
 # vehicles count as more than one passenger car and short intervals see brief surges above a
 # 15-minute rate. 1.5 is common practice for a fault cap, not a published figure.

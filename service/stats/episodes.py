@@ -17,9 +17,7 @@ from typing import Protocol
 from zoneinfo import ZoneInfo
 
 # Trade facts (to move to ``service.domain`` when it names them).
-KINDS = ("no_counts", "low_volume", "high_volume", "over_capacity", "repeated_value", "no_data")
-LOW_KINDS = frozenset({"no_counts", "low_volume"})
-CAUSES = ("traffic", "detector", "communications", "unknown")
+LOW_KINDS = frozenset({"no_counts", "low_volume"})  # kinds that say traffic went missing
 NO_DATA_REOPEN_S = 2 * 3600  # gaps closer than this are one intermittent-reporting episode
 
 GroupRun = tuple[int, int, list[str], float, float]  # start, last start, members, expected, log p

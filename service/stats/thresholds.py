@@ -15,6 +15,7 @@ from typing import Any
 import numpy as np
 from scipy import stats
 
+from service.domain import INTERVAL_RULE_TEXT, interval_ok
 from service.stats.cusum import cusum_limit
 from service.stats.fixedpoint import FIX_SCALE, to_fixed
 from service.stats.tails import log_p_lower, log_p_upper, log_pmf, zero_run_log_p
@@ -353,8 +354,8 @@ def _check_calibration(f_total: float, *, interval_s: int, level_memory_s: float
         raise ValueError("false_alerts_per_week must be positive")
     if not 0 <= level_guard_s <= level_memory_s <= level_memory_max_s:
         raise ValueError("need 0 <= level_guard_s <= level_memory_s <= level_memory_max_s")
-    if interval_s <= 0 or SECONDS_PER_WEEK % interval_s:
-        raise ValueError("interval_s must divide a week")
+    if not interval_ok(int(interval_s)):
+        raise ValueError(f"interval_s must be {INTERVAL_RULE_TEXT}; got {interval_s}")
 
 
 def _checked_shares(shares: Mapping[str, float] | None) -> dict[str, float]:

@@ -70,6 +70,7 @@ from typing import Any
 
 import numpy as np
 
+from service.domain import KINDS
 from service.stats.cusum import CUSUM_CEILING, CUSUM_RELEASE, held_cusum, increment_terms
 from service.stats.fixedpoint import FIX_SCALE, segment_sums, to_fixed
 from service.stats.tails import log_pmf_flat, log_tails_flat, zero_run_log_p
@@ -77,7 +78,6 @@ from service.stats.thresholds import Thresholds, window_intervals
 
 __all__ = ["KINDS", "Evidence", "WarmState", "score_timeline"]
 
-KINDS = ("no_counts", "low_volume", "high_volume", "over_capacity", "repeated_value", "no_data")
 def _three(values: Iterable[int]) -> tuple[int, int, int]:
     """The three zero-run sums as a tuple (ValueError unless there are exactly three)."""
     a, b, c = values

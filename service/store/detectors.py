@@ -9,16 +9,12 @@ from pydantic import ValidationError
 from sqlalchemy import Connection, Engine, func, select
 from sqlalchemy.exc import DataError, IntegrityError
 
+from service.domain import control_character_error, detector_id_error
 from service.errors import BadRequest, NotFound, ValidationFailed
 from service.store import tables as models
 from service.store.engine import read_transaction, write_transaction
+from service.store.records import DetectorCreate, FeatureIn
 from service.timefmt import format_utc
-from service.web.schemas import (
-    DetectorCreate,
-    FeatureIn,
-    control_character_error,
-    detector_id_error,
-)
 
 
 def check_detector_id(detector_id: str) -> str:

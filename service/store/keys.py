@@ -1,13 +1,6 @@
 """API keys: created and revoked by the CLI, stored as SHA-256 hashes, checked in constant time.
 
-Roles and what they may do:
-
-=========  ===============================================================
-ingest     POST /v1/counts only (field controllers)
-read       every GET (dashboards)
-operate    read, plus acknowledging alerts
-admin      everything: detectors, keys, baseline fits, ingest
-=========  ===============================================================
+Roles and what each may do are ``service.domain.GRANTS``.
 """
 
 from __future__ import annotations
@@ -20,18 +13,12 @@ from dataclasses import dataclass
 
 from sqlalchemy import Engine, select, update
 
-from service.domain import plain_text
+from service.domain import GRANTS, plain_text
 from service.errors import NotFound, ValidationFailed
 from service.store import tables as models
 from service.store.engine import read_transaction, write_transaction
 
 KEY_PREFIX = "tw_"
-GRANTS: dict[str, frozenset[str]] = {
-    "ingest": frozenset({"ingest"}),
-    "read": frozenset({"read"}),
-    "operate": frozenset({"read", "operate"}),
-    "admin": frozenset({"read", "operate", "admin", "ingest"}),
-}
 
 
 @dataclass(frozen=True)

@@ -25,6 +25,7 @@ from sqlalchemy import Connection, Engine, case, delete, func, or_, select, upda
 
 from service.config import Settings
 from service.store import tables as models
+from service.store.alerts import next_seqs
 from service.store.engine import is_sqlite, read_transaction, write_transaction
 
 log = logging.getLogger("tallyward.scoring")
@@ -39,17 +40,6 @@ LAST_ERROR_CHARS = 300  # the detector_state.last_error column width
 # has waited longer than STALLED_AFTER_S (wall seconds) without being scored.
 DEGRADED_AFTER_FAILURES = 3
 STALLED_AFTER_S = 600.0
-
-
-# ----------------------------------------------------------------------------- sequence
-
-
-def next_seqs(conn: Connection, n: int) -> list[int]:
-    """Draw ``n`` alert sequence numbers; the counter row stays locked until commit."""
-    c = models.counters
-    top = conn.execute(update(c).where(c.c.name == "alert_seq").values(value=c.c.value + n)
-                       .returning(c.c.value)).scalar_one()
-    return list(range(top - n + 1, top + 1))
 
 
 def mark_dirty(conn: Connection, result: Any) -> None:

@@ -21,6 +21,8 @@ from sqlalchemy import (
     text,
 )
 
+from service.domain import INTERVAL_CHECK_SQL, ROAD_CLASSES, ROLES, sql_in
+
 NAMING = {
     "ix": "ix_%(table_name)s_%(column_0_N_name)s",
     "uq": "uq_%(table_name)s_%(column_0_N_name)s",
@@ -30,8 +32,8 @@ NAMING = {
 }
 metadata = MetaData(naming_convention=NAMING)
 
-ROAD_CLASSES = ("freeway", "arterial", "local")
-ROLES = ("ingest", "read", "operate", "admin")
+# Re-exported: the facts live in service.domain.
+__all__ = ["ROAD_CLASSES", "ROLES", "metadata"]
 
 detectors = Table(
     "detectors",
@@ -50,8 +52,9 @@ detectors = Table(
     Column("created_s", Float, nullable=False),
     Column("updated_s", Float, nullable=False),
     CheckConstraint("lanes >= 1", name="lanes_positive"),
-    CheckConstraint("interval_s >= 60 AND interval_s <= 3600", name="interval_range"),
-    CheckConstraint("road_class IN ('freeway', 'arterial', 'local')", name="road_class_known"),
+    # The interval rule of service.domain (migration 0004 put it in place of a plain range).
+    CheckConstraint(INTERVAL_CHECK_SQL, name="interval_allowed"),
+    CheckConstraint(sql_in("road_class", ROAD_CLASSES), name="road_class_known"),
 )
 
 counts = Table(
@@ -87,7 +90,7 @@ api_keys = Table(
     Column("key_hash", String(64), nullable=False, unique=True),
     Column("created_s", Float, nullable=False),
     Column("revoked_s", Float, nullable=True),
-    CheckConstraint("role IN ('ingest', 'read', 'operate', 'admin')", name="role_known"),
+    CheckConstraint(sql_in("role", ROLES), name="role_known"),
 )
 
 baselines = Table(

@@ -17,7 +17,7 @@ from sqlalchemy import Engine
 from service.pipeline import ingest
 from service.store import detectors as registry
 from service.store.engine import write_transaction
-from service.web.schemas import DetectorCreate
+from service.store.records import DetectorCreate
 
 # 2026-11-16 00:00 America/Chicago (CST, -06:00)
 MONDAY_LOCAL_MIDNIGHT = datetime(2026, 11, 16, 6, 0, tzinfo=UTC)

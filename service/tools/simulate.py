@@ -47,6 +47,7 @@ from zoneinfo import ZoneInfo
 
 import numpy as np
 
+from service.domain import KINDS, ROAD_CLASSES
 from service.timefmt import parse_rfc3339, utc_offsets_s
 
 SCENARIO = "marrowick-autumn-2026"
@@ -58,19 +59,10 @@ HISTORY_DAYS = 42
 TEST_DAYS = 14
 LONE_MISSING_FRACTION = 0.005
 
-ROAD_CLASSES = ("freeway", "arterial", "local")
 FACILITIES = ("mainline", "ramp", "approach", "road")
-DAY_TYPES = ("weekday", "saturday", "sunday_holiday")
 ACTIONS = ("zero", "scale", "scale_range", "freeze", "absent", "intermittent")
-ALERT_KINDS = (
-    "no_counts",
-    "low_volume",
-    "high_volume",
-    "over_capacity",
-    "repeated_value",
-    "no_data",
-)
-CAUSES = ("detector", "traffic", "communications")
+ALERT_KINDS = KINDS
+CAUSES = ("detector", "traffic", "communications")  # the causes an injection can have
 
 #: Seasonal trend: ``1 + A cos(2 pi (day_of_year - peak) / 365.25)``; traffic peaks in July and
 #: falls about 5 % across the eight weeks of the scenario (an autumn decline; common practice).

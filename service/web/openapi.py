@@ -22,9 +22,9 @@ from fastapi.routing import APIRoute
 from pydantic import BaseModel, Field
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
+from service.domain import DETECTOR_ID_PATTERN
 from service.pipeline.ingest import CSV_HEADER, MAX_COUNT
 from service.web import deps
-from service.web.schemas import DETECTOR_ID_PATTERN
 
 REF = "#/components/schemas/"
 SCHEME = "bearerKey"

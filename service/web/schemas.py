@@ -2,117 +2,24 @@
 
 from __future__ import annotations
 
-import re
-from typing import Any, Literal
-from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
+from typing import Annotated, Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
+from pydantic import (
+    AfterValidator,
+    BaseModel,
+    ConfigDict,
+    Field,
+)
 
-from service.domain import CONTROL_CHARACTERS
-from service.stats.calendar import parse_holiday_calendar
-
-DETECTOR_ID_PATTERN = r"^[A-Za-z0-9][A-Za-z0-9._:\-]{0,63}$"
-DETECTOR_ID_RULE = "1-64 characters: letters, digits and . _ : - , starting with a letter or digit"
-_ID = re.compile(DETECTOR_ID_PATTERN)
-
-
-def control_character_error(text: str) -> str | None:
-    """A message naming the first control character of ``text``, or None when it has none."""
-    bad = CONTROL_CHARACTERS.search(text)
-    if bad is None:
-        return None
-    return (f"holds the control character U+{ord(bad.group()):04X} at position {bad.start() + 1}; "
-            "text fields take printable characters only (no NUL, tab or line break)")
-
-
-def detector_id_error(detector_id: str) -> str | None:
-    """What is wrong with a detector id (named ``detector_id`` in the message), or None."""
-    if _ID.fullmatch(detector_id):  # fullmatch: "$" alone would let a trailing newline through
-        return None
-    bad = CONTROL_CHARACTERS.search(detector_id)
-    if bad is not None:
-        return (f"detector_id holds the control character U+{ord(bad.group()):04X} at position "
-                f"{bad.start() + 1}; ids are {DETECTOR_ID_RULE}")
-    if len(detector_id) > 64:
-        return f"detector_id is {len(detector_id):,} characters long; ids are {DETECTOR_ID_RULE}"
-    shown = repr(detector_id[:64])
-    return f"detector_id {shown} is not a valid id; ids are {DETECTOR_ID_RULE}"
-
-
-class GeoPoint(BaseModel):
-    """A GeoJSON Point (RFC 7946): coordinates are [longitude, latitude] in WGS 84."""
-
-    model_config = ConfigDict(extra="forbid")
-    type: Literal["Point"]
-    coordinates: list[float] = Field(min_length=2, max_length=3)
-
-    @field_validator("coordinates", mode="before")
-    @classmethod
-    def _numbers_only(cls, value: Any) -> Any:
-        if isinstance(value, list) and any(isinstance(v, bool) or not isinstance(v, int | float)
-                                           for v in value):
-            raise ValueError("coordinates are numbers: [longitude, latitude]")
-        return value
-
-    @field_validator("coordinates")
-    @classmethod
-    def _in_range(cls, value: list[float]) -> list[float]:
-        lon, lat = value[0], value[1]
-        if not -180 <= lon <= 180 or not -90 <= lat <= 90:
-            raise ValueError("coordinates are [longitude -180..180, latitude -90..90]")
-        return value
-
-
-class DetectorCreate(BaseModel):
-    model_config = ConfigDict(extra="forbid", populate_by_name=True)
-
-    interval_s: int = Field(description="Reporting interval in seconds: 60..3600 and a divisor of 86400.")
-    lanes: int = Field(1, ge=1, le=16, description="Lanes the detector covers.")
-    timezone: str = Field(description="IANA time zone of the site, e.g. America/Chicago.")
-    group: str | None = Field(None, max_length=64, description="Site, approach or corridor segment.")
-    label: str | None = Field(None, max_length=200)
-    road_class: Literal["freeway", "arterial", "local"] = "arterial"
-    holiday_calendar: str | None = Field(
-        None, max_length=16, description="Country[-subdivision] code for the holidays library, e.g. US or US-CO."
-    )
-    location: GeoPoint | None = None
-    capacity_per_lane_h: float | None = Field(
-        None, gt=0, le=10_000, description="Override of the per-lane hourly capacity cap (veh/h/lane)."
-    )
-
-    @field_validator("timezone", "group", "label", "holiday_calendar", mode="before")
-    @classmethod
-    def _printable(cls, value: Any) -> Any:
-        if isinstance(value, str):
-            problem = control_character_error(value)
-            if problem:
-                raise ValueError(problem)
-        return value
-
-    @field_validator("interval_s")
-    @classmethod
-    def _interval(cls, value: int) -> int:
-        if not 60 <= value <= 3600 or 86400 % value:
-            raise ValueError("interval_s must be 60..3600 seconds and divide 86400 "
-                             "(e.g. 60, 300, 900, 3600)")
-        return value
-
-    @field_validator("timezone")
-    @classmethod
-    def _zone(cls, value: str) -> str:
-        try:
-            ZoneInfo(value)
-        except (ZoneInfoNotFoundError, ValueError):
-            raise ValueError(f"{value!r} is not an IANA time zone name such as America/Chicago") from None
-        return value
-
-    @field_validator("holiday_calendar")
-    @classmethod
-    def _calendar(cls, value: str | None) -> str | None:
-        if value is None or value == "":
-            return None
-        parse_holiday_calendar(value)  # ValueError saying what is accepted
-        return value
+from service.domain import (
+    ALERT_STATUSES,
+    CAUSES,
+    DAY_TYPES,
+    KINDS,
+    plain_text,
+    prose,
+)
+from service.store.records import DetectorCreate
 
 
 class DetectorPublic(DetectorCreate):
@@ -133,15 +40,172 @@ class DetectorImportResult(BaseModel):
     errors: list[dict[str, Any]]
 
 
-class FeatureIn(BaseModel):
-    model_config = ConfigDict(extra="allow")
-    type: Literal["Feature"]
-    id: str | int | None = None
-    geometry: dict[str, Any] | None = None
-    properties: dict[str, Any]
+# ---------------------------------------------------------------------------- baselines
 
-    @model_validator(mode="after")
-    def _has_id(self) -> FeatureIn:
-        if self.id is None and "detector_id" not in self.properties:
-            raise ValueError("a Feature needs an id or a detector_id property")
-        return self
+
+class FitRequest(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+    detector_ids: list[str] | None = Field(None, description="Default: every detector.")
+    as_of: str | None = Field(None, description="RFC 3339 end of the history window; default: "
+                                                "just after the latest stored count.")
+
+
+class FitOutcome(BaseModel):
+    detector_id: str
+    status: str = Field(description="'fitted', 'insufficient_history' or 'failed'.")
+    reason: str | None = Field(description="Why the fit did not happen, when it did not.")
+    baseline_id: int | None = Field(description="The stored baseline, when fitted.")
+
+
+class FitResult(BaseModel):
+    seconds: float = Field(description="Wall time the fits took.")
+    data: list[FitOutcome]
+
+
+class TimeWindow(BaseModel):
+    start: str
+    end: str
+
+
+class BaselineModel(BaseModel):
+    """The fitted profile a baseline day is served from."""
+
+    baseline_id: int
+    fitted_at: str
+    window: TimeWindow = Field(description="History window of the fit (RFC 3339, UTC).")
+    day_type: Literal[DAY_TYPES]  # type: ignore[valid-type]
+    fitted_from: str = Field(description="Day type whose days the profile was fitted from.")
+    fallback: bool = Field(description="True when fitted from another day type (too few days).")
+    distribution: str = Field(description="'poisson' or 'negative_binomial'.")
+    day_alpha: float
+    interval_alpha: float
+    dispersion_p_value: float | None
+    days_used: int
+
+
+class BaselinePoint(BaseModel):
+    start: str = Field(description="Local interval start: RFC 3339 for a date, HH:MM for a "
+                                   "day type.")
+    expected: float = Field(description="Expected vehicles in the interval.")
+    low: int = Field(description="Lower end of the predictive interval (vehicles).")
+    high: int = Field(description="Upper end of the predictive interval (vehicles).")
+
+
+class BaselineDay(BaseModel):
+    detector_id: str
+    date: str | None = Field(description="The local date asked for, or null for a day type.")
+    day_type: Literal[DAY_TYPES]  # type: ignore[valid-type]
+    level: float = Field(description="Central predictive interval level.")
+    interval_s: int
+    model: BaselineModel
+    expected_total: float = Field(description="Expected vehicles over the whole local day.")
+    data: list[BaselinePoint]
+
+
+class BaselineProfile(BaseModel):
+    detector_id: str
+    lanes: int
+    baseline_id: int
+    fitted_at: str
+    fit: dict[str, Any] = Field(description="What the fit found (per day type: days used, "
+                                            "distribution, fallback).")
+    day_types: dict[str, Any] = Field(description="Per day type: expected daily volume, hourly "
+                                                  "volumes, peak hour and K-factor.")
+
+
+# ---------------------------------------------------------------------------- counts
+
+
+class CountPublic(BaseModel):
+    start: str = Field(description="RFC 3339 interval start (UTC).")
+    count: int
+
+
+class CountsPage(BaseModel):
+    detector_id: str
+    data: list[CountPublic]
+    next_from: str | None = Field(description="Ask for this start next (as `from`); null at the "
+                                              "end.")
+
+
+class ConflictPublic(BaseModel):
+    id: int
+    detector_id: str
+    start: str
+    stored: int = Field(description="The count kept.")
+    offered: int = Field(description="The differing count offered later.")
+    received: str = Field(description="When the differing count was offered.")
+
+
+class ConflictsPage(BaseModel):
+    data: list[ConflictPublic]
+    next_after: int = Field(description="Ask for conflicts after this id next.")
+
+
+# ---------------------------------------------------------------------------- alerts
+
+
+class Acknowledgement(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+    by: Annotated[str, Field(min_length=1, max_length=100), AfterValidator(plain_text)] = Field(
+        description="Who acknowledges (name or desk); no control characters.")
+    note: Annotated[str | None, Field(max_length=2000), AfterValidator(prose)] = Field(
+        None, description="Free text; may hold tabs and line breaks, no other control characters.")
+
+
+class AcknowledgementPublic(BaseModel):
+    by: str
+    at: str
+    note: str | None
+
+
+class AlertPublic(BaseModel):
+    id: int
+    seq: int = Field(description="Change sequence number: raised on every change of the alert.")
+    detector_id: str | None = Field(description="Null for a group alert.")
+    group: str | None
+    kind: Literal[KINDS]  # type: ignore[valid-type]
+    cause: Literal[CAUSES]  # type: ignore[valid-type]
+    status: Literal[ALERT_STATUSES]  # type: ignore[valid-type]
+    withdrawn: bool
+    start: str
+    end: str = Field(description="End of the last interval of the episode.")
+    closed_at: str | None
+    intervals: int
+    observed: float | None
+    expected: float | None
+    p_value: float | None
+    score: float | None = Field(description="-log10(p_value).")
+    baseline_id: int | None
+    summary: str
+    detectors: list[str] | None = Field(description="Members, for a group alert.")
+    acknowledged: AcknowledgementPublic | None
+
+
+class AlertsPage(BaseModel):
+    data: list[AlertPublic]
+    next_after: int = Field(description="Poll again with after=next_after.")
+
+
+class HealthWindow(BaseModel):
+    model_config = ConfigDict(populate_by_name=True)
+    from_: str = Field(alias="from")
+    until: str
+    intervals: int = Field(description="Intervals the detector should have reported.")
+    reported: int
+    completeness: float
+    flagged_share: float
+
+
+class OpenAlertRef(BaseModel):
+    id: int
+    kind: Literal[KINDS]  # type: ignore[valid-type]
+    start: str
+
+
+class DetectorHealth(BaseModel):
+    detector_id: str
+    clock: Literal["wall", "data"]
+    last_24h: HealthWindow
+    last_7d: HealthWindow
+    open_alerts: list[OpenAlertRef]

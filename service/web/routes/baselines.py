@@ -3,27 +3,19 @@
 from __future__ import annotations
 
 import time
-from datetime import date, datetime, timedelta
+from datetime import date
 from typing import Annotated, Any, Literal
-from zoneinfo import ZoneInfo
 
-import numpy as np
-import orjson
 from fastapi import APIRouter, Path, Query
 from fastapi.concurrency import run_in_threadpool
-from pydantic import BaseModel, Field
-from sqlalchemy import select
 
+from service.domain import DAY_TYPES, DETECTOR_ID_PATTERN
 from service.errors import NotFound, ValidationFailed
+from service.pipeline import baseline_day
 from service.pipeline import fit as fitting
-from service.stats import baseline as bl
-from service.stats import calendar, intervals
-from service.store import tables as models
-from service.store.baselines import load_baseline
-from service.store.engine import read_transaction
-from service.timefmt import format_utc, parse_rfc3339
+from service.timefmt import parse_rfc3339
 from service.web.deps import AdminDep, EngineDep, ReadDep, SettingsDep
-from service.web.schemas import DETECTOR_ID_PATTERN
+from service.web.schemas import BaselineDay, BaselineProfile, FitRequest, FitResult
 
 router = APIRouter(prefix="/v1", tags=["baselines"])
 DetectorId = Annotated[str, Path(pattern=DETECTOR_ID_PATTERN)]
@@ -32,13 +24,7 @@ DetectorId = Annotated[str, Path(pattern=DETECTOR_ID_PATTERN)]
 FIRST_DATE, LAST_DATE = date(1990, 1, 1), date(2100, 12, 31)
 
 
-class FitRequest(BaseModel):
-    detector_ids: list[str] | None = Field(None, description="Default: every detector.")
-    as_of: str | None = Field(None, description="RFC 3339 end of the history window; default: "
-                                                "just after the latest stored count.")
-
-
-@router.post("/baselines/fit")
+@router.post("/baselines/fit", response_model=FitResult)
 async def fit(req: FitRequest, engine: EngineDep, settings: SettingsDep, _: AdminDep
               ) -> dict[str, Any]:
     """Fit baselines now (one process); `tallyward fit --workers N` is faster for networks."""
@@ -61,36 +47,6 @@ async def fit(req: FitRequest, engine: EngineDep, settings: SettingsDep, _: Admi
                      for r in results]}
 
 
-def _current(engine, detector_id: str) -> tuple[Any, Any, bl.Baseline]:  # type: ignore[no-untyped-def]
-    d, b = models.detectors, models.baselines
-    with read_transaction(engine) as conn:
-        det = conn.execute(select(d).where(d.c.detector_id == detector_id)).first()
-        if det is None:
-            raise NotFound(f"unknown detector {detector_id!r}")
-        row = conn.execute(select(b.c.baseline_id, b.c.fitted_s, b.c.as_of_s, b.c.window_start_s,
-                                  b.c.window_end_s, b.c.summary)
-                           .where(b.c.detector_id == detector_id)
-                           .order_by(b.c.baseline_id.desc()).limit(1)).first()
-        if row is None:
-            raise NotFound(f"detector {detector_id!r} has no baseline yet; fit one with "
-                           "POST /v1/baselines/fit or `tallyward fit`", code="no_baseline")
-        base = load_baseline(conn, row.baseline_id)
-    return det, row, base
-
-
-def _model(row: Any, base: bl.Baseline, day_type: str) -> dict[str, Any]:
-    prof = base.profiles[day_type]
-    return {
-        "baseline_id": row.baseline_id, "fitted_at": format_utc(row.fitted_s),
-        "window": {"start": format_utc(row.window_start_s), "end": format_utc(row.window_end_s)},
-        "day_type": day_type, "fitted_from": prof.fitted_from,
-        "fallback": prof.fitted_from != day_type,
-        "distribution": prof.distribution, "day_alpha": prof.day_alpha,
-        "interval_alpha": prof.interval_alpha, "dispersion_p_value": prof.dispersion_p_value,
-        "days_used": prof.days_used,
-    }
-
-
 def _baseline_date(text: str) -> date:
     try:
         day = date.fromisoformat(text) if len(text) == 10 else None
@@ -104,12 +60,12 @@ def _baseline_date(text: str) -> date:
     return day
 
 
-@router.get("/detectors/{detector_id}/baseline")
+@router.get("/detectors/{detector_id}/baseline", response_model=BaselineDay)
 def get_baseline(
     detector_id: DetectorId, engine: EngineDep, _: ReadDep,
     date_: Annotated[str | None, Query(
         alias="date", description=f"Local date YYYY-MM-DD, {FIRST_DATE}..{LAST_DATE}.")] = None,
-    day_type: Annotated[Literal["weekday", "saturday", "sunday_holiday"] | None, Query()] = None,
+    day_type: Annotated[Literal[DAY_TYPES] | None, Query()] = None,  # type: ignore[valid-type]
     level: Annotated[float, Query(gt=0.5, lt=1.0, description="Central interval level.")] = 0.95,
 ) -> dict[str, Any]:
     """Expected count and predictive interval for every interval of a local day."""
@@ -117,39 +73,12 @@ def get_baseline(
         raise ValidationFailed("give exactly one of date=YYYY-MM-DD or "
                                "day_type=weekday|saturday|sunday_holiday")
     day = _baseline_date(date_) if date_ is not None else None
-    det, row, base = _current(engine, detector_id)
-    step = det.interval_s
-    zone = ZoneInfo(det.timezone)
-    if day is not None:
-        lo = int(datetime(day.year, day.month, day.day, tzinfo=zone).timestamp())
-        nxt = day + timedelta(days=1)
-        hi = int(datetime(nxt.year, nxt.month, nxt.day, tzinfo=zone).timestamp())
-        starts = np.arange(lo, hi, step, dtype=np.int64)
-        grid = calendar.local_time_grid(starts, interval_s=step, timezone=det.timezone,
-                                  holiday_calendar=det.holiday_calendar)
-        codes, bins = grid.day_type, grid.bin
-        labels = [datetime.fromtimestamp(int(t), zone).isoformat() for t in starts]
-        name = calendar.DAY_TYPES[int(codes[0])]
-    else:
-        assert day_type is not None
-        bins = np.arange(base.bins_per_day)
-        codes = np.full(bins.size, calendar.DAY_TYPES.index(day_type))
-        labels = [f"{int(b) * step // 3600:02d}:{int(b) * step % 3600 // 60:02d}" for b in bins]
-        name = day_type
-    mu, log_se, day_alpha, interval_alpha = base.expected_for(codes, bins)
-    low, high = intervals.predictive_interval(mu, log_se, day_alpha, interval_alpha, level=level)
-    data = [{"start": lab, "expected": round(float(m), 3), "low": int(lo_), "high": int(hi_)}
-            for lab, m, lo_, hi_ in zip(labels, mu, low, high, strict=True)]
-    return {"detector_id": detector_id, "date": date_, "day_type": name, "level": level,
-            "interval_s": step, "model": _model(row, base, name),
-            "expected_total": round(float(np.sum(mu)), 1), "data": data}
+    figures = baseline_day.baseline_day(engine, detector_id, day=day, day_type=day_type,
+                                        level=level)
+    return {**figures, "date": date_}
 
 
-@router.get("/detectors/{detector_id}/baseline/profile")
+@router.get("/detectors/{detector_id}/baseline/profile", response_model=BaselineProfile)
 def get_profile(detector_id: DetectorId, engine: EngineDep, _: ReadDep) -> dict[str, Any]:
     """Planners' figures: expected daily volume per day type, hourly volumes, peak hour, K-factor."""
-    det, row, base = _current(engine, detector_id)
-    summary = bl.daily_profile_summary(base, lanes=det.lanes)
-    return {"detector_id": detector_id, "lanes": det.lanes, "baseline_id": row.baseline_id,
-            "fitted_at": format_utc(row.fitted_s), "fit": orjson.loads(row.summary),
-            "day_types": summary}
+    return baseline_day.profile(engine, detector_id)

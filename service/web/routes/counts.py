@@ -8,16 +8,15 @@ import orjson
 from fastapi import APIRouter, Query, Request, Response
 from fastapi.concurrency import run_in_threadpool
 from pydantic import AfterValidator
-from sqlalchemy import select
 
 from service.domain import INT32_MAX, plain_text
-from service.errors import NotFound, UnsupportedMediaType, ValidationFailed
+from service.errors import UnsupportedMediaType, ValidationFailed
 from service.pipeline import ingest
-from service.store import tables as models
-from service.store.engine import read_transaction
-from service.timefmt import START_WINDOW_TEXT, format_utc, parse_rfc3339
+from service.store import counts as count_store
+from service.timefmt import START_WINDOW_TEXT, parse_rfc3339
 from service.web.deps import EngineDep, IngestDep, ReadDep, SettingsDep
-from service.web.openapi import COUNTS_BODY
+from service.web.openapi import COUNTS_BODY, CountBatchResult
+from service.web.schemas import ConflictsPage, CountsPage
 
 router = APIRouter(prefix="/v1/counts", tags=["counts"])
 
@@ -34,7 +33,7 @@ CSV lines are at most {ingest.MAX_CSV_LINE_CHARS:,} characters and a rejected CS
 also names its `line`."""
 
 
-@router.post("", description=BATCH_DOC, summary="Store a batch of interval counts",
+@router.post("", response_model=CountBatchResult, description=BATCH_DOC, summary="Store a batch of interval counts",
              openapi_extra=COUNTS_BODY)
 async def post_counts(request: Request, engine: EngineDep, settings: SettingsDep,
                       _: IngestDep) -> Response:
@@ -74,10 +73,9 @@ DetectorQuery = Annotated[str, Query(min_length=1, max_length=64, description="D
                           AfterValidator(plain_text)]
 DetectorFilter = Annotated[str | None, Query(max_length=64, description="Only this detector."),
                            AfterValidator(plain_text)]
-ROWS_PER_FETCH = 2000  # rows pulled from the database cursor at a time
 
 
-@router.get("")
+@router.get("", response_model=CountsPage)
 def get_counts(engine: EngineDep, settings: SettingsDep, _: ReadDep, detector_id: DetectorQuery,
                from_: str | None = Query(None, alias="from", description="RFC 3339, inclusive."),
                until: str | None = Query(None, description="RFC 3339, exclusive."),
@@ -87,53 +85,15 @@ def get_counts(engine: EngineDep, settings: SettingsDep, _: ReadDep, detector_id
     (past `limit`, or past the service's page size in bytes) `next_from` is the start to
     ask for next (as `from`); it is null when the page reaches the end."""
     lo, hi = _time_param(from_, "from"), _time_param(until, "until")
-    c, d = models.counts, models.detectors
-    budget = settings.max_page_bytes
-    # Rows are encoded as they come off the cursor and the page stops at `limit` rows or
-    # the byte budget, so a large read holds one page of JSON, not every row as objects.
-    page = bytearray(b'{"detector_id":' + orjson.dumps(detector_id) + b',"data":[')
-    data_start = len(page)
-    rows = 0
-    next_from: str | None = None
-    with read_transaction(engine) as conn:
-        if conn.execute(select(d.c.detector_id).where(d.c.detector_id == detector_id)).first() is None:
-            raise NotFound(f"unknown detector {detector_id!r}")
-        q = select(c.c.start_s, c.c.count).where(c.c.detector_id == detector_id)
-        if lo is not None:
-            q = q.where(c.c.start_s >= lo)
-        if hi is not None:
-            q = q.where(c.c.start_s < hi)
-        result = conn.execution_options(yield_per=ROWS_PER_FETCH).execute(
-            q.order_by(c.c.start_s).limit(limit + 1))
-        try:
-            for start_s, count in result:
-                piece = b'{"start":"%s","count":%d},' % (format_utc(start_s).encode(), count)
-                if rows == limit or (rows and len(page) - data_start + len(piece) > budget):
-                    next_from = format_utc(start_s)
-                    break
-                page += piece
-                rows += 1
-        finally:
-            result.close()
-    if rows:
-        del page[-1]  # the last row's comma
-    page += b'],"next_from":' + orjson.dumps(next_from) + b"}"
-    return Response(bytes(page), media_type="application/json")
+    page = count_store.counts_page_json(engine, detector_id, from_s=lo, until_s=hi, limit=limit,
+                                        max_bytes=settings.max_page_bytes)
+    return Response(page, media_type="application/json")  # the shape is CountsPage
 
 
-@router.get("/conflicts")
+@router.get("/conflicts", response_model=ConflictsPage)
 def get_conflicts(engine: EngineDep, _: ReadDep, detector_id: DetectorFilter = None,
                   after: int = Query(0, ge=0, le=INT32_MAX,
                                      description="Page after this conflict id."),
                   limit: int = Query(1000, ge=1, le=10_000)) -> dict[str, Any]:
     """Offered values that differed from stored ones (the stored value was kept)."""
-    k = models.count_conflicts
-    q = select(k).where(k.c.conflict_id > after).order_by(k.c.conflict_id).limit(limit)
-    if detector_id is not None:
-        q = q.where(k.c.detector_id == detector_id)
-    with read_transaction(engine) as conn:
-        rows = conn.execute(q).all()
-    data = [{"id": r.conflict_id, "detector_id": r.detector_id, "start": format_utc(r.start_s),
-             "stored": r.stored_count, "offered": r.offered_count,
-             "received": format_utc(r.received_s)} for r in rows]
-    return {"data": data, "next_after": data[-1]["id"] if data else after}
+    return count_store.conflicts_page(engine, detector_id=detector_id, after=after, limit=limit)

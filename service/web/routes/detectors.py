@@ -9,7 +9,7 @@ from fastapi import APIRouter, Path, Query, Request, Response
 from fastapi.concurrency import run_in_threadpool
 from pydantic import AfterValidator
 
-from service.domain import plain_text
+from service.domain import DETECTOR_ID_PATTERN, plain_text
 from service.errors import BadRequest
 from service.pipeline import ingest
 from service.store import detectors as registry
@@ -17,7 +17,6 @@ from service.store.engine import write_transaction
 from service.web.deps import AdminDep, EngineDep, ReadDep
 from service.web.openapi import IMPORT_BODY
 from service.web.schemas import (
-    DETECTOR_ID_PATTERN,
     DetectorCreate,
     DetectorImportResult,
     DetectorPublic,

@@ -1,10 +1,8 @@
 """Service health for monitoring and for clients that wait on the scoring backlog.
 
-Monitoring polls this often, so every statement is an index look-up or a catalogue read:
-no exact ``count(*)`` and no table scan. ``counts_stored`` and ``detectors`` are therefore the
-database's own estimates (SQLite: the largest rowid, exact while rows are never deleted;
-PostgreSQL: the live-tuple statistic or the planner's row estimate, whichever is larger —
-current within seconds of a commit, or at once after ``ANALYZE``).
+Monitoring polls this often, so every statement is an index look-up or a catalogue read
+(``service.store.health``): ``counts_stored`` and ``detectors`` are the database's own
+estimates.
 
 HTTP status: 200 while the API works (``status`` ``ok``, or ``degraded`` when scoring is not
 keeping up: the API still stores counts and serves alerts, but new alerts may be late);
@@ -18,11 +16,9 @@ from typing import Any, Literal
 
 from fastapi import APIRouter, Response
 from pydantic import BaseModel, Field
-from sqlalchemy import Connection, text
-from sqlalchemy.exc import DBAPIError
 
+from service.store import health as health_store
 from service.store import migrations as migrate
-from service.store.engine import read_transaction
 from service.store.scoring import scoring_health
 from service.timefmt import format_utc
 from service.web.deps import EngineDep, SettingsDep
@@ -84,38 +80,13 @@ def _head(database_url: str) -> str | None:
     return migrate.head_revision(database_url)
 
 
-def _rows_estimate(dialect: str, table: str) -> str:
-    """SQL for the database's own estimate of a table's rows: no scan. SQLite: the largest
-    rowid (exact while rows are never deleted, as for counts and detectors); PostgreSQL: the
-    live-tuple statistic or the planner's estimate, whichever is larger."""
-    if dialect == "sqlite":
-        return f"(SELECT max(rowid) FROM {table})"
-    return ("(SELECT greatest(pg_stat_get_live_tuples(c.oid), c.reltuples::bigint, 0) "
-            f"FROM pg_class c WHERE c.oid = '{table}'::regclass)")
-
-
-def _stored(conn: Connection) -> tuple[int, int | None, int]:
-    """(counts stored, latest interval start, detectors): estimates and an index-only max."""
-    dialect = conn.dialect.name
-    row = conn.execute(text(
-        f"SELECT {_rows_estimate(dialect, 'counts')}, (SELECT max(start_s) FROM counts), "
-        f"{_rows_estimate(dialect, 'detectors')}")).one()
-    return int(row[0] or 0), row[1], int(row[2] or 0)
-
-
 @router.get("/health", response_model=HealthPublic, response_model_exclude_unset=True)
 def health(engine: EngineDep, settings: SettingsDep, response: Response) -> dict[str, Any]:
     """Database, schema revision, counts stored, latest interval, and how scoring keeps up."""
     head = _head(settings.database_url)
-    try:
-        with read_transaction(engine) as conn:
-            current = conn.execute(text("SELECT version_num FROM alembic_version")).scalar()
-            if current == head:
-                stored, latest, detectors = _stored(conn)
-                scoring = scoring_health(conn, settings)
-    except DBAPIError:
-        current = "?"  # not migrated at all (no version table), or the database is down
-    if current != head:
+    current, state = health_store.read_state(
+        engine, head=head, also=lambda conn: scoring_health(conn, settings))
+    if state is None:
         try:  # Alembic's own reading tells an empty database from an unreachable one
             current = migrate.current_revision(engine)
         except Exception as exc:  # noqa: BLE001 - health reports any database failure
@@ -125,14 +96,15 @@ def health(engine: EngineDep, settings: SettingsDep, response: Response) -> dict
         response.status_code = 503
         return {"status": "migration_pending", "database": engine.dialect.name,
                 "migration": {"current": current, "head": head}}
+    scoring = state.extra
     return {
         "status": scoring.status,
         "database": engine.dialect.name,
         "migration": {"current": current, "head": head},
-        "detectors": detectors,
-        "counts_stored": stored,
+        "detectors": state.detectors,
+        "counts_stored": state.counts,
         "counts_stored_exact": False,
-        "latest_interval": format_utc(latest) if latest is not None else None,
+        "latest_interval": _utc(state.latest_start_s),
         "scoring_backlog": scoring.backlog,
         "scoring": {
             "status": scoring.status, "reasons": scoring.reasons, "backlog": scoring.backlog,

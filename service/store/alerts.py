@@ -1,0 +1,181 @@
+"""Alert reads and writes for the API: the change feed polled by dashboards (with its ETag),
+one alert, acknowledgements, and a detector's 24 h / 7 day health figures.
+
+Rows are returned in their public shape (times as RFC 3339, ``p_value`` and ``score`` from
+``log_p``). The alert sequence (``counters.alert_seq``) rises on every change of an alert, so
+a poller that asks for ``seq > after`` sees each change once.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import math
+import time
+from collections.abc import Callable
+from dataclasses import dataclass
+from typing import Any
+
+import orjson
+from sqlalchemy import Connection, Engine, func, select, update
+
+from service.errors import NotFound
+from service.store import tables
+from service.store.engine import read_transaction, write_transaction
+from service.timefmt import format_utc
+
+LN10 = math.log(10.0)
+HEALTH_WINDOWS_S = (("last_24h", 86_400), ("last_7d", 7 * 86_400))  # seconds
+
+
+def next_seqs(conn: Connection, n: int) -> list[int]:
+    """Draw ``n`` alert sequence numbers; the counter row stays locked until commit."""
+    c = tables.counters
+    top = conn.execute(update(c).where(c.c.name == "alert_seq").values(value=c.c.value + n)
+                       .returning(c.c.value)).scalar_one()
+    return list(range(top - n + 1, top + 1))
+
+
+def alert_public(row: Any, interval_s: int | None) -> dict[str, Any]:
+    """An ``alerts`` row in its public shape; ``interval_s`` gives the end of its last interval."""
+    m = row._mapping
+    log_p = m["log_p"]
+    ack = None
+    if m["acknowledged_by"] is not None:
+        ack = {"by": m["acknowledged_by"], "at": format_utc(m["acknowledged_s"]),
+               "note": m["ack_note"]}
+    step = interval_s or 0
+    return {
+        "id": m["alert_id"], "seq": m["seq"], "detector_id": m["detector_id"],
+        "group": m["group_id"], "kind": m["kind"], "cause": m["cause"], "status": m["status"],
+        "withdrawn": bool(m["withdrawn"]),
+        "start": format_utc(m["start_s"]), "end": format_utc(m["end_s"] + step),
+        "closed_at": format_utc(m["closed_s"]) if m["closed_s"] is not None else None,
+        "intervals": m["n_intervals"],
+        "observed": m["observed"], "expected": None if m["expected"] is None else round(m["expected"], 1),
+        "p_value": math.exp(log_p) if log_p is not None else None,
+        "score": round(-log_p / LN10, 2) if log_p is not None else None,
+        "baseline_id": m["baseline_id"], "summary": m["summary"],
+        "detectors": orjson.loads(m["detectors"]) if m["detectors"] else None,
+        "acknowledged": ack,
+    }
+
+
+def _intervals(conn: Connection) -> dict[str, int]:
+    d = tables.detectors
+    return {r.detector_id: r.interval_s for r in conn.execute(select(d.c.detector_id, d.c.interval_s))}
+
+
+def _group_step(row: Any, intervals: dict[str, int]) -> int | None:
+    members = orjson.loads(row.detectors) if row.detectors else []
+    steps = [intervals[m] for m in members if m in intervals]
+    return min(steps) if steps else None
+
+
+def _step(row: Any, intervals: dict[str, int]) -> int | None:
+    return intervals.get(row.detector_id) or _group_step(row, intervals)
+
+
+def _require_detector(conn: Connection, detector_id: str) -> None:
+    d = tables.detectors
+    if conn.execute(select(d.c.detector_id).where(d.c.detector_id == detector_id)).first() is None:
+        raise NotFound(f"unknown detector {detector_id!r}")
+
+
+@dataclass(frozen=True)
+class Poll:
+    """One poll of the change feed: ``page`` is None when the poller's ETag still holds."""
+
+    etag: str
+    page: dict[str, Any] | None
+
+
+def poll(engine: Engine, *, after: int, status: str, detector_id: str | None, group: str | None,
+         kind: str | None, limit: int, query: str, if_none_match: str | None) -> Poll:
+    """Alert changes with ``seq > after`` in seq order (group members' shares hidden).
+
+    The ETag is the highest committed seq with the request's ``query`` string: it changes when
+    any alert changes, and differs between filters."""
+    a = tables.alerts
+    with read_transaction(engine) as conn:
+        if detector_id is not None:
+            _require_detector(conn, detector_id)
+        high = conn.execute(select(tables.counters.c.value)
+                            .where(tables.counters.c.name == "alert_seq")).scalar_one()
+        tag = hashlib.sha1(f"{high}|{query}".encode()).hexdigest()[:20]
+        etag = f'"{tag}"'
+        if if_none_match == etag:
+            return Poll(etag, None)
+        q = select(a).where(a.c.seq > after, a.c.part_of.is_(None))
+        if status != "any":
+            q = q.where(a.c.status == status)
+        if detector_id is not None:
+            q = q.where(a.c.detector_id == detector_id)
+        if group is not None:
+            q = q.where(a.c.group_id == group)
+        if kind is not None:
+            q = q.where(a.c.kind == kind)
+        rows = conn.execute(q.order_by(a.c.seq).limit(limit)).all()
+        intervals = _intervals(conn) if rows else {}
+    data = [alert_public(r, _step(r, intervals)) for r in rows]
+    # With filters, rows skipped between seqs are not this poller's business: it may jump to
+    # the highest seq committed when the page is not full.
+    next_after = data[-1]["seq"] if len(data) == limit else max(after, high if not data else
+                                                                  max(data[-1]["seq"], high))
+    return Poll(etag, {"data": data, "next_after": next_after})
+
+
+def _get(conn: Connection, alert_id: int) -> dict[str, Any]:
+    a = tables.alerts
+    row = conn.execute(select(a).where(a.c.alert_id == alert_id)).first()
+    if row is None:
+        raise NotFound(f"unknown alert {alert_id}")
+    return alert_public(row, _step(row, _intervals(conn)))
+
+
+def get_alert(engine: Engine, alert_id: int) -> dict[str, Any]:
+    """One alert in its public shape; ``NotFound`` if there is none."""
+    with read_transaction(engine) as conn:
+        return _get(conn, alert_id)
+
+
+def acknowledge(engine: Engine, alert_id: int, *, by: str, note: str | None) -> dict[str, Any]:
+    """Record who acknowledged an alert (a change: it takes a new seq); the alert afterwards."""
+    a = tables.alerts
+    with write_transaction(engine) as conn:
+        if conn.execute(select(a.c.alert_id).where(a.c.alert_id == alert_id)).first() is None:
+            raise NotFound(f"unknown alert {alert_id}")
+        (seq,) = next_seqs(conn, 1)
+        now = time.time()
+        conn.execute(a.update().where(a.c.alert_id == alert_id).values(
+            acknowledged_by=by, ack_note=note, acknowledged_s=now, seq=seq, updated_s=now))
+        return _get(conn, alert_id)
+
+
+def detector_health(engine: Engine, detector_id: str, *,
+                    clock: Callable[[Connection], float]) -> dict[str, Any]:
+    """Completeness, share of intervals flagged (24 h and 7 days before ``clock(conn)``, the
+    scoring clock in seconds) and open alerts of one detector."""
+    d, c, e, a = tables.detectors, tables.counts, tables.evidence, tables.alerts
+    with read_transaction(engine) as conn:
+        det = conn.execute(select(d.c.interval_s).where(d.c.detector_id == detector_id)).first()
+        if det is None:
+            raise NotFound(f"unknown detector {detector_id!r}")
+        now = int(clock(conn))
+        open_alerts = conn.execute(select(a.c.alert_id, a.c.kind, a.c.start_s).where(
+            a.c.detector_id == detector_id, a.c.status == "open", a.c.withdrawn == 0)
+            .order_by(a.c.start_s)).all()
+        windows = {}
+        for name, span in HEALTH_WINDOWS_S:
+            lo = now - span
+            present = conn.execute(select(func.count()).select_from(c).where(
+                c.c.detector_id == detector_id, c.c.start_s >= lo, c.c.start_s < now)).scalar_one()
+            flagged = conn.execute(select(func.count(func.distinct(e.c.start_s))).where(
+                e.c.detector_id == detector_id, e.c.start_s >= lo, e.c.start_s < now)).scalar_one()
+            intervals = span // det.interval_s
+            windows[name] = {"from": format_utc(lo), "until": format_utc(now),
+                             "intervals": intervals, "reported": present,
+                             "completeness": round(present / intervals, 4),
+                             "flagged_share": round(flagged / intervals, 4)}
+    return {"detector_id": detector_id, **windows,
+            "open_alerts": [{"id": r.alert_id, "kind": r.kind, "start": format_utc(r.start_s)}
+                            for r in open_alerts]}
