@@ -143,6 +143,10 @@ def parse_json_batch(body: bytes, *, max_items: int) -> list[RawItem]:
     if isinstance(doc, list):
         items = doc
     elif isinstance(doc, dict) and "counts" in doc:
+        if len(doc) > 1:
+            extra = ", ".join(repr(k[:40]) for k in sorted(doc) if k != "counts")
+            raise ValidationFailed(f"unknown field {extra} in the batch; the JSON body takes only "
+                                   '"counts" (a list of {"detector_id", "start", "count"})')
         items = doc["counts"]
     else:
         raise BadRequest('JSON body must be an object with a "counts" list, e.g. '
@@ -153,8 +157,15 @@ def parse_json_batch(body: bytes, *, max_items: int) -> list[RawItem]:
     _check_size(len(items), max_items)
     # Plain tuples (index, detector_id, start, count): this is the hot path.
     return [(i, item.get("detector_id"), item.get("start"), item.get("count", _MISSING))
-            if type(item) is dict else (i, None, None, _NotAnObject(type(item).__name__))
+            if type(item) is dict and item.keys() <= ITEM_FIELDS
+            else (i, None, None, _not_an_item(item))
             for i, item in enumerate(items)]
+
+
+def _not_an_item(item: Any) -> _NotAnObject | _UnknownFields:
+    if type(item) is dict:
+        return _UnknownFields(tuple(sorted(str(k)[:40] for k in item.keys() - ITEM_FIELDS)))
+    return _NotAnObject(type(item).__name__)
 
 
 def _lenient_json(body: bytes, error: orjson.JSONDecodeError) -> Any:
@@ -256,11 +267,17 @@ class _Missing:
 
 
 _MISSING = _Missing()
+ITEM_FIELDS = frozenset(("detector_id", "start", "count"))  # what a JSON item may hold
 
 
 @dataclass(frozen=True)
 class _NotAnObject:
     type_name: str
+
+
+@dataclass(frozen=True)
+class _UnknownFields:
+    names: tuple[str, ...]
 
 
 @dataclass(frozen=True)
@@ -369,6 +386,10 @@ def validate_items(
         if isinstance(count, _NotAnObject):
             reject(item, f"item is a JSON {count.type_name}, not an object with "
                          "detector_id, start and count")
+            continue
+        if isinstance(count, _UnknownFields):
+            names = ", ".join(repr(n) for n in count.names)
+            reject(item, f"unknown field {names}; an item takes only detector_id, start and count")
             continue
         if isinstance(count, _BadLine):
             reject(item, f"CSV line {count.line} {count.problem}; each line is "

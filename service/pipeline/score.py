@@ -44,12 +44,12 @@ from sqlalchemy import Connection, Engine
 from sqlalchemy.exc import DBAPIError
 
 from service.config import Settings
+from service.domain import KINDS
 from service.pipeline.reconcile import reconcile_detector, refresh_group
 from service.stats import baseline as bl
 from service.stats.baseline_thresholds import thresholds_for_baseline
 from service.stats.calendar import local_time_grid
 from service.stats.capacity import capacity_cap
-from service.stats.episodes import KINDS
 from service.stats.thresholds import Thresholds
 from service.stats.timeline import WarmState, score_timeline
 from service.store import scoring as store

@@ -17,11 +17,12 @@ import numpy as np
 import pytest
 from scipy import signal, stats
 
+from service.domain import KINDS
 from service.stats.capacity import capacity_cap
 from service.stats.cusum import cusum_alarm_rate, cusum_arl, cusum_increment, cusum_limit
 from service.stats.tails import log_p_lower, log_p_upper, log_p_zero_run, log_pmf, surprise
 from service.stats.thresholds import Thresholds, calibrate
-from service.stats.timeline import KINDS, WarmState, score_timeline
+from service.stats.timeline import WarmState, score_timeline
 
 INTERVAL_S = 300
 PER_DAY = 86400 // INTERVAL_S

@@ -123,6 +123,28 @@ def test_post_counts_item_missing_count_is_rejected(client, keys, d1) -> None:
     assert r.status_code == 422 and "count is missing" in r.json()["errors"][0]["error"]
 
 
+def test_post_counts_item_with_unknown_field_is_rejected_by_name(client, keys, engine, d1) -> None:
+    """An item with a field beyond detector_id, start and count (a typo such as "cnt") is
+    rejected naming the field; its valid neighbours are stored."""
+    items = count_items("D1", n=3)
+    items[1]["cnt"] = items[1].pop("count")
+    r = post(client, keys, items)
+    assert r.status_code == 422, r.text
+    [error] = r.json()["errors"]
+    assert error["index"] == 1 and "unknown field 'cnt'" in error["error"]
+    assert "detector_id, start and count" in error["error"]
+    assert len(stored(engine)) == 2
+
+
+def test_post_counts_unknown_top_level_field_is_422_naming_it(client, keys, engine, d1) -> None:
+    """A batch object with a field beside "counts" is refused whole, naming the field."""
+    r = client.post("/v1/counts", json={"counts": count_items("D1", n=2), "detector": "D1"},
+                    headers=auth(keys["ingest"]))
+    assert r.status_code == 422, r.text
+    assert "unknown field 'detector'" in r.json()["message"]
+    assert stored(engine) == {}
+
+
 def test_post_counts_empty_batch_is_422(client, keys, d1) -> None:
     """An empty batch says it is empty."""
     r = post(client, keys, [])
