@@ -156,7 +156,8 @@ def cmd_keys(args: argparse.Namespace, settings: Settings) -> int:
     return 0
 
 
-def _time_arg(text: str | None) -> int | None:
+def time_arg(text: str | None) -> int | None:
+    """An RFC 3339 command-line argument as epoch seconds (None stays None)."""
     from service.timefmt import parse_rfc3339
 
     if text is None:
@@ -178,7 +179,7 @@ def cmd_fit(args: argparse.Namespace, settings: Settings) -> int:
     with tqdm(total=len(ids), unit="det", desc="fit baselines", file=sys.stderr,
               disable=args.quiet) as bar:
         results = fitting.fit_many(settings, engine, detector_ids=ids,
-                                   as_of_s=_time_arg(args.as_of), workers=args.workers,
+                                   as_of_s=time_arg(args.as_of), workers=args.workers,
                                    thresholds=not args.no_thresholds, progress=bar.update)
     elapsed = time.perf_counter() - started
     by_status: dict[str, int] = {}

@@ -15,10 +15,10 @@ from pathlib import Path
 
 import orjson
 
+from service.cli import time_arg
 from service.config import Settings
 from service.errors import TallywardError
 from service.textio import table
-from service.timefmt import parse_rfc3339
 
 KEY_ENV = "TALLYWARD_API_KEY"
 OLD_KEY_ENV = "TALLYWARD_KEY"  # the earlier name, still read
@@ -27,15 +27,6 @@ DEMO_EXTRA = "the demo tools need the demo extra: pip install 'tallyward[demo]'"
 
 def _needs_extra(exc: ImportError) -> TallywardError:
     return TallywardError(f"{DEMO_EXTRA} ({exc})")
-
-
-def _time_arg(text: str | None) -> int | None:
-    if text is None:
-        return None
-    try:
-        return parse_rfc3339(text)
-    except ValueError as exc:
-        raise TallywardError(str(exc)) from None
 
 
 def _server_args(parser: argparse.ArgumentParser, *, role: str) -> None:
@@ -85,7 +76,7 @@ def cmd_replay(args: argparse.Namespace, settings: Settings) -> int:
     try:
         with tqdm(unit="count", desc="replay", file=sys.stderr, disable=args.quiet) as bar:
             summary = replay(args.feed, url=args.url, key=api_key(args), speed=args.speed,
-                             from_s=_time_arg(args.from_), until_s=_time_arg(args.until),
+                             from_s=time_arg(args.from_), until_s=time_arg(args.until),
                              batch=args.batch, progress=bar.update)
     except ReplayError as exc:
         print(f"replay stopped: {exc}", file=sys.stderr)
