@@ -41,7 +41,7 @@ def test_migration_states_the_domain_rule() -> None:
     """The migration's CHECK text is service.domain.INTERVAL_CHECK_SQL."""
     import importlib.util
 
-    path = migrate.MIGRATIONS / "versions" / "20261210_0004_interval_divides_hour.py"
+    path = migrate.migrations_dir() / "versions" / "20261210_0004_interval_divides_hour.py"
     spec = importlib.util.spec_from_file_location("m0004", path)
     assert spec and spec.loader
     module = importlib.util.module_from_spec(spec)

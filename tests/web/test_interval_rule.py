@@ -14,7 +14,7 @@ from service.domain import ALLOWED_INTERVALS_S, INTERVAL_RULE_TEXT, interval_ok
 from service.pipeline import fit as fitting
 from service.pipeline import ingest
 from service.pipeline import score as scoring
-from service.stats import baseline as bl
+from service.stats import calendar
 from service.store import tables
 from tests.conftest import auth
 from tests.factories import detector_payload, make_detector, rfc3339
@@ -65,17 +65,17 @@ def test_geojson_import_refuses_1440_naming_the_rule(client, keys) -> None:
 def test_baseline_and_thresholds_refuse_what_registration_refuses() -> None:
     """The statistics refuse 1440 s with the same rule text the API gives."""
     with pytest.raises(ValueError, match="divide one hour"):
-        bl.local_time_grid(np.array([0]), interval_s=1440, timezone="UTC")
-    from service.stats.scoring import Thresholds
+        calendar.local_time_grid(np.array([0]), interval_s=1440, timezone="UTC")
+    from service.stats.thresholds import calibrate
 
     with pytest.raises(ValueError, match="divide one hour"):
-        Thresholds.from_budget(0.05, interval_s=1440)
+        calibrate(0.05, interval_s=1440)
 
 
 def _history(interval_s: int, days: int, *, seed: int) -> tuple[np.ndarray, np.ndarray]:
     """Interval starts (UTC s) and Poisson counts with two daily peaks, America/Chicago."""
     starts = np.arange(HISTORY_START_S, HISTORY_START_S + days * 86_400, interval_s)
-    grid = bl.local_time_grid(starts, interval_s=interval_s, timezone="America/Chicago")
+    grid = calendar.local_time_grid(starts, interval_s=interval_s, timezone="America/Chicago")
     hour = grid.bin * interval_s / 3600.0
     per_hour = 120 + 900 * np.exp(-((hour - 8) ** 2) / 3) + 1000 * np.exp(-((hour - 17) ** 2) / 4)
     weekend = grid.day_type > 0
@@ -107,7 +107,7 @@ def test_every_allowed_interval_fits_and_scores(database_url, engine, interval_s
     assert fitted["status"] == "fitted", fitted
 
     day = starts[~history]
-    local_hour = bl.local_time_grid(day, interval_s=interval_s,
+    local_hour = calendar.local_time_grid(day, interval_s=interval_s,
                                     timezone="America/Chicago").bin * interval_s // 3600
     dead = (local_hour >= DEAD_LOCAL_HOURS[0]) & (local_hour < DEAD_LOCAL_HOURS[1])
     _store(engine, "D1", day, np.where(dead, 0, counts[~history]))
