@@ -321,10 +321,10 @@ def test_dean_score_statistic_matches_statsmodels():
 
 
 def test_bortkiewicz_horse_kicks_are_poisson():
-    """Horse-kick deaths (0..4 seen 109, 65, 22, 3, 1; DOMAIN.md, from memory) test as Poisson."""
+    """Horse-kick deaths (0..4 seen 109, 65, 22, 3, 1; Bortkiewicz 1898, frequencies from memory) test as Poisson."""
     deaths = np.repeat([0, 1, 2, 3, 4], [109, 65, 22, 3, 1])
     assert deaths.mean() == pytest.approx(0.61)
-    assert deaths.var(ddof=1) == pytest.approx(0.611, abs=1e-3)  # DOMAIN.md: variance ~ 0.611
+    assert deaths.var(ddof=1) == pytest.approx(0.611, abs=1e-3)  # Bortkiewicz 1898 data: variance ~ 0.611
     mean = np.full(deaths.size, deaths.mean())
     leverage = np.full(deaths.size, 1 / deaths.size)  # the mean was estimated from the counts
     score = dispersion.dispersion_test(deaths, mean, leverage=leverage)
@@ -386,7 +386,7 @@ def test_genuinely_poisson_counts_are_called_poisson():
 
 
 def test_garwood_interval_matches_chi_square_formula_and_published_values():
-    """Exact Poisson CI: x=10 -> (4.795, 18.390), x=0 -> (0, 3.689) (DOMAIN.md, Garwood 1936)."""
+    """Exact Poisson CI: x=10 -> (4.795, 18.390), x=0 -> (0, 3.689) (Garwood 1936, Biometrika 28:437-442)."""
     low, high = intervals.garwood_interval(np.array([0, 10]))
     assert low[0] == 0.0 and high[0] == pytest.approx(3.689, abs=5e-4)
     assert low[1] == pytest.approx(4.795, abs=5e-4) and high[1] == pytest.approx(18.390, abs=5e-4)

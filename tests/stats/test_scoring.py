@@ -520,7 +520,7 @@ def tmg_zero_hours_rule(counts):
 @pytest.mark.slow
 def test_dead_detector_on_busy_road_flagged_in_minutes_where_tmg_rule_needs_seven_hours():
     """A busy arterial's detector dies at 07:00 on a Wednesday: the scorer raises no_counts
-    within 30 min; the TMG 7-zero-hours rule (per DOMAIN.md) fires 7 h later at the earliest."""
+    within 30 min; the FHWA Traffic Monitoring Guide's 7-consecutive-zero-hours check (common practice) fires 7 h later at the earliest."""
     y, present, mu, mu_week = normal_detector(5, 120.0, 2)
     dead = PER_WEEK + 2 * PER_DAY + 7 * 12
     y[dead:] = 0

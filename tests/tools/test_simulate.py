@@ -38,7 +38,7 @@ REPO = Path(__file__).resolve().parents[2]
 SEED_FEED = REPO / "seed_feed"
 TZ = ZoneInfo("America/Chicago")
 # Turner (TTI for FHWA, 2007): about 3,000 veh/h/lane maximum, i.e. 250 per 5 minutes per lane
-# (value from memory, as recorded in /work/shared/DOMAIN.md).
+# (Quality Control Procedures for Archived Operations Traffic Data; value from memory).
 MAX_PER_5MIN_PER_LANE = 250
 
 
@@ -190,7 +190,7 @@ def test_day_factor_variance_is_recovered_from_daily_totals():
     total = np.concatenate(totals)
     mean = np.concatenate(means)
     # T | D ~ Poisson(D m) and Var D = 1/k give E[(T/m - 1)^2] = 1/k + 1/m: the method of
-    # moments alpha = (s^2 - xbar)/xbar^2 (Hilbe, as in DOMAIN.md) with a known mean.
+    # moments alpha = (s^2 - xbar)/xbar^2 (Hilbe, Negative Binomial Regression) with a known mean.
     alpha_mom = np.mean((total / mean - 1.0) ** 2 - 1.0 / mean)
     # Relative sd of this estimate over 1,680 days is about 4 %; 20 % is 5 sd (chance < 1e-6).
     assert alpha_mom == pytest.approx(1 / day_shape, rel=0.20)
