@@ -1,6 +1,6 @@
 """Tallyward benchmarks: figures and ratios against the ideal, printed in one run.
 
-    .venv/bin/python bench/bench.py [--only ingest|fit|score] [--pg URL]
+    .venv/bin/python bench/bench.py [--only ingest|fit|score|score-db|latency] [--pg URL]
 
 ingest  HTTP ingest through a real uvicorn into SQLite (1,000-count batches, one client)
         vs a bare sqlite3 executemany of the same rows into the same schema.

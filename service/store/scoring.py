@@ -24,6 +24,7 @@ import orjson
 from sqlalchemy import Connection, Engine, case, delete, func, or_, select, update
 
 from service.config import Settings
+from service.domain import MIN_INTERVAL_S
 from service.store import tables as models
 from service.store.alerts import next_seqs
 from service.store.engine import is_sqlite, read_transaction, write_transaction
@@ -124,7 +125,6 @@ def claim(engine: Engine, settings: Settings, *, limit: int = 64) -> tuple[list[
     return claims, clock
 
 
-MIN_INTERVAL_S = 60  # the detectors table's smallest allowed interval_s
 # ``t > ANY_TIME`` means ``t IS NOT NULL`` for any stored time, written as a range because
 # SQLite's planner scans the table for IS NOT NULL but searches an index for a range.
 ANY_TIME = -(2**62)
