@@ -200,9 +200,9 @@ def _model(conn: Connection, claim: Claim, info: DetectorInfo, settings: Setting
                                             settings.false_alerts_per_week)
     if thresholds is not None:
         return base, thresholds, False
-    thresholds = thresholds_for(base, info, settings)
-    cache.baselines.remember_thresholds(claim.baseline_id, thresholds)
-    return base, thresholds, True
+    # Not cached here: the pass stores them with its results, and the next pass reads them
+    # back. Cached before that write, a rolled-back write would leave them stored nowhere.
+    return base, thresholds_for(base, info, settings), True
 
 
 def _score_one(conn: Connection, claim: Claim, info: DetectorInfo, pieces: list[Piece],

@@ -117,14 +117,10 @@ class BaselineCache:
         th = load_thresholds(conn, baseline_id, budget)
         if th is not None:
             with self._lock:
+                if len(self._thresholds) > self._max:
+                    self._thresholds.clear()
                 self._thresholds[(baseline_id, budget)] = th
         return th
-
-    def remember_thresholds(self, baseline_id: int, th: Thresholds) -> None:
-        with self._lock:
-            if len(self._thresholds) > self._max:
-                self._thresholds.clear()
-            self._thresholds[(baseline_id, th.false_alerts_per_week)] = th
 
     def clear(self) -> None:
         with self._lock:

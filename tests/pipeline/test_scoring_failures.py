@@ -182,6 +182,36 @@ def test_database_refusing_one_detectors_writes_rolls_back_only_that_detector(
     assert visible_alerts(engine) == expected
 
 
+def test_thresholds_derived_in_a_rolled_back_pass_are_stored_by_the_retry(
+        database_url, fitted, network) -> None:
+    """Thresholds a pass derives are stored with its results; when that detector's writes roll
+    back, the same scorer (same cache) derives them again and stores them on the retry."""
+    engine, settings = fitted.engine, fitted.settings
+    b, s = tables.baselines, tables.detector_state
+
+    def stored_thresholds() -> str | None:
+        with engine.connect() as conn:
+            return conn.execute(select(b.c.thresholds).join(s, s.c.baseline_id == b.c.baseline_id)
+                                .where(s.c.detector_id == BROKEN)).scalar()
+
+    with engine.begin() as conn:
+        conn.execute(b.update().where(b.c.baseline_id == select(s.c.baseline_id).where(
+            s.c.detector_id == BROKEN).scalar_subquery()).values(thresholds=None))
+    cache = score.ScoringCache()  # one scorer's cache across both passes
+    dialect = engine.dialect.name
+    run_sql(engine, REFUSE[dialect])
+    try:
+        post(engine, two_dead_spells(network))
+        score.score_until_idle(engine, settings, cache=cache)
+        assert stored_thresholds() is None  # rolled back with the detector's other writes
+    finally:
+        run_sql(engine, ALLOW[dialect])
+    let_retry_time_pass(engine, BROKEN)
+    score.score_until_idle(engine, settings, cache=cache)
+    fitted.assert_drained()
+    assert stored_thresholds() is not None
+
+
 @pytest.mark.slow
 def test_live_server_keeps_scoring_past_a_broken_detector(database_url, fitted, network,
                                                           keys) -> None:
