@@ -10,12 +10,9 @@ Medians of several repeats; this machine is small and noisy, so read ratios firs
 from __future__ import annotations
 
 import argparse
-import os
 import shutil
-import socket
 import sqlite3
 import statistics
-import subprocess
 import sys
 import tempfile
 import time
@@ -33,15 +30,9 @@ from service.store import keys as security  # noqa: E402
 from service.store import migrations as migrate  # noqa: E402
 from service.store.engine import make_engine  # noqa: E402
 from service.timefmt import parse_rfc3339  # noqa: E402
-from service.tools.networks import make_detector  # noqa: E402
+from service.tools.networks import make_detector, serving  # noqa: E402
 
 BATCH = 1000
-
-
-def free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
 
 
 def make_batches(n_detectors: int, n_batches: int) -> list[list[dict]]:
@@ -74,22 +65,8 @@ def http_ingest(url: str, batches: list[list[dict]]) -> float:
     engine = make_engine(Settings(database_url=url))
     key = security.create_key(engine, name=f"bench-{time.monotonic_ns()}", role="ingest")
     engine.dispose()
-    port = free_port()
-    env = {**{k: v for k, v in os.environ.items() if not k.startswith("TALLYWARD_")},
-           "TALLYWARD_DATABASE_URL": url, "TALLYWARD_LOG_LEVEL": "WARNING"}
-    log = open(Path(url.removeprefix("sqlite:///")).with_suffix(".log"), "wb")  # noqa: SIM115
-    proc = subprocess.Popen([sys.executable, "-m", "service.cli", "serve", "--port", str(port)],
-                            cwd=REPO, env=env, stdout=subprocess.DEVNULL, stderr=log)
-    try:
-        base = f"http://127.0.0.1:{port}"
-        for _ in range(600):
-            try:
-                httpx.get(base + "/v1/health", timeout=1)
-                break
-            except httpx.HTTPError:
-                if proc.poll() is not None:
-                    raise RuntimeError("server exited: " + Path(log.name).read_text()[-2000:]) from None
-                time.sleep(0.1)
+    log_path = Path(url.removeprefix("sqlite:///")).with_suffix(".log")
+    with serving(url, log_path=log_path) as (base, _proc):
         bodies = [orjson.dumps({"counts": b}) for b in batches]
         headers = {"Authorization": f"Bearer {key}", "Content-Type": "application/json"}
         with httpx.Client(base_url=base, timeout=60) as c:
@@ -99,9 +76,6 @@ def http_ingest(url: str, batches: list[list[dict]]) -> float:
                 assert r.status_code == 200, r.text
             elapsed = time.perf_counter() - t0
         return sum(len(b) for b in batches) / elapsed
-    finally:
-        proc.terminate()
-        proc.wait(10)
 
 
 def bare_executemany(path: Path, batches: list[list[dict]]) -> float:
@@ -350,21 +324,7 @@ def bench_latency(repeats: int) -> None:
             if fault - 3 * 3600 <= start_s < fault + 1800:
                 by_start.setdefault(start_s, []).append(
                     {"detector_id": d, "start": start, "count": count})
-        port = free_port()
-        env = {**{k: v for k, v in os.environ.items() if not k.startswith("TALLYWARD_")},
-               "TALLYWARD_DATABASE_URL": url, "TALLYWARD_LOG_LEVEL": "WARNING",
-               "TALLYWARD_CLOCK": "data"}
-        proc = subprocess.Popen([sys.executable, "-m", "service.cli", "serve", "--port",
-                                 str(port)], cwd=REPO, env=env, stdout=subprocess.DEVNULL,
-                                stderr=subprocess.DEVNULL)
-        base = f"http://127.0.0.1:{port}"
-        try:
-            for _ in range(300):
-                try:
-                    httpx.get(base + "/v1/health", timeout=1)
-                    break
-                except httpx.HTTPError:
-                    time.sleep(0.1)
+        with serving(url, env={"TALLYWARD_CLOCK": "data"}) as (base, _proc):
             headers = {"Authorization": f"Bearer {key}"}
             posted: dict[int, float] = {}
             seen = None
@@ -390,9 +350,6 @@ def bench_latency(repeats: int) -> None:
                         seen, visible_at = r.json()["data"][0], time.perf_counter()
                         break
                     time.sleep(0.05)
-        finally:
-            proc.terminate()
-            proc.wait(10)
     if seen is None:
         print("  no alert seen")
         return

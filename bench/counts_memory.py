@@ -11,10 +11,7 @@ service offers it). Prints the server's resident memory before, at its peak and 
 from __future__ import annotations
 
 import argparse
-import os
-import socket
 import sqlite3
-import subprocess
 import sys
 import tempfile
 import threading
@@ -30,16 +27,10 @@ from service.config import Settings  # noqa: E402
 from service.store import keys as security  # noqa: E402
 from service.store import migrations as migrate  # noqa: E402
 from service.store.engine import make_engine  # noqa: E402
-from service.tools.networks import make_detector  # noqa: E402
+from service.tools.networks import make_detector, serving  # noqa: E402
 
 DETECTORS = 5
 FIRST_START_S = 1_700_000_100  # a multiple of 300 s
-
-
-def free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
 
 
 def rss_mib(pid: int) -> tuple[float, float]:
@@ -77,21 +68,7 @@ def main() -> int:
     with tempfile.TemporaryDirectory() as tmp:
         db = Path(tmp) / "memory.db"
         key = build(db, args.rows)
-        port = free_port()
-        env = {**{k: v for k, v in os.environ.items() if not k.startswith("TALLYWARD_")},
-               "TALLYWARD_DATABASE_URL": f"sqlite:///{db}", "TALLYWARD_LOG_LEVEL": "WARNING",
-               "TALLYWARD_SCORING": "off"}
-        proc = subprocess.Popen([sys.executable, "-m", "service.cli", "serve", "--port", str(port)],
-                                cwd=REPO, env=env, stdout=subprocess.DEVNULL)
-        base = f"http://127.0.0.1:{port}"
-        try:
-            deadline = time.monotonic() + 30
-            while time.monotonic() < deadline:
-                try:
-                    httpx.get(base + "/v1/health", timeout=1)
-                    break
-                except httpx.HTTPError:
-                    time.sleep(0.1)
+        with serving(f"sqlite:///{db}", env={"TALLYWARD_SCORING": "off"}) as (base, proc):
             headers = {"Authorization": f"Bearer {key}"}
             httpx.get(base + "/v1/counts", params={"detector_id": "M0", "limit": 10},
                       headers=headers, timeout=30)
@@ -124,9 +101,6 @@ def main() -> int:
             seconds = time.perf_counter() - started
             time.sleep(1)
             after, peak = rss_mib(proc.pid)
-        finally:
-            proc.terminate()
-            proc.wait(10)
     statuses = sorted({s for s, _, _ in results})
     print(f"{args.parallel} parallel reads of up to {args.limit:,} rows from {args.rows:,} counts: "
           f"statuses {statuses}, rows per reader {min(r for _, r, _ in results):,}.."

@@ -12,10 +12,7 @@ serve``. Prints medians and 95th percentiles in milliseconds.
 from __future__ import annotations
 
 import argparse
-import os
-import socket
 import statistics
-import subprocess
 import sys
 import tempfile
 import time
@@ -34,6 +31,7 @@ from starlette.testclient import TestClient  # noqa: E402
 from service.config import Settings  # noqa: E402
 from service.store import migrations as migrate  # noqa: E402
 from service.store.engine import make_engine  # noqa: E402
+from service.tools.networks import serving  # noqa: E402
 from service.web.app import create_app  # noqa: E402
 from service.web.routes.health import health  # noqa: E402
 
@@ -122,30 +120,9 @@ def measure(url: str, *, n_counts: int, n_detectors: int, repeats: int) -> None:
 
 def over_uvicorn(url: str, repeats: int) -> tuple[float, float]:
     """The request over real HTTP to ``tallyward serve`` (one worker, keep-alive client)."""
-    with socket.socket() as sock:
-        sock.bind(("127.0.0.1", 0))
-        port = sock.getsockname()[1]
-    env = {**{k: v for k, v in os.environ.items() if not k.startswith("TALLYWARD_")},
-           "TALLYWARD_DATABASE_URL": url, "TALLYWARD_SCORING": "off",
-           "TALLYWARD_LOG_LEVEL": "WARNING"}
-    proc = subprocess.Popen([sys.executable, "-m", "service.cli", "serve", "--port", str(port)],
-                            cwd=REPO, env=env, stdout=subprocess.DEVNULL,
-                            stderr=subprocess.DEVNULL)
-    try:
-        with httpx.Client(base_url=f"http://127.0.0.1:{port}", timeout=5) as client:
-            deadline = time.monotonic() + 30
-            while True:
-                try:
-                    client.get("/v1/health")
-                    break
-                except httpx.HTTPError:
-                    if time.monotonic() > deadline or proc.poll() is not None:
-                        raise
-                    time.sleep(0.1)
-            return timings(lambda: client.get("/v1/health"), repeats)
-    finally:
-        proc.terminate()
-        proc.wait(10)
+    with serving(url, env={"TALLYWARD_SCORING": "off"}) as (base, _proc), \
+            httpx.Client(base_url=base, timeout=5) as client:
+        return timings(lambda: client.get("/v1/health"), repeats)
 
 
 def main() -> None:

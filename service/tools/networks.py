@@ -6,11 +6,18 @@ the product's own ingest (the one history loader), and builds small simulated ne
 
 from __future__ import annotations
 
+import os
+import socket
+import subprocess
+import sys
+import time
 from collections.abc import Callable, Iterable, Iterator
+from contextlib import contextmanager
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
+import httpx
 import numpy as np
 from sqlalchemy import Engine
 
@@ -101,3 +108,45 @@ def small_network(detector_ids: tuple[str, ...], *, history_days: int = 21, test
     specs = [d for d in simulate.default_detectors() if d.detector_id in detector_ids]
     return simulate.generate_network(seed=seed, detectors=specs, history_days=history_days,
                                      test_days=test_days, inject=inject)
+
+
+# ---------------------------------------------------------------------------- a running server
+
+
+@contextmanager
+def serving(database_url: str, *, env: dict[str, str] | None = None,
+            log_path: Path | None = None, start_timeout_s: float = 60.0
+            ) -> Iterator[tuple[str, subprocess.Popen[bytes]]]:
+    """``tallyward serve`` on a free loopback port, for benchmarks and tools: yields the base
+    URL and the process once ``/v1/health`` answers; the server is stopped on exit."""
+    with socket.socket() as sock:
+        sock.bind(("127.0.0.1", 0))
+        port = sock.getsockname()[1]
+    environment = {**{k: v for k, v in os.environ.items() if not k.startswith("TALLYWARD_")},
+                   "TALLYWARD_DATABASE_URL": database_url, "TALLYWARD_LOG_LEVEL": "WARNING",
+                   **(env or {})}
+    log = open(log_path, "wb") if log_path else subprocess.DEVNULL  # noqa: SIM115
+    proc = subprocess.Popen([sys.executable, "-m", "service.cli", "serve", "--port", str(port)],
+                            cwd=Path(__file__).resolve().parents[2], env=environment,
+                            stdout=subprocess.DEVNULL, stderr=log)
+    base = f"http://127.0.0.1:{port}"
+    try:
+        deadline = time.monotonic() + start_timeout_s
+        while True:
+            try:
+                httpx.get(base + "/v1/health", timeout=1)
+                break
+            except httpx.HTTPError:
+                if proc.poll() is not None or time.monotonic() > deadline:
+                    tail = log_path.read_text()[-2000:] if log_path else ""
+                    raise RuntimeError(f"the server did not start: {tail}") from None
+                time.sleep(0.1)
+        yield base, proc
+    finally:
+        proc.terminate()
+        try:
+            proc.wait(10)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+        if log_path:
+            log.close()  # type: ignore[union-attr]
