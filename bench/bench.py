@@ -337,7 +337,7 @@ def bench_latency(repeats: int) -> None:
                     c.post("/v1/counts", json={"counts": items})
                     posted[start_s] = time.perf_counter()
                     if start_s >= fault and seen is None:
-                        r = c.get("/v1/alerts", params={"detector_id": det, "kind": "no_counts"})
+                        r = c.get("/v1/alerts", params={"detector_id": det, "kind": "zero_counts"})
                         if r.json()["data"]:
                             seen, visible_at = r.json()["data"][0], time.perf_counter()
                     pause = len(items) / 200 - (time.perf_counter() - t0)
@@ -345,7 +345,7 @@ def bench_latency(repeats: int) -> None:
                         time.sleep(pause)
                 deadline = time.perf_counter() + 30
                 while seen is None and time.perf_counter() < deadline:
-                    r = c.get("/v1/alerts", params={"detector_id": det, "kind": "no_counts"})
+                    r = c.get("/v1/alerts", params={"detector_id": det, "kind": "zero_counts"})
                     if r.json()["data"]:
                         seen, visible_at = r.json()["data"][0], time.perf_counter()
                         break

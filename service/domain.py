@@ -74,9 +74,9 @@ DAY_TYPES = ("weekday", "saturday", "sunday_holiday")
 
 # ---------------------------------------------------------------------------- alerts
 
-KINDS = ("no_counts", "low_volume", "high_volume", "over_capacity", "repeated_value", "no_data")
-# Likely causes of an episode: ``traffic`` (neighbours deviate too), ``detector`` (they look
-# normal), ``communications`` (missing or frozen data), ``unknown`` (no neighbours).
+KINDS = ("zero_counts", "low_volume", "high_volume", "over_capacity", "repeated_value", "no_reports")
+# Likely causes of an episode: ``traffic`` (neighbors deviate too), ``detector`` (they look
+# normal), ``communications`` (missing or frozen data), ``unknown`` (no neighbors).
 CAUSES = ("detector", "traffic", "communications", "unknown")
 ALERT_STATUSES = ("open", "closed")
 

@@ -66,7 +66,7 @@ def _clean_env(monkeypatch: pytest.MonkeyPatch) -> None:
             monkeypatch.delenv(name)
 
 
-def _normalise(url: str) -> str:
+def _normalize(url: str) -> str:
     return url.replace("postgresql://", "postgresql+psycopg://", 1) if url.startswith("postgresql://") else url
 
 
@@ -74,7 +74,7 @@ def _normalise(url: str) -> str:
 def pg_database() -> Iterator[str]:
     """A throw-away PostgreSQL database for this test session, migrated to head."""
     assert PG_URL
-    server = make_url(_normalise(PG_URL))
+    server = make_url(_normalize(PG_URL))
     name = f"tallyward_test_{uuid.uuid4().hex[:10]}"
     admin = create_engine(server, isolation_level="AUTOCOMMIT")
     with admin.connect() as conn:
@@ -92,7 +92,7 @@ def pg_database() -> Iterator[str]:
 @pytest.fixture(scope="session")
 def pg_admin_url() -> str:
     assert PG_URL
-    return make_url(_normalise(PG_URL)).render_as_string(hide_password=False)
+    return make_url(_normalize(PG_URL)).render_as_string(hide_password=False)
 
 
 @pytest.fixture(scope="session")

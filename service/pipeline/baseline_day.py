@@ -75,7 +75,7 @@ def local_day_grid(day: date, *, interval_s: int, timezone: str,
 
 
 def day_type_grid(day_type: str, *, interval_s: int, bins_per_day: int) -> DayGrid:
-    """A generic day of ``day_type``: one interval per bin, labelled by local HH:MM."""
+    """A generic day of ``day_type``: one interval per bin, labeled by local HH:MM."""
     bins = np.arange(bins_per_day)
     codes = np.full(bins.size, DAY_TYPES.index(day_type))
     labels = [f"{int(b) * interval_s // 3600:02d}:{int(b) * interval_s % 3600 // 60:02d}"

@@ -56,7 +56,7 @@ def _excluded(conn: Connection, detector_id: str, start_s: np.ndarray, lo: int, 
     return mask
 
 
-def summarise(result: bl.FitResult) -> dict[str, Any]:
+def summarize(result: bl.FitResult) -> dict[str, Any]:
     base = result.baseline
     assert base is not None
     per_type = {}
@@ -96,7 +96,7 @@ def fit_one(engine: Engine, detector_id: str, *, as_of_s: int, settings: Setting
                            "reason": result.reason, "intervals": int(start_s.size)}
     if result.status != "fitted" or result.baseline is None:
         return out
-    summary = summarise(result)
+    summary = summarize(result)
     thresholds_json = None
     if thresholds:
         thresholds_json = thresholds_to_json(thresholds_for_baseline(

@@ -17,7 +17,7 @@ import orjson
 from sqlalchemy import Connection
 
 from service.stats.episodes import (
-    NO_DATA_REOPEN_S,
+    NO_REPORTS_REOPEN_S,
     Episode,
     GroupRun,
     cause_for,
@@ -38,7 +38,7 @@ def reconcile_detector(conn: Connection, writer: AlertWriter, info: DetectorInfo
     """Rebuild the detector's episodes from its evidence and write what changed; the span
     [lo, end_s) rebuilt (it starts earlier than ``keep_from_s`` when an episode reaches in)."""
     step = info.interval_s
-    gap = max(close_after + 1, NO_DATA_REOPEN_S // step + 1) * step
+    gap = max(close_after + 1, NO_REPORTS_REOPEN_S // step + 1) * step
     lo = keep_from_s
     while (earlier := store.earliest_linked_alert(conn, info.detector_id, lo, gap_s=gap)) \
             is not None:
@@ -89,12 +89,12 @@ def refresh_group(conn: Connection, writer: AlertWriter, group: str, lo: int, hi
 def _write_communications_alerts(conn: Connection, writer: AlertWriter, group: str,
                                  members: Sequence[str], infos: dict[str, DetectorInfo],
                                  lo: int, hi: int, *, step: int) -> list[tuple[int, int, int]]:
-    """The group's ``no_data`` alerts over [lo, hi) as its members' evidence shows them now;
+    """The group's ``no_reports`` alerts over [lo, hi) as its members' evidence shows them now;
     (start, last start, alert id) of each."""
     subject = f"group:{group}"
-    rows = store.evidence_rows(conn, members, lo, hi, kinds=("no_data",))
+    rows = store.evidence_rows(conn, members, lo, hi, kinds=("no_reports",))
     runs = communications_runs(rows, n_members=len(members), step=step)
-    stored = {r.start_s: r for r in store.alerts_from(conn, subject, lo, kind="no_data")}
+    stored = {r.start_s: r for r in store.alerts_from(conn, subject, lo, kind="no_reports")}
     timezone = next(iter(infos.values())).timezone
     group_ids: list[tuple[int, int, int]] = []
     for run in runs:
@@ -111,12 +111,12 @@ def _group_values(run: GroupRun, group: str, *, step: int, hi: int, timezone: st
                   ) -> dict[str, Any]:
     start, last, dets, expected, log_p = run
     subject = f"group:{group}"
-    ep = Episode(subject=subject, detector_id=None, kind="no_data", start_s=start,
+    ep = Episode(subject=subject, detector_id=None, kind="no_reports", start_s=start,
                  end_s=last, closed_s=last + step if last + step < hi else None,
                  n_intervals=(last - start) // step + 1, observed=None, expected=expected,
                  log_p=log_p)
     return {
-        "subject": subject, "detector_id": None, "group_id": group, "kind": "no_data",
+        "subject": subject, "detector_id": None, "group_id": group, "kind": "no_reports",
         "cause": "communications", "status": ep.status, "start_s": start, "end_s": last,
         "closed_s": ep.closed_s, "observed": None, "expected": expected, "log_p": log_p,
         "n_intervals": ep.n_intervals, "baseline_id": None,
@@ -129,14 +129,14 @@ def _group_values(run: GroupRun, group: str, *, step: int, hi: int, timezone: st
 def _refresh_detector_alert(conn: Connection, writer: AlertWriter, row: Any,
                             info: DetectorInfo, *, members: Sequence[str], group: str,
                             group_ids: Sequence[tuple[int, int, int]]) -> None:
-    """A member's alert: its cause from the neighbours, its summary and the group alert it is
+    """A member's alert: its cause from the neighbors, its summary and the group alert it is
     part of."""
     others = [m for m in members if m != row.detector_id]
     window_lo, window_hi = row.start_s - 2 * info.interval_s, row.end_s + 3 * info.interval_s
     cause = cause_for(row.kind, others=others,
-                      neighbour_kinds=store.neighbour_kinds(conn, others, window_lo, window_hi))
+                      neighbor_kinds=store.neighbor_kinds(conn, others, window_lo, window_hi))
     part_of = None
-    if row.kind == "no_data":
+    if row.kind == "no_reports":
         part_of = next((alert_id for start, last, alert_id in group_ids
                         if row.start_s <= last and row.end_s >= start), None)
     ep = Episode(subject=row.subject, detector_id=row.detector_id, kind=row.kind,

@@ -606,15 +606,15 @@ def _wild_days(ratio, groups, candidates):
     for code in np.unique(groups):
         members = candidates & (groups == code)
         if members.sum() >= 3:
-            centre = float(np.median(ratio[members]))
-            spread = 1.4826 * float(np.median(np.abs(ratio[members] - centre)))
+            center = float(np.median(ratio[members]))
+            spread = 1.4826 * float(np.median(np.abs(ratio[members] - center)))
             floor = DAY_RATIO_FLOOR
         else:  # too few days of this type to judge them among themselves
-            centre = overall
+            center = overall
             spread = 1.4826 * float(np.median(np.abs(ratio[candidates] - overall)))
             floor = math.log(2.5)
         threshold = max(DAY_RATIO_MADS * spread, floor)
-        wild |= (groups == code) & (np.abs(ratio - centre) > threshold)
+        wild |= (groups == code) & (np.abs(ratio - center) > threshold)
     return wild
 
 
@@ -660,7 +660,7 @@ class _WindowDays:
 
     day0: int  # first local day (days since 1970-01-01)
     scheduled_per_day: np.ndarray  # (span,) intervals scheduled on each day
-    centre_sum_s: np.ndarray  # (span,) sum of their starts (for each day's age)
+    center_sum_s: np.ndarray  # (span,) sum of their starts (for each day's age)
     observed_day: np.ndarray  # (T,) position of each observed interval's day in 0..span-1
     observed_bin: np.ndarray  # (T,) its local time-of-day bin
     day_types: np.ndarray  # (span,) day-type code of each day
@@ -682,7 +682,7 @@ def _window_days(t, *, window, interval_s, timezone, holiday_calendar, calendar,
     span = int(max(grid_s.local_day.max(), grid_o.local_day.max())) - day0 + 1
     sched_idx = grid_s.local_day.astype(np.intp) - day0
     scheduled_per_day = np.bincount(sched_idx, minlength=span)
-    centre = np.bincount(sched_idx, weights=sched.astype(float), minlength=span)
+    center = np.bincount(sched_idx, weights=sched.astype(float), minlength=span)
     obs_idx = grid_o.local_day.astype(np.intp) - day0
     observed_per_day = np.bincount(obs_idx, minlength=span)
     in_window = scheduled_per_day > 0
@@ -692,7 +692,7 @@ def _window_days(t, *, window, interval_s, timezone, holiday_calendar, calendar,
     return _WindowDays(
         day0=day0,
         scheduled_per_day=scheduled_per_day,
-        centre_sum_s=centre,
+        center_sum_s=center,
         observed_day=obs_idx,
         observed_bin=grid_o.bin,
         day_types=day_type_table(day0, day0 + span - 1, calendar),
@@ -728,7 +728,7 @@ def _day_matrices(days: _WindowDays, y, *, bins_per_day, window_end, half_life_d
     if half_life_days is None:
         weights = np.ones(day_ids.size)
     else:
-        age_s = window_end - days.centre_sum_s[day_ids] / days.scheduled_per_day[day_ids]
+        age_s = window_end - days.center_sum_s[day_ids] / days.scheduled_per_day[day_ids]
         weights = 0.5 ** (age_s / (half_life_days * SECONDS_PER_DAY))
     return _DayMatrices(Y=Y, X=X, types=days.day_types[day_ids],
                         scheduled=days.scheduled_per_day[day_ids].astype(float), weights=weights)

@@ -207,7 +207,7 @@ def negative_binomial_ml(
     level : float
         ML multiplier of ``mean``.
     alpha : float
-        ML NB2 alpha (0 when the likelihood is maximised at the Poisson boundary).
+        ML NB2 alpha (0 when the likelihood is maximized at the Poisson boundary).
     """
     y = np.asarray(counts, dtype=float).ravel()
     base = np.asarray(mean, dtype=float).ravel()
@@ -226,9 +226,9 @@ def negative_binomial_ml(
         return -_nb_loglik(y, state["level"] * base, alpha, w)
 
     moment = float(np.sum(w * ((y - m0) ** 2 - y)) / np.sum(w * m0**2))
-    centre = math.log(max(moment, 1e-12))
+    center = math.log(max(moment, 1e-12))
     res = optimize.minimize_scalar(
-        negative_profile, bounds=(centre - 12.0, centre + 8.0), method="bounded",
+        negative_profile, bounds=(center - 12.0, center + 8.0), method="bounded",
         options={"xatol": tol},
     )
     alpha = math.exp(float(res.x))

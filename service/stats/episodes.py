@@ -3,7 +3,7 @@
 Pure Python: no database, no web. The scoring pass (``service.pipeline.score``) stores flagged
 intervals as evidence rows; the functions here turn such rows (anything with the attributes of
 ``FlaggedInterval``) into ``Episode`` values, name a likely cause from what the detector's
-group neighbours show, and write the one-line summary. Times are epoch seconds (UTC), interval
+group neighbors show, and write the one-line summary. Times are epoch seconds (UTC), interval
 starts on the detector's grid; counts are vehicles per interval.
 """
 
@@ -17,8 +17,8 @@ from typing import Protocol
 from zoneinfo import ZoneInfo
 
 # Trade facts (to move to ``service.domain`` when it names them).
-LOW_KINDS = frozenset({"no_counts", "low_volume"})  # kinds that say traffic went missing
-NO_DATA_REOPEN_S = 2 * 3600  # gaps closer than this are one intermittent-reporting episode
+LOW_KINDS = frozenset({"zero_counts", "low_volume"})  # kinds that say traffic went missing
+NO_REPORTS_REOPEN_S = 2 * 3600  # gaps closer than this are one patchy-reporting episode
 
 GroupRun = tuple[int, int, list[str], float, float]  # start, last start, members, expected, log p
 
@@ -67,16 +67,16 @@ def episodes_from_rows(detector_id: str, rows: Sequence[FlaggedInterval], *, int
 
     An episode closes after ``close_after`` scored intervals without its flag; shorter gaps do
     not split it. Missing data closes as soon as data returns, but a new gap within
-    ``NO_DATA_REOPEN_S`` (or ``close_after`` intervals, if longer) reopens the same episode:
-    intermittent reporting is one alert, not one per gap."""
+    ``NO_REPORTS_REOPEN_S`` (or ``close_after`` intervals, if longer) reopens the same episode:
+    patchy reporting is one alert, not one per gap."""
     by_kind: dict[str, list[FlaggedInterval]] = {}
     for r in rows:
         by_kind.setdefault(r.kind, []).append(r)
     episodes: list[Episode] = []
     for kind, items in by_kind.items():
         items.sort(key=lambda r: r.start_s)
-        closing = 1 if kind == "no_data" else close_after
-        split = max(close_after, NO_DATA_REOPEN_S // interval_s) if kind == "no_data" \
+        closing = 1 if kind == "no_reports" else close_after
+        split = max(close_after, NO_REPORTS_REOPEN_S // interval_s) if kind == "no_reports" \
             else close_after
         for part in _runs(items, interval_s=interval_s, split=split):
             episodes.append(_episode(detector_id, kind, part, interval_s=interval_s,
@@ -104,7 +104,7 @@ def _episode(detector_id: str, kind: str, part: Sequence[FlaggedInterval], *, in
     """One run's episode: closed once ``closing`` intervals after its last were scored."""
     last = part[-1].start_s
     closes_at = last + interval_s * (closing + 1)
-    observed = None if kind == "no_data" else float(sum(p.observed or 0 for p in part))
+    observed = None if kind == "no_reports" else float(sum(p.observed or 0 for p in part))
     return Episode(
         subject=detector_id, detector_id=detector_id, kind=kind,
         start_s=part[0].start_s, end_s=last,
@@ -118,7 +118,7 @@ def communications_runs(rows: Sequence[FlaggedInterval], *, n_members: int, step
                         ) -> list[GroupRun]:
     """Stretches where most of a group's ``n_members`` detectors are flagged missing together.
 
-    ``rows`` are the group's ``no_data`` intervals; ``step`` the group's shortest interval (s).
+    ``rows`` are the group's ``no_reports`` intervals; ``step`` the group's shortest interval (s).
     Returns (start, last start, members, expected, strongest log p) per stretch."""
     need = max(2, math.ceil(n_members / 2))
     at: dict[int, dict[str, FlaggedInterval]] = {}
@@ -148,24 +148,24 @@ def _group_run(times: list[int], at: dict[int, dict[str, FlaggedInterval]]) -> G
 # ----------------------------------------------------------------------------- causes
 
 
-def cause_for(kind: str, *, others: Sequence[str], neighbour_kinds: dict[str, set[str]]) -> str:
-    """Likely cause of an episode from what the detector's group neighbours show meanwhile.
+def cause_for(kind: str, *, others: Sequence[str], neighbor_kinds: dict[str, set[str]]) -> str:
+    """Likely cause of an episode from what the detector's group neighbors show meanwhile.
 
-    ``traffic``: at least one neighbour deviates the same way at the same time (several
-    detectors of one group together point to traffic). ``detector``: the neighbours look
+    ``traffic``: at least one neighbor deviates the same way at the same time (several
+    detectors of one group together point to traffic). ``detector``: the neighbors look
     normal. ``communications``: missing data, or values frozen on several detectors at once
-    (a stuck controller or polling fault). ``unknown``: no neighbours to compare."""
-    if kind == "no_data":
+    (a stuck controller or polling fault). ``unknown``: no neighbors to compare."""
+    if kind == "no_reports":
         return "communications"
     if not others:
         return "unknown"
     if kind == "repeated_value":  # frozen together: the controller or its polling, not a loop
-        together = any("repeated_value" in neighbour_kinds.get(o, set()) for o in others)
+        together = any("repeated_value" in neighbor_kinds.get(o, set()) for o in others)
         return "communications" if together else "detector"
     if kind == "over_capacity":
         return "detector"
     same = LOW_KINDS if kind in LOW_KINDS else frozenset({"high_volume", "over_capacity"})
-    if any(neighbour_kinds.get(o, set()) & same for o in others):
+    if any(neighbor_kinds.get(o, set()) & same for o in others):
         return "traffic"
     return "detector"
 
@@ -197,9 +197,9 @@ def _when(start_s: int, span_end_s: int, timezone: str) -> str:
 def _cause_tail(cause: str, group: str | None) -> str:
     return {
         "detector": "likely a detector fault",
-        "traffic": f"neighbours in {group} deviate too — likely a traffic event",
+        "traffic": f"neighbors in {group} deviate too — likely a traffic event",
         "communications": "likely a communications loss",
-        "unknown": "cause unknown (no neighbours to compare)",
+        "unknown": "cause unknown (no neighbors to compare)",
     }[cause]
 
 
@@ -212,19 +212,20 @@ def summary_sentence(ep: Episode, cause: str, *, interval_s: int, timezone: str,
     length = _duration(span_end - ep.start_s)
     where = label or ep.detector_id or f"group {group}"
     tail = _cause_tail(cause, group)
-    if ep.kind == "no_data":
-        return _no_data_sentence(ep, where=where, length=length, when=when, tail=tail,
+    if ep.kind == "no_reports":
+        return _no_reports_sentence(ep, where=where, length=length, when=when, tail=tail,
                                  interval_s=interval_s, group=group, members=members)
     return _count_sentence(ep, cause, where=where, length=length, when=when, tail=tail)
 
 
-def _no_data_sentence(ep: Episode, *, where: str, length: str, when: str, tail: str,
+def _no_reports_sentence(ep: Episode, *, where: str, length: str, when: str, tail: str,
                       interval_s: int, group: str | None, members: Sequence[str]) -> str:
     if ep.detector_id is None:
         return (f"No reports from {len(members)} detectors of {group} for {length} ({when} "
                 f"local) — likely a controller or communications loss.")
     if ep.n_intervals * interval_s < ep.end_s + interval_s - ep.start_s:
-        return (f"{where}: intermittent reporting, {ep.n_intervals} intervals missing over "
+        spanned = (ep.end_s + interval_s - ep.start_s) // interval_s
+        return (f"{where}: reported {spanned - ep.n_intervals} of {spanned} intervals over "
                 f"{length} ({when} local) — {tail}.")
     return f"{where}: no reports for {length} ({when} local) — {tail}."
 
@@ -232,7 +233,7 @@ def _no_data_sentence(ep: Episode, *, where: str, length: str, when: str, tail: 
 def _count_sentence(ep: Episode, cause: str, *, where: str, length: str, when: str,
                     tail: str) -> str:
     observed, expected = ep.observed or 0.0, ep.expected
-    if ep.kind == "no_counts":
+    if ep.kind == "zero_counts":
         what = "dead loop or card" if cause == "detector" else "closure or blockage"
         return (f"{where}: counted 0 vehicles for {length} ({when} local) where about "
                 f"{expected:,.0f} were expected — {tail} ({what}).")

@@ -11,15 +11,15 @@ Time-of-day profile
     :data:`SMOOTHNESS_DF` degrees of freedom and precision ``lambda``. Near zero it acts like the
     usual quadratic penalty ``lambda/2 sum(d^2)``; its heavy tails (as in Kitagawa 1987, JASA
     82:1032-1041, for trends with jumps) make a sharp 15-minute peak cheap, so it is not blurred
-    into its neighbours, which a single quadratic penalty does whenever the rest of the day asks
+    into its neighbors, which a single quadratic penalty does whenever the rest of the day asks
     for strong smoothing. The penalty's pull is also divided by each bin's Fisher information
-    ``e * mu``, so busy bins follow their data and quiet ones borrow from their neighbours; every
+    ``e * mu``, so busy bins follow their data and quiet ones borrow from their neighbors; every
     rate is ``exp(beta) > 0``, also in bins whose totals are zero. This was preferred to a Fourier
     basis with harmonics chosen by BIC, which needs almost every harmonic for a 15-minute peak and
     rings around it (Gibbs).
 
 Choice of smoothness
-    ``lambda`` maximises the Laplace approximate marginal likelihood (LAML, the REML analogue for
+    ``lambda`` maximizes the Laplace approximate marginal likelihood (LAML, the REML analogue for
     GLMs; Wood 2011, JRSS B 73:3-36) at the posterior mode: ``l(beta) + log p(d) +
     (n-1)/2 log(lambda) - 1/2 log|H|`` with ``H = diag(w) + lambda D'VD`` and ``V`` the t prior's
     scale-mixture weights. Bins are stored in a folded order (0, n-1, 1, n-2, ...) in which the
@@ -81,7 +81,7 @@ def _cyclic_penalty(n: int) -> _Penalty:
 
     In natural order ``D' V D`` has diagonal ``v[i-1] + 4 v[i] + v[i+1]``, first off-diagonal
     ``-2 (v[i] + v[i+1])`` and second off-diagonal ``v[i+1]`` (cyclic). In the folded order
-    0, n-1, 1, n-2, ... every cyclic neighbour within two bins lies within four positions.
+    0, n-1, 1, n-2, ... every cyclic neighbor within two bins lies within four positions.
     """
     if n < 5:
         raise ValueError("a cyclic second-difference penalty needs at least 5 bins per day")
@@ -280,7 +280,7 @@ def penalised_log_rate_fit(
     cyclic second difference, ``phi = 1 + interval_alpha * mu`` fixed variance weights, and
     ``p`` a Gaussian (``smoothness_df=None``: the penalty ``lambda/2 |D beta|^2``) or Student-t
     prior with ``smoothness_df`` degrees of freedom and precision ``lambda``. ``lambda``
-    maximises the Laplace approximate marginal likelihood unless given.
+    maximizes the Laplace approximate marginal likelihood unless given.
 
     Parameters
     ----------
@@ -344,7 +344,7 @@ class _LamlSearch:
         self.seen: dict[float, float] = {}
 
     def __call__(self, rho: float) -> float:
-        """Negative LAML at ``rho`` (what scipy's minimisers minimise)."""
+        """Negative LAML at ``rho`` (what scipy's minimizers minimize)."""
         rho = float(rho)
         if rho in self.seen:
             return self.seen[rho]
@@ -390,7 +390,7 @@ def _walk_to_laml_peak(evaluate: _LamlSearch, rho: float, *, xatol: float) -> No
 
 def fit_profile(totals, exposures, inv_phi, *, nu, log_penalty=None, guess=None, bounds=None,
                 start=None, xatol=0.1) -> ProfileFit:
-    """Profile fit at a fixed ``log_penalty``, or with ``log(lambda)`` maximising LAML.
+    """Profile fit at a fixed ``log_penalty``, or with ``log(lambda)`` maximizing LAML.
 
     The search walks from ``guess`` in steps of :data:`_SEARCH_STEP` (each fit warm-started
     from the previous one, so each takes a few Newton steps) until LAML falls, then refines

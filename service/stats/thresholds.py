@@ -34,11 +34,11 @@ SECONDS_PER_WEEK = 7 * 24 * 3600
 # Bonferroni-style split of the weekly budget across the statistical test families; inside the
 # low and high volume families half goes to the single-interval tail test and half to the CUSUM.
 DEFAULT_SHARES = {
-    "no_counts": 0.2,
+    "zero_counts": 0.2,
     "low_volume": 0.2,
     "high_volume": 0.2,
     "repeated_value": 0.2,
-    "no_data": 0.2,
+    "no_reports": 0.2,
 }
 # The rate a detector's missing rate is floored at: with perfect completeness a lone gap would
 # otherwise be "impossible". Runs shorter than MIN_MISSING_RUN are never an alert.
@@ -182,9 +182,9 @@ class Thresholds:
     min_repeat : int
         Fewest identical counts in a row that can be flagged.
     missing_run : int
-        Missing intervals in a row that make a ``no_data`` alert.
+        Missing intervals in a row that make a ``no_reports`` alert.
     log_missing_rate : float
-        Natural log of the detector's missing rate used for ``no_data`` evidence.
+        Natural log of the detector's missing rate used for ``no_reports`` evidence.
     rho_low, rho_high : float
         Rate ratios the lower and upper CUSUMs are tuned to.
     h_low, h_high : float
@@ -241,15 +241,15 @@ def calibrate(
     """Derive every test's threshold from the weekly false-alert budget F.
 
     Let n be the intervals per week. Each family gets ``F * share`` (default a fifth each for
-    no_counts, low_volume, high_volume, repeated_value, no_data; over_capacity needs none,
+    zero_counts, low_volume, high_volume, repeated_value, no_reports; over_capacity needs none,
     its cap sits far above normal traffic). Per-interval significance is the family share
     over n (Bonferroni); low_volume and high_volume give half to the single-interval test
-    and half to the CUSUM. ``no_data`` needs the shortest run L >= 2 of missing intervals
+    and half to the CUSUM. ``no_reports`` needs the shortest run L >= 2 of missing intervals
     with ``n (1 - q) q^L`` at most its share, q the missing rate.
 
     With ``mu_week`` (the detector's expected vehicles for each interval of a week, and the
     same-length or scalar baseline dispersion) the discrete tests' expected false alerts
-    are computed under the model: exactly for the single-interval tests and for no_data;
+    are computed under the model: exactly for the single-interval tests and for no_reports;
     for zero runs by summing over run starts; for repeats taking each bin's expectation
     over the run. Discrete tests spend less than their share (a count cannot be 0.3 of a
     vehicle); the unspent part goes to the two CUSUMs, whose limit is continuous, so the
@@ -306,9 +306,9 @@ def calibrate(
     budget = _family_budgets(f_total, sh)
     log_a = {k: math.log(v / n) for k, v in budget.items()}
     q = min(max(float(missing_rate), MIN_MISSING_RATE), 0.5)
-    missing_run = _missing_run(budget["no_data"], n, q)
+    missing_run = _missing_run(budget["no_reports"], n, q)
     expected = dict(budget)
-    expected["no_data"] = n * (1.0 - q) * q**missing_run
+    expected["no_reports"] = n * (1.0 - q) * q**missing_run
     windows = (window_intervals(level_memory_s, interval_s),
                window_intervals(level_memory_max_s, interval_s),
                int(round(level_information * FIX_SCALE)))
@@ -331,7 +331,7 @@ def calibrate(
         interval_s=int(interval_s),
         log_alpha_low=log_a["low_volume_interval"],
         log_alpha_high=log_a["high_volume_interval"],
-        log_alpha_zero_run=log_a["no_counts"],
+        log_alpha_zero_run=log_a["zero_counts"],
         log_alpha_repeat=log_a["repeated_value"],
         min_repeat=int(min_repeat),
         missing_run=int(missing_run),
@@ -369,13 +369,13 @@ def _family_budgets(f_total: float, sh: Mapping[str, float]) -> dict[str, float]
     """Expected false alerts per week each test may spend: the family shares, the low and high
     volume families halved between their single-interval test and their CUSUM."""
     return {
-        "no_counts": f_total * sh["no_counts"],
+        "zero_counts": f_total * sh["zero_counts"],
         "low_volume_interval": 0.5 * f_total * sh["low_volume"],
         "low_volume_cusum": 0.5 * f_total * sh["low_volume"],
         "high_volume_interval": 0.5 * f_total * sh["high_volume"],
         "high_volume_cusum": 0.5 * f_total * sh["high_volume"],
         "repeated_value": f_total * sh["repeated_value"],
-        "no_data": f_total * sh["no_data"],
+        "no_reports": f_total * sh["no_reports"],
     }
 
 
@@ -397,8 +397,8 @@ def _expected_discrete(mu, alpha, level_var, ia, sig2, log_a, *, min_repeat, sca
     expected["low_volume_interval"] = scale * float(p_lo.sum())
     expected["high_volume_interval"] = scale * float(
         np.exp(log_p_upper(c_hi, mu, alpha)).sum())
-    expected["no_counts"] = scale * _expected_zero_runs(
-        mu, alpha, level_var, ia, sig2, log_a["no_counts"])
+    expected["zero_counts"] = scale * _expected_zero_runs(
+        mu, alpha, level_var, ia, sig2, log_a["zero_counts"])
     expected["repeated_value"] = scale * _expected_repeats(
         mu, alpha, log_a["repeated_value"], min_repeat)
     return expected
@@ -407,8 +407,8 @@ def _expected_discrete(mu, alpha, level_var, ia, sig2, log_a, *, min_repeat, sca
 def _move_slack_to_cusums(budget: dict[str, float], expected: dict[str, float]) -> None:
     """Give what the discrete tests leave unspent (less what they overspend) to the two CUSUMs,
     half each, never below a tenth of their own share (updates both mappings)."""
-    discrete = ("no_counts", "low_volume_interval", "high_volume_interval",
-                "repeated_value", "no_data")
+    discrete = ("zero_counts", "low_volume_interval", "high_volume_interval",
+                "repeated_value", "no_reports")
     slack = sum(budget[k] - min(expected[k], budget[k]) for k in discrete)
     overspend = sum(max(expected[k] - budget[k], 0.0) for k in discrete)
     for side in ("low_volume_cusum", "high_volume_cusum"):

@@ -28,13 +28,13 @@ joint probability of the sequence, so sequential tests on them need no independe
 
 Tests and their families
 ------------------------
-``no_counts``
+``zero_counts``
     a run of zero counts; probability of the whole run, ``exp(-sum lambda)`` for Poisson and the
     moment-matched gamma mixture ``(1 + Var/M)^(-M^2/Var)`` otherwise, judged against the level
     posterior as it stood when the run began.
 ``low_volume`` / ``high_volume``
     single-interval tail probabilities (lower tail for counts of at least one; zeros belong to
-    ``no_counts``) and a one-sided CUSUM of the log-likelihood ratio for a rate ratio ``rho``
+    ``zero_counts``) and a one-sided CUSUM of the log-likelihood ratio for a rate ratio ``rho``
     (Lucas 1985; Poisson increment ``y ln rho - m (rho - 1)``, negative binomial increment
     ``y ln rho - (y + 1/alpha) ln((1 + alpha rho m)/(1 + alpha m))``). An alarm is held while the
     shift lasts (statistic capped at 1.25 h, released below h/2, then restarted from zero), so
@@ -50,7 +50,7 @@ Tests and their families
     next ``k - 1`` present intervals repeat the first one's value exactly.
 ``over_capacity``
     a count above the physical cap (``capacity.capacity_cap``), whatever the baseline says.
-``no_data``
+``no_reports``
     a run of ``k`` missing intervals has probability ``q^k`` under the detector's missing rate ``q``;
     a lone missing interval is ragged data, never an alert.
 
@@ -271,7 +271,7 @@ def _missing_runs(present, warm: WarmState) -> np.ndarray:
     return miss_len
 
 
-_SCORED_KINDS = ("no_counts", "low_volume", "high_volume", "repeated_value", "over_capacity")
+_SCORED_KINDS = ("zero_counts", "low_volume", "high_volume", "repeated_value", "over_capacity")
 _STATE_KEYS = ("s_low", "s_high", "rep_sum", "zref", "zref_var")
 
 
@@ -317,8 +317,8 @@ class _Timeline:
         self.flag = {k: np.zeros(n, dtype=bool) for k in KINDS}
         self.log_p = {k: np.zeros(n) for k in KINDS}
         self.flag["over_capacity"][:] = self.over
-        self.flag["no_data"][:] = self.miss_len >= thresholds.missing_run
-        self.log_p["no_data"][:] = self.miss_len * thresholds.log_missing_rate
+        self.flag["no_reports"][:] = self.miss_len >= thresholds.missing_run
+        self.log_p["no_reports"][:] = self.miss_len * thresholds.log_missing_rate
 
     # -- state just after interval i - 1 -------------------------------------------------------
     def _before(self, key: str, i: int, warm_value):
@@ -432,10 +432,10 @@ class _Timeline:
             "loc": loc, "m": m, "level": level, "level_var": level_var,
             "s_low": s_low, "s_high": s_high,
             "rep_sum": rep_sum, "zref": zref, "zref_var": zvar,
-            "flags": {"no_counts": f_zero, "low_volume": f_low, "high_volume": f_high,
+            "flags": {"zero_counts": f_zero, "low_volume": f_low, "high_volume": f_high,
                       "repeated_value": f_rep, "over_capacity": over},
             "log_p": {
-                "no_counts": lp_zero,
+                "zero_counts": lp_zero,
                 "low_volume": np.minimum(np.where(yp >= 1, log_lower, 0.0),
                                          -np.abs(s_low) / FIX_SCALE),
                 "high_volume": np.minimum(log_upper, -np.abs(s_high) / FIX_SCALE),

@@ -1,6 +1,6 @@
 """The cheap statements behind ``GET /v1/health``.
 
-Monitoring polls health often, so every statement here is an index look-up or a catalogue
+Monitoring polls health often, so every statement here is an index look-up or a catalog
 read: no exact ``count(*)`` and no table scan. Row counts are the database's own estimates
 (SQLite: the largest rowid, exact while rows are never deleted; PostgreSQL: the live-tuple
 statistic or the planner's row estimate, whichever is larger — current within seconds of a

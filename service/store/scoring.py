@@ -340,7 +340,7 @@ def evidence_rows(conn: Connection, detector_ids: Sequence[str], lo: int, hi: in
     return list(conn.execute(q.order_by(e.c.detector_id, e.c.kind, e.c.start_s)).all())
 
 
-def neighbour_kinds(conn: Connection, others: Sequence[str], lo: int, hi: int
+def neighbor_kinds(conn: Connection, others: Sequence[str], lo: int, hi: int
                     ) -> dict[str, set[str]]:
     """The kinds each of ``others`` was flagged with in [lo, hi)."""
     out: dict[str, set[str]] = {}

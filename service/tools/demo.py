@@ -160,7 +160,7 @@ def demo_plot(base: str, key: str, truth: dict[str, Any], alerts: list[dict[str,
     from service.tools.plots import plot_day
 
     target = next((i for i in truth["injections"] if i.get("period") == "test"
-                   and i["kind"] == "no_counts"), None)
+                   and i["kind"] == "zero_counts"), None)
     if target is None:
         return None
     det = target["detector_ids"][0]

@@ -21,12 +21,12 @@ import orjson
 from service.timefmt import parse_rfc3339
 
 MATCHING_KINDS = {
-    "no_counts": {"no_counts", "low_volume"},
-    "low_volume": {"low_volume", "no_counts"},
+    "zero_counts": {"zero_counts", "low_volume"},
+    "low_volume": {"low_volume", "zero_counts"},
     "high_volume": {"high_volume", "over_capacity"},
     "over_capacity": {"over_capacity", "high_volume"},
     "repeated_value": {"repeated_value"},
-    "no_data": {"no_data"},
+    "no_reports": {"no_reports"},
 }
 SLACK_S = 3600
 DAY_S = 86_400
@@ -64,7 +64,7 @@ def _span(alert: dict[str, Any]) -> tuple[int, int]:
 
 
 def _touches(alert: dict[str, Any], inj: dict[str, Any]) -> bool:
-    if inj["kind"] == "no_data" and alert["detector_id"] is None:
+    if inj["kind"] == "no_reports" and alert["detector_id"] is None:
         return alert["group"] == inj["group"]
     return alert["detector_id"] in inj["detector_ids"]
 

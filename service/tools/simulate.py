@@ -60,7 +60,7 @@ TEST_DAYS = 14
 LONE_MISSING_FRACTION = 0.005
 
 FACILITIES = ("mainline", "ramp", "approach", "road")
-ACTIONS = ("zero", "scale", "scale_range", "freeze", "absent", "intermittent")
+ACTIONS = ("zero", "scale", "scale_range", "freeze", "absent", "patchy")
 ALERT_KINDS = KINDS
 CAUSES = ("detector", "traffic", "communications")  # the causes an injection can have
 
@@ -86,7 +86,7 @@ class DayShape:
     ----------
     floor : float
         Constant part (relative units), the night-time level.
-    bumps : tuple of (centre_h, sigma_h, weight)
+    bumps : tuple of (center_h, sigma_h, weight)
         Gaussian bumps in local clock hours, wrapped around midnight.
     """
 
@@ -98,9 +98,9 @@ class DayShape:
         hour_local = np.asarray(hour_local, dtype=np.float64)
         value = np.full(hour_local.shape, self.floor)
         total = self.floor * 24.0
-        for centre, sigma, weight in self.bumps:
+        for center, sigma, weight in self.bumps:
             for wrap in (-24.0, 0.0, 24.0):
-                value += weight * np.exp(-0.5 * ((hour_local - centre + wrap) / sigma) ** 2)
+                value += weight * np.exp(-0.5 * ((hour_local - center + wrap) / sigma) ** 2)
             total += weight * sigma * math.sqrt(2.0 * math.pi)
         return value / total
 
@@ -398,7 +398,7 @@ class Injection:
         What was done to the counts (one of :data:`ACTIONS`): ``zero`` (counts set to 0),
         ``scale`` (rate times ``factors[i]`` for ``detector_ids[i]``), ``scale_range`` (rate
         times a factor drawn uniformly in ``factors`` per interval), ``freeze`` (first count
-        of the window, at least 1, repeated), ``absent`` (rows removed), ``intermittent``
+        of the window, at least 1, repeated), ``absent`` (rows removed), ``patchy``
         (rows removed in short bursts, about ``factors[0]`` of them).
     factors : tuple of float
     """
@@ -417,7 +417,7 @@ class Injection:
 
     def __post_init__(self) -> None:
         if self.kind not in ALERT_KINDS or self.cause not in CAUSES or self.action not in ACTIONS:
-            raise ValueError(f"{self.id}: kind, cause or action not recognised")
+            raise ValueError(f"{self.id}: kind, cause or action not recognized")
         if self.end_s <= self.start_s or not self.detector_ids:
             raise ValueError(f"{self.id}: empty window or no detectors")
         if self.action == "scale" and len(self.factors) != len(self.detector_ids):
@@ -806,22 +806,22 @@ def _scenario_injections(
     # fmt: off
     plan = (
         # id, kind, cause, detectors, start, end, action, factors, description
-        ("H01", "no_counts", "detector", ("kfw-nb-054-l2",),
+        ("H01", "zero_counts", "detector", ("kfw-nb-054-l2",),
          at(2026, 10, 22), at(2026, 10, 23), "zero", (),
          "Dead loop card for a whole Thursday: zeros on one freeway lane."),
         ("H02", "high_volume", "detector", ("bra3-nb-t1",),
          at(2026, 10, 27, 13), at(2026, 10, 27, 18), "scale_range", (2.0, 3.0),
          "Chattering loop for an afternoon: counts x2-3 on one approach lane."),
-        ("H03", "no_data", "communications", members.get("lnp", ()),
+        ("H03", "no_reports", "communications", members.get("lnp", ()),
          at(2026, 11, 4, 2), at(2026, 11, 4, 6), "absent", (),
          "Linden Pike cabinet modem down overnight: no reports from the group for 4 h."),
         ("H04", "repeated_value", "detector", ("kfw-sb-off-x4",),
          at(2026, 11, 7, 8), at(2026, 11, 7, 14), "freeze", (),
          "Polling fault on a Saturday morning: one off-ramp repeats one count for 6 h."),
-        ("T01", "no_counts", "detector", ("kfw-sb-054-l1",),
+        ("T01", "zero_counts", "detector", ("kfw-sb-054-l1",),
          at(2026, 11, 17, 17, 10), at(2026, 11, 18, 11), "zero", (),
          "Freeway lane stuck at zero from the PM peak until the next morning."),
-        ("T02", "no_counts", "detector", ("bra3-wb-t1",),
+        ("T02", "zero_counts", "detector", ("bra3-wb-t1",),
          at(2026, 11, 19, 1, 40), at(2026, 11, 19, 18), "zero", (),
          "Approach lane stuck at zero from 01:40; noticeable only once morning traffic builds."),
         ("T03", "high_volume", "detector", ("fencal-wb-t1",),
@@ -830,16 +830,16 @@ def _scenario_injections(
         ("T04", "over_capacity", "detector", ("kfw-sb-031-l2",),
          at(2026, 11, 20, 15), at(2026, 11, 20, 19), "scale_range", (2.6, 3.0),
          "Chattering freeway lane through the PM peak: x2.6-3, beyond lane capacity."),
-        ("T05", "no_counts", "detector", ("fencal-eb-t2",),
+        ("T05", "zero_counts", "detector", ("fencal-eb-t2",),
          at(2026, 11, 20, 9), at(2026, 11, 21, 12), "zero", (),
-         "One lane of the eastbound through pair dead; its neighbour t1 counts normally."),
+         "One lane of the eastbound through pair dead; its neighbor t1 counts normally."),
         ("T06", "repeated_value", "detector", ("kfw-nb-on-x5",),
          at(2026, 11, 21, 13), at(2026, 11, 22, 9), "freeze", (),
          "Frozen controller: one on-ramp repeats the same nonzero count for 20 h."),
-        ("T07", "no_data", "communications", ("bra3-sb-t1",),
-         day_start, day_start + 86400, "intermittent", (0.33,),
+        ("T07", "no_reports", "communications", ("bra3-sb-t1",),
+         day_start, day_start + 86400, "patchy", (0.33,),
          "Flaky serial link: about a third of one lane's reports lost in short bursts all day."),
-        ("T08", "no_data", "communications", members.get("bra3-eb", ()),
+        ("T08", "no_reports", "communications", members.get("bra3-eb", ()),
          offline_start, offline_start + 3600, "absent", (),
          "Brannock & Third eastbound controller offline for an hour."),
         ("T09", "low_volume", "detector", ("orx-wb-s2",),
@@ -856,7 +856,7 @@ def _scenario_injections(
         ("T12", "high_volume", "traffic", members.get("fencal-nb", ()),
          at(2026, 11, 28, 17, 30), at(2026, 11, 28, 20), "scale", (2.2,),
          "Arena event on Saturday evening: Calder St northbound approach x2.2 for 2.5 h."),
-        ("T13", "no_counts", "detector", ("qry-01-eb",),
+        ("T13", "zero_counts", "detector", ("qry-01-eb",),
          at(2026, 11, 22, 22), at(2026, 11, 24, 12), "zero", (),
          "Rural count station stuck at zero from Sunday night; night zeros are normal here."),
     )
@@ -1000,7 +1000,7 @@ def generate_network(
         lone = missing_rng.random(starts.shape) < lone_missing_fraction
         lone[1:] &= ~lone[:-1]
         for inj in scenario:
-            if spec.detector_id in inj.detector_ids and inj.action in ("absent", "intermittent"):
+            if spec.detector_id in inj.detector_ids and inj.action in ("absent", "patchy"):
                 lone &= ~(
                     (starts >= inj.start_s - spec.interval_s)
                     & (starts < inj.end_s + spec.interval_s)
@@ -1017,7 +1017,7 @@ def generate_network(
                 counts[window] = max(int(counts[window][0]), 1)
             elif inj.action == "absent":
                 present &= ~window
-            elif inj.action == "intermittent":
+            elif inj.action == "patchy":
                 lost = _burst_gaps(inject_rng, int(window.sum()), inj.factors[0])
                 present[np.flatnonzero(window)[lost]] = False
             else:

@@ -81,14 +81,14 @@ def dead_at_peak(net, det="bra3-nb-t1"):  # type: ignore[no-untyped-def]
 
 @pytest.mark.slow
 def test_dead_detector_at_peak_raises_one_detector_alert(database_url, engine, network) -> None:
-    """A lane stuck at zero through the morning peak: one no_counts alert, cause detector,
+    """A lane stuck at zero through the morning peak: one zero_counts alert, cause detector,
     raised within 30 minutes, closed once counts return."""
     settings = scoring_settings(database_url)
     prepared(engine, settings, network)
     edit, lo, hi = dead_at_peak(network)
     post(engine, period_rows(network, edit=edit))
     score.score_until_idle(engine, settings)
-    alerts = [a for a in visible_alerts(engine) if a[0] == "bra3-nb-t1" and a[1] == "no_counts"]
+    alerts = [a for a in visible_alerts(engine) if a[0] == "bra3-nb-t1" and a[1] == "zero_counts"]
     assert len(alerts) == 1, visible_alerts(engine)
     subject, kind, start, end, status, cause, n = alerts[0]
     assert cause == "detector" and status == "closed"
@@ -152,7 +152,7 @@ def prepared_template(tmp_path_factory, sqlite_template, network):  # type: igno
     score.score_until_idle(engine, scoring_settings(f"sqlite:///{scored}"))
     expected = visible_alerts(engine)
     engine.dispose()
-    assert any(a[1] == "no_counts" for a in expected), expected
+    assert any(a[1] == "zero_counts" for a in expected), expected
     return template, expected
 
 
@@ -203,7 +203,7 @@ def test_group_offline_raises_one_communications_alert(database_url, engine, net
     hi = lo + HOUR
     post(engine, period_rows(network, edit=lambda r: None if lo <= r[1] < hi else r))
     score.score_until_idle(engine, settings)
-    shown = [a for a in visible_alerts(engine) if a[1] == "no_data"]
+    shown = [a for a in visible_alerts(engine) if a[1] == "no_reports"]
     assert len(shown) == 1, visible_alerts(engine)
     subject, kind, start, end, status, cause, n = shown[0]
     assert subject == "group:bra3-nb" and cause == "communications"
@@ -218,7 +218,7 @@ def test_lone_missing_interval_raises_nothing(database_url, engine, network) -> 
     gap = network.test_start_s + 12 * HOUR
     post(engine, period_rows(network, edit=lambda r: None if r[1] == gap and r[0] == GROUP[0] else r))
     score.score_until_idle(engine, settings)
-    assert not [a for a in visible_alerts(engine) if a[1] == "no_data"]
+    assert not [a for a in visible_alerts(engine) if a[1] == "no_reports"]
 
 
 @pytest.mark.slow
@@ -238,7 +238,7 @@ def test_incident_on_whole_group_is_traffic(database_url, engine, network) -> No
 
     post(engine, period_rows(network, edit=edit))
     score.score_until_idle(engine, settings)
-    low = [a for a in visible_alerts(engine) if a[1] in ("low_volume", "no_counts")
+    low = [a for a in visible_alerts(engine) if a[1] in ("low_volume", "zero_counts")
            and a[2] < hi and a[3] >= lo]
     assert len({a[0] for a in low}) >= 2, visible_alerts(engine)
     assert all(a[5] == "traffic" for a in low), low

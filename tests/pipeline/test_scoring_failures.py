@@ -54,7 +54,7 @@ def reference_alerts(fitted: Fitted, rows: list[list]) -> set[tuple]:
     fitted.assert_drained()
     expected = visible_alerts(fitted.engine)
     for det in (BROKEN, HEALTHY):
-        assert any(a[0] == det and a[1] == "no_counts" for a in expected), expected
+        assert any(a[0] == det and a[1] == "zero_counts" for a in expected), expected
     fitted.reset()
     return expected
 
@@ -246,7 +246,7 @@ def test_live_server_keeps_scoring_past_a_broken_detector(database_url, fitted, 
     assert body["status"] == "degraded", body
     assert [f["detector_id"] for f in body["scoring"]["failing"]] == [BROKEN]
     assert body["scoring"]["failing"][0]["failures"] >= store_scoring.DEGRADED_AFTER_FAILURES
-    assert any(a["kind"] == "no_counts" and not a["withdrawn"] for a in alerts), alerts
+    assert any(a["kind"] == "zero_counts" and not a["withdrawn"] for a in alerts), alerts
 
 
 def rfc3339_s(t: int) -> str:

@@ -34,8 +34,8 @@ def _epoch(local_iso: str, timezone: str = CHICAGO) -> int:
     return int(datetime.fromisoformat(local_iso).replace(tzinfo=ZoneInfo(timezone)).timestamp())
 
 
-def _bump(hours: np.ndarray, centre: float, width: float) -> np.ndarray:
-    return np.exp(-0.5 * ((hours - centre) / width) ** 2)
+def _bump(hours: np.ndarray, center: float, width: float) -> np.ndarray:
+    return np.exp(-0.5 * ((hours - center) / width) ** 2)
 
 
 def _rhythm(interval_s: int = 300, scale: float = 1.0) -> np.ndarray:
@@ -255,7 +255,7 @@ def test_student_t_profile_is_a_mode_of_its_penalised_likelihood():
     np.testing.assert_allclose(res.x, log_rate, atol=1e-4)
 
 
-def test_sharp_quarter_hour_peak_is_not_blurred_into_its_neighbours():
+def test_sharp_quarter_hour_peak_is_not_blurred_into_its_neighbors():
     """On expected totals the t-prior profile keeps a 3-bin 1.8x peak; a quadratic one spills it."""
     truth = _rhythm(300)[0]
     exposures = np.full(288, 35.0)
@@ -267,7 +267,7 @@ def test_sharp_quarter_hour_peak_is_not_blurred_into_its_neighbours():
         assert np.abs(fitted[busy] / truth[busy] - 1).max() < 0.02  # dry run: 0.5 % and 1.2 %
         quadratic = np.exp(smoothing.penalised_log_rate_fit(totals, exposures, smoothness_df=None,
                                                      interval_alpha=interval_alpha)[0])
-        # the same LAML choice with a single quadratic penalty lifts the neighbours (bins 179 and
+        # the same LAML choice with a single quadratic penalty lifts the neighbors (bins 179 and
         # 183) by 6.5-11 % and cuts the peak's edges (dry run)
         assert min(quadratic[179] / truth[179], quadratic[183] / truth[183]) > 1.05
 

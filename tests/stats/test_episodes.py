@@ -7,7 +7,7 @@ from dataclasses import dataclass
 import pytest
 
 from service.stats.episodes import (
-    NO_DATA_REOPEN_S,
+    NO_REPORTS_REOPEN_S,
     Episode,
     cause_for,
     communications_runs,
@@ -57,7 +57,7 @@ def test_gap_of_close_after_intervals_splits_episodes() -> None:
 
 def test_episode_stays_open_until_close_after_intervals_are_scored() -> None:
     """Closed only once close_after unflagged intervals after its last flag have been scored."""
-    rows = flags("no_counts", [10, 11])
+    rows = flags("zero_counts", [10, 11])
     (still_open,) = episodes(rows, scored_through=11 + 3)
     (closed,) = episodes(rows, scored_through=11 + 4)
     assert still_open.status == "open" and still_open.closed_s is None
@@ -75,27 +75,27 @@ def test_episode_sums_counts_and_keeps_strongest_log_p() -> None:
 
 def test_kinds_form_separate_episodes() -> None:
     """Flags of different kinds on the same intervals are episodes of their own."""
-    got = episodes(flags("no_counts", [0, 1]) + flags("repeated_value", [0, 1]))
-    assert sorted(ep.kind for ep in got) == ["no_counts", "repeated_value"]
+    got = episodes(flags("zero_counts", [0, 1]) + flags("repeated_value", [0, 1]))
+    assert sorted(ep.kind for ep in got) == ["repeated_value", "zero_counts"]
 
 
 def test_missing_data_closes_as_soon_as_data_returns() -> None:
-    """A no_data episode closes one interval after its last missing interval, not close_after."""
-    (ep,) = episodes(flags("no_data", [0, 1], observed=None), scored_through=3)
+    """A no_reports episode closes one interval after its last missing interval, not close_after."""
+    (ep,) = episodes(flags("no_reports", [0, 1], observed=None), scored_through=3)
     assert ep.status == "closed" and ep.closed_s == T0 + 2 * STEP and ep.observed is None
 
 
-def test_intermittent_reporting_within_reopen_window_is_one_episode() -> None:
-    """Gaps less than NO_DATA_REOPEN_S apart reopen the same missing-data episode."""
-    within = NO_DATA_REOPEN_S // STEP - 1  # unflagged intervals between the two gaps
-    (ep,) = episodes(flags("no_data", [0, within + 1], observed=None))
+def test_patchy_reporting_within_reopen_window_is_one_episode() -> None:
+    """Gaps less than NO_REPORTS_REOPEN_S apart reopen the same missing-data episode."""
+    within = NO_REPORTS_REOPEN_S // STEP - 1  # unflagged intervals between the two gaps
+    (ep,) = episodes(flags("no_reports", [0, within + 1], observed=None))
     assert ep.n_intervals == 2 and ep.end_s == T0 + (within + 1) * STEP
 
 
 def test_missing_data_gaps_further_apart_are_two_episodes() -> None:
-    """Gaps NO_DATA_REOPEN_S or more apart are separate missing-data episodes."""
-    apart = NO_DATA_REOPEN_S // STEP  # unflagged intervals between the two gaps
-    assert len(episodes(flags("no_data", [0, apart + 1], observed=None))) == 2
+    """Gaps NO_REPORTS_REOPEN_S or more apart are separate missing-data episodes."""
+    apart = NO_REPORTS_REOPEN_S // STEP  # unflagged intervals between the two gaps
+    assert len(episodes(flags("no_reports", [0, apart + 1], observed=None))) == 2
 
 
 def test_rows_out_of_order_give_the_same_episodes() -> None:
@@ -104,31 +104,31 @@ def test_rows_out_of_order_give_the_same_episodes() -> None:
     assert episodes(rows[::-1]) == episodes(rows)
 
 
-@pytest.mark.parametrize(("kind", "neighbours", "cause"), [
-    ("no_data", {}, "communications"),
+@pytest.mark.parametrize(("kind", "neighbors", "cause"), [
+    ("no_reports", {}, "communications"),
     ("low_volume", None, "unknown"),
-    ("low_volume", {"n1": {"no_counts"}}, "traffic"),
-    ("no_counts", {"n1": {"high_volume"}}, "detector"),
+    ("low_volume", {"n1": {"zero_counts"}}, "traffic"),
+    ("zero_counts", {"n1": {"high_volume"}}, "detector"),
     ("high_volume", {"n1": {"over_capacity"}}, "traffic"),
     ("high_volume", {}, "detector"),
     ("over_capacity", {"n1": {"high_volume"}}, "detector"),
     ("repeated_value", {"n1": {"repeated_value"}}, "communications"),
     ("repeated_value", {"n1": {"low_volume"}}, "detector"),
 ])
-def test_cause_follows_what_the_neighbours_show(kind: str, neighbours: dict[str, set[str]] | None,
+def test_cause_follows_what_the_neighbors_show(kind: str, neighbors: dict[str, set[str]] | None,
                                                 cause: str) -> None:
-    """Same-direction deviation on a neighbour means traffic, normal neighbours a detector
-    fault, missing data or values frozen together communications, no neighbours unknown."""
-    others = [] if neighbours is None else ["n1", "n2"]
-    assert cause_for(kind, others=others, neighbour_kinds=neighbours or {}) == cause
+    """Same-direction deviation on a neighbor means traffic, normal neighbors a detector
+    fault, missing data or values frozen together communications, no neighbors unknown."""
+    others = [] if neighbors is None else ["n1", "n2"]
+    assert cause_for(kind, others=others, neighbor_kinds=neighbors or {}) == cause
 
 
 def test_communications_runs_need_most_of_the_group_missing_together() -> None:
     """Two of three members missing together form a run; one alone does not; a gap of more
     than one interval ends the run."""
-    rows = (flags("no_data", [0, 1, 2, 6], detector_id="a", observed=None)
-            + flags("no_data", [0, 1, 6], detector_id="b", observed=None)
-            + flags("no_data", [5], detector_id="c", observed=None))
+    rows = (flags("no_reports", [0, 1, 2, 6], detector_id="a", observed=None)
+            + flags("no_reports", [0, 1, 6], detector_id="b", observed=None)
+            + flags("no_reports", [5], detector_id="c", observed=None))
     runs = communications_runs(rows, n_members=3, step=STEP)
     assert [(r[0], r[1], r[2]) for r in runs] == [(T0, T0 + STEP, ["a", "b"]),
                                                   (T0 + 6 * STEP, T0 + 6 * STEP, ["a", "b"])]
@@ -136,25 +136,25 @@ def test_communications_runs_need_most_of_the_group_missing_together() -> None:
 
 
 def test_summary_names_a_dead_detector_fault() -> None:
-    """A no_counts episode blamed on the detector reads as a dead loop with the local time."""
-    ep = Episode(subject=DET, detector_id=DET, kind="no_counts", start_s=T0, end_s=T0 + 11 * STEP,
+    """A zero_counts episode blamed on the detector reads as a dead loop with the local time."""
+    ep = Episode(subject=DET, detector_id=DET, kind="zero_counts", start_s=T0, end_s=T0 + 11 * STEP,
                  closed_s=None, n_intervals=12, observed=0.0, expected=240.0, log_p=-30.0)
     text = summary_sentence(ep, "detector", interval_s=STEP, timezone="UTC", label="Main St NB")
     assert text == ("Main St NB: counted 0 vehicles for 1 h (Thu 00:00–01:00 local) where about "
                     "240 were expected — likely a detector fault (dead loop or card).")
 
 
-def test_summary_calls_gappy_missing_data_intermittent() -> None:
-    """A missing-data episode with reported intervals inside reads as intermittent reporting."""
-    ep = Episode(subject=DET, detector_id=DET, kind="no_data", start_s=T0, end_s=T0 + 5 * STEP,
+def test_summary_of_gappy_missing_data_says_how_many_intervals_arrived() -> None:
+    """A missing-data episode with reported intervals inside says what was reported."""
+    ep = Episode(subject=DET, detector_id=DET, kind="no_reports", start_s=T0, end_s=T0 + 5 * STEP,
                  closed_s=T0 + 6 * STEP, n_intervals=2, observed=None, expected=20.0, log_p=-8.0)
     text = summary_sentence(ep, "communications", interval_s=STEP, timezone="UTC")
-    assert text.startswith(f"{DET}: intermittent reporting, 2 intervals missing over 30 min")
+    assert text.startswith(f"{DET}: reported 4 of 6 intervals over 30 min")
 
 
 def test_summary_of_group_outage_counts_its_members() -> None:
     """A group's missing-data episode names the group and how many detectors went silent."""
-    ep = Episode(subject="group:g1", detector_id=None, kind="no_data", start_s=T0,
+    ep = Episode(subject="group:g1", detector_id=None, kind="no_reports", start_s=T0,
                  end_s=T0 + 3 * STEP, closed_s=None, n_intervals=4, observed=None, expected=0.0,
                  log_p=-8.0)
     text = summary_sentence(ep, "communications", interval_s=STEP, timezone="UTC", group="g1",

@@ -33,13 +33,13 @@ def count_episodes(ev, *, close_after: int) -> int:  # type: ignore[no-untyped-d
     """Alert episodes as ``service.pipeline.score.episodes_from_rows`` forms them: flagged
     intervals of one kind, split by ``close_after`` or more unflagged ones (missing data by
     two hours of reporting, as there)."""
-    from service.stats.episodes import NO_DATA_REOPEN_S
+    from service.stats.episodes import NO_REPORTS_REOPEN_S
 
     total = 0
     for kind in KINDS:
         idx = np.flatnonzero(np.asarray(ev.flag[kind], bool))
         if idx.size:
-            split = max(close_after, NO_DATA_REOPEN_S // INTERVAL_S) if kind == "no_data" \
+            split = max(close_after, NO_REPORTS_REOPEN_S // INTERVAL_S) if kind == "no_reports" \
                 else close_after
             total += 1 + int(np.sum(np.diff(idx) - 1 >= split))
     return total
@@ -423,7 +423,7 @@ def test_capacity_cap_scales_with_lanes_interval_margin_and_override():
 
 def test_thresholds_split_the_budget_bonferroni_style():
     """Without a profile each family's share F/5 over the week's intervals sets its alpha, the
-    CUSUM limit is log ARL0 (Lorden's conservative bound) and no_data needs a run of q^L."""
+    CUSUM limit is log ARL0 (Lorden's conservative bound) and no_reports needs a run of q^L."""
     th = calibrate(0.05, interval_s=INTERVAL_S, missing_rate=0.01)
     assert th.log_alpha_zero_run == pytest.approx(math.log(0.05 * 0.2 / PER_WEEK))
     assert th.log_alpha_low == pytest.approx(math.log(0.05 * 0.1 / PER_WEEK))
@@ -492,7 +492,7 @@ def test_chunked_scoring_is_identical_to_one_call():
         assert np.array_equal(np.concatenate([p.flag[kind] for p in parts]), whole.flag[kind])
         assert np.array_equal(np.concatenate([p.log_p[kind] for p in parts]), whole.log_p[kind])
     assert np.array_equal(np.concatenate([p.expected for p in parts]), whole.expected)
-    assert whole.flag["no_counts"][3000:3040].any() and whole.flag["repeated_value"].any()
+    assert whole.flag["zero_counts"][3000:3040].any() and whole.flag["repeated_value"].any()
 
 
 def test_warm_state_must_continue_the_timeline():
@@ -519,15 +519,15 @@ def tmg_zero_hours_rule(counts):
 
 @pytest.mark.slow
 def test_dead_detector_on_busy_road_flagged_in_minutes_where_tmg_rule_needs_seven_hours():
-    """A busy arterial's detector dies at 07:00 on a Wednesday: the scorer raises no_counts
+    """A busy arterial's detector dies at 07:00 on a Wednesday: the scorer raises zero_counts
     within 30 min; the FHWA Traffic Monitoring Guide's 7-consecutive-zero-hours check (common practice) fires 7 h later at the earliest."""
     y, present, mu, mu_week = normal_detector(5, 120.0, 2)
     dead = PER_WEEK + 2 * PER_DAY + 7 * 12
     y[dead:] = 0
     present[dead:] = True
     ev = score(y, present, mu, budget_thresholds(mu_week))
-    first = dead + int(np.argmax(ev.flag["no_counts"][dead:]))
-    assert ev.flag["no_counts"][first]
+    first = dead + int(np.argmax(ev.flag["zero_counts"][dead:]))
+    assert ev.flag["zero_counts"][first]
     assert (first - dead + 1) * INTERVAL_S <= 30 * 60
     assert not ev.any_flag[dead - 12:dead].any()
     fired = tmg_zero_hours_rule(y)
@@ -537,16 +537,16 @@ def test_dead_detector_on_busy_road_flagged_in_minutes_where_tmg_rule_needs_seve
 @pytest.mark.slow
 def test_quiet_rural_nights_with_normal_zeros_raise_nothing_unlike_any_zero_hour_rule():
     """A quiet rural detector (a few vehicles an hour at night) has many zero hours a naive
-    'any zero hour' rule would flag; the scorer raises no no_counts episode in two weeks. The
-    model's expected no_counts false alerts for the fortnight bound the chance of failure."""
+    'any zero hour' rule would flag; the scorer raises no zero_counts episode in two weeks. The
+    model's expected zero_counts false alerts for the fortnight bound the chance of failure."""
     y, present, mu, mu_week = normal_detector(6, 3.0, 2)
     present[:] = True
     th = budget_thresholds(mu_week)
     ev = score(y, present, mu, th)
     zero_hours = int((y.reshape(-1, 12).sum(axis=1) == 0).sum())
     assert zero_hours >= 20
-    assert not ev.flag["no_counts"].any()
-    assert 2 * th.expected_per_week["no_counts"] < 0.01  # chance of a false failure < 1 %
+    assert not ev.flag["zero_counts"].any()
+    assert 2 * th.expected_per_week["zero_counts"] < 0.01  # chance of a false failure < 1 %
 
 
 @pytest.mark.slow
@@ -594,8 +594,8 @@ def test_one_lane_dead_flags_low_volume_and_level_does_not_absorb_it():
 
 
 @pytest.mark.slow
-def test_gap_flags_no_data_once_improbable_and_lone_missing_interval_is_nothing():
-    """A 6-interval gap raises no_data from its L-th interval (q^L below the budget share);
+def test_gap_flags_no_reports_once_improbable_and_lone_missing_interval_is_nothing():
+    """A 6-interval gap raises no_reports from its L-th interval (q^L below the budget share);
     lone missing intervals every hour raise nothing at all."""
     y, present, mu, mu_week = normal_detector(10, 30.0, 1)
     present[:] = True
@@ -604,7 +604,7 @@ def test_gap_flags_no_data_once_improbable_and_lone_missing_interval_is_nothing(
     present[gap:gap + 6] = False
     th = budget_thresholds(mu_week)
     ev = score(y, present, mu, th)
-    flagged = np.flatnonzero(ev.flag["no_data"])
+    flagged = np.flatnonzero(ev.flag["no_reports"])
     assert flagged.tolist() == list(range(gap + th.missing_run - 1, gap + 6))
     lone = ~present & ~np.isin(np.arange(y.size), np.arange(gap - 1, gap + 7))
     assert not ev.any_flag[lone].any()

@@ -116,7 +116,7 @@ def test_get_counts_while_the_table_is_locked_is_503_on_postgresql(database_url,
 
 
 def test_postgresql_connections_carry_statement_and_lock_timeouts(database_url) -> None:
-    """The engine's connections have the configured timeouts; a long statement is cancelled
+    """The engine's connections have the configured timeouts; a long statement is canceled
     with an OperationalError (which the service answers with 503)."""
     if not database_url.startswith("postgresql"):
         pytest.skip("statement_timeout and lock_timeout are PostgreSQL settings")

@@ -340,13 +340,13 @@ def test_stuck_at_zero_starts_once_at_a_peak_and_once_at_night(network):
     assert at_peak and at_night
 
 
-def test_lane_of_a_pair_fails_while_its_neighbours_count_normally(network, fault_free):
+def test_lane_of_a_pair_fails_while_its_neighbors_count_normally(network, fault_free):
     """A zero window on one lane leaves the other lanes of its group untouched and busy."""
     found = False
     for inj in _injections(network, "zero"):
         if inj.period != "test" or inj.group is None or len(inj.detector_ids) != 1:
             continue
-        neighbours = [
+        neighbors = [
             d.detector_id
             for d in network.detectors
             if d.group == inj.group and d.detector_id not in inj.detector_ids
@@ -355,13 +355,13 @@ def test_lane_of_a_pair_fails_while_its_neighbours_count_normally(network, fault
             other
             for other in network.injections
             if other is not inj
-            and set(other.detector_ids) & set(neighbours)
+            and set(other.detector_ids) & set(neighbors)
             and other.start_s < inj.end_s
             and inj.start_s < other.end_s
         ]
-        if len(neighbours) < 2 or overlapping:
+        if len(neighbors) < 2 or overlapping:
             continue
-        for detector_id in neighbours:
+        for detector_id in neighbors:
             starts, counts = _window(network, detector_id, inj.start_s, inj.end_s)
             base = _window(fault_free, detector_id, inj.start_s, inj.end_s)
             np.testing.assert_array_equal(counts, base[1])
@@ -476,9 +476,9 @@ def test_offline_windows_have_no_rows_and_rows_either_side(network):
     assert group_wide
 
 
-def test_intermittent_reports_lose_many_short_bursts(network):
+def test_patchy_reports_lose_many_short_bursts(network):
     """An 'intermittent' day loses 20-50 % of its intervals in 10+ gaps of at most 4 intervals."""
-    for inj in _injections(network, "intermittent"):
+    for inj in _injections(network, "patchy"):
         spec = network.detectors[network.index_of(inj.detector_ids[0])]
         expected = np.arange(inj.start_s, inj.end_s, spec.interval_s)
         reported = np.isin(expected, network.rows_of(spec.detector_id)[0])
@@ -495,7 +495,7 @@ def test_scenario_has_faults_in_both_periods(network):
     test = [inj for inj in network.injections if inj.period == "test"]
     assert any(i.action == "zero" and i.end_s - i.start_s >= 86400 for i in history)
     assert any(i.action == "scale_range" for i in history)
-    assert {"zero", "scale_range", "freeze", "absent", "intermittent", "scale"} <= {
+    assert {"zero", "scale_range", "freeze", "absent", "patchy", "scale"} <= {
         i.action for i in test
     }
     assert set(simulate.ALERT_KINDS) <= {i.kind for i in network.injections}

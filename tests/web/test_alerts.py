@@ -20,7 +20,7 @@ BASE_T = 1_794_838_500  # 2026-11-16T14:15:00Z
 
 def alert_values(detector_id: str, start_s: int, **extra) -> dict:  # type: ignore[no-untyped-def]
     values = {"subject": detector_id, "detector_id": detector_id, "group_id": "G-ELM-NB",
-              "kind": "no_counts", "cause": "detector", "status": "open", "start_s": start_s,
+              "kind": "zero_counts", "cause": "detector", "status": "open", "start_s": start_s,
               "end_s": start_s + 600, "closed_s": None, "observed": 0.0, "expected": 120.0,
               "log_p": -120.0, "n_intervals": 3, "baseline_id": None, "detectors": None,
               "part_of": None, "summary": "test alert"}
@@ -62,7 +62,7 @@ def test_alerts_come_in_seq_order_and_next_after_pages(client, engine, keys) -> 
     assert [a["seq"] for a in page["data"]] == [1, 2]
     rest = client.get("/v1/alerts", params={"after": page["next_after"]}, headers=h).json()
     assert [a["seq"] for a in rest["data"]] == [3, 4, 5]
-    assert rest["data"][0]["kind"] == "no_counts" and rest["data"][0]["score"] == pytest.approx(52.12, abs=0.01)
+    assert rest["data"][0]["kind"] == "zero_counts" and rest["data"][0]["score"] == pytest.approx(52.12, abs=0.01)
     empty = client.get("/v1/alerts", params={"after": rest["next_after"]}, headers=h).json()
     assert empty["data"] == [] and empty["next_after"] == 5
 
@@ -239,3 +239,11 @@ def test_detector_health_with_a_malformed_id_is_422(client, keys) -> None:
     """The detector health route checks the id's form before touching the database."""
     r = client.get("/v1/detectors/D1%00x/health", headers=auth(keys["read"]))
     assert r.status_code == 422 and "detector_id" in r.json()["message"]
+
+
+
+def test_alert_list_refuses_a_kind_by_its_former_name(client, keys) -> None:
+    """The kinds were renamed (migration 0005): a former name gets a 422 listing today's kinds."""
+    r = client.get("/v1/alerts", params={"kind": "no_" + "data"}, headers=auth(keys["read"]))
+    assert r.status_code == 422
+    assert "zero_counts" in r.json()["message"] and "no_reports" in r.json()["message"]

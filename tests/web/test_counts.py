@@ -103,7 +103,7 @@ BAD_ITEMS = [
 @pytest.mark.parametrize(("change", "message"), BAD_ITEMS)
 def test_post_counts_rejects_bad_item_and_keeps_valid_ones(client, keys, engine, d1, change,
                                                            message) -> None:
-    """A bad item is rejected with a clear message (422) while its valid neighbours are stored."""
+    """A bad item is rejected with a clear message (422) while its valid neighbors are stored."""
     items = count_items("D1", n=3)
     items[1] = {**items[1], **change}
     r = post(client, keys, items)
@@ -125,7 +125,7 @@ def test_post_counts_item_missing_count_is_rejected(client, keys, d1) -> None:
 
 def test_post_counts_item_with_unknown_field_is_rejected_by_name(client, keys, engine, d1) -> None:
     """An item with a field beyond detector_id, start and count (a typo such as "cnt") is
-    rejected naming the field; its valid neighbours are stored."""
+    rejected naming the field; its valid neighbors are stored."""
     items = count_items("D1", n=3)
     items[1]["cnt"] = items[1].pop("count")
     r = post(client, keys, items)
@@ -350,7 +350,7 @@ JSON_TRIGGERS = {
 
 @pytest.mark.parametrize("name", sorted(JSON_TRIGGERS))
 def test_post_counts_json_bad_value_rejected_alone(client, keys, d1, name) -> None:
-    """A JSON item the database could not hold is rejected by index; its neighbours are stored."""
+    """A JSON item the database could not hold is rejected by index; its neighbors are stored."""
     det, start, count, message = JSON_TRIGGERS[name]
     assert_bad_item_alone_rejected(client, keys, json_batch((det, start, count)),
                                    "application/json", message)

@@ -36,7 +36,7 @@ FUZZ = hyp_settings(max_examples=150, deadline=None,
                                            HealthCheck.too_slow])
 
 
-def assert_neighbours_stored(client, keys, body: bytes, content_type: str) -> None:  # type: ignore[no-untyped-def]
+def assert_neighbors_stored(client, keys, body: bytes, content_type: str) -> None:  # type: ignore[no-untyped-def]
     r = client.post("/v1/counts", content=body,
                     headers={**auth(keys["ingest"]), "content-type": content_type})
     assert r.status_code in (200, 409, 422), r.text
@@ -55,7 +55,7 @@ def test_post_counts_json_any_item_never_500(client, keys, engine, det, start, c
     """Any JSON values in one item (huge integers, lone surrogates, NUL, wrong types, dates
     out of range) cost that item only."""
     make_detector(engine, "D1")
-    assert_neighbours_stored(client, keys, json_batch((det, start, count)), "application/json")
+    assert_neighbors_stored(client, keys, json_batch((det, start, count)), "application/json")
 
 
 @FUZZ
@@ -69,4 +69,4 @@ def test_post_counts_csv_any_line_never_500(client, keys, engine, det, start, co
     that line only."""
     make_detector(engine, "D1")
     line = ",".join([det, start, count, *extra])
-    assert_neighbours_stored(client, keys, csv_batch(line), "text/csv")
+    assert_neighbors_stored(client, keys, csv_batch(line), "text/csv")

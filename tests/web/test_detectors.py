@@ -31,7 +31,7 @@ def test_put_detector_creates_then_updates(client, keys) -> None:
     ({"road_class": "highway"}, "road_class"),
     ({"holiday_calendar": "XX"}, "holiday_calendar"),
     ({"location": {"type": "Point", "coordinates": [200, 10]}}, "location"),
-    ({"colour": "red"}, "colour"),
+    ({"color": "red"}, "color"),
 ])
 def test_put_detector_rejects_bad_fields(client, keys, change, field) -> None:
     """Bad registry fields get 422 naming the field."""

@@ -95,7 +95,7 @@ def _store(engine, detector_id: str, starts: np.ndarray, counts: np.ndarray) -> 
 @pytest.mark.parametrize("interval_s", ALLOWED_INTERVALS_S)
 def test_every_allowed_interval_fits_and_scores(database_url, engine, interval_s) -> None:
     """A detector at any allowed interval is fitted from 2 weeks of counts and its next day is
-    scored without failure; four dead midday hours raise a no_counts alert."""
+    scored without failure; four dead midday hours raise a zero_counts alert."""
     settings = Settings(database_url=database_url, clock="data", scoring="off")
     make_detector(engine, "D1", interval_s=interval_s, holiday_calendar=None, group=None)
     starts, counts = _history(interval_s, HISTORY_DAYS + 1, seed=interval_s)
@@ -120,4 +120,4 @@ def test_every_allowed_interval_fits_and_scores(database_url, engine, interval_s
         kinds = set(conn.execute(select(a.c.kind).where(a.c.detector_id == "D1")).scalars())
     assert state.failures == 0, state.last_error
     assert state.scored_through_s is not None and state.scored_through_s >= int(day[dead][-1])
-    assert "no_counts" in kinds, kinds
+    assert "zero_counts" in kinds, kinds

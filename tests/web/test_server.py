@@ -143,7 +143,7 @@ def test_live_server_scores_as_counts_arrive(database_url, engine, keys) -> None
             while c.get("/v1/health").json()["scoring_backlog"] and time.monotonic() < deadline:
                 time.sleep(0.2)
             assert c.get("/v1/health").json()["scoring_backlog"] == 0
-            alerts = c.get("/v1/alerts", params={"detector_id": "bra3-nb-t1", "kind": "no_counts"},
+            alerts = c.get("/v1/alerts", params={"detector_id": "bra3-nb-t1", "kind": "zero_counts"},
                            headers=auth(keys["read"])).json()["data"]
             assert len(alerts) == 1 and alerts[0]["cause"] == "detector"
             assert "counted 0 vehicles" in alerts[0]["summary"]

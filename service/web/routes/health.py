@@ -1,6 +1,6 @@
 """Service health for monitoring and for clients that wait on the scoring backlog.
 
-Monitoring polls this often, so every statement is an index look-up or a catalogue read
+Monitoring polls this often, so every statement is an index look-up or a catalog read
 (``service.store.health``): ``counts_stored`` and ``detectors`` are the database's own
 estimates.
 
