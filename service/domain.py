@@ -58,7 +58,8 @@ def interval_error(interval_s: object) -> str | None:
 # ---------------------------------------------------------------------------- detector ids
 
 DETECTOR_ID_PATTERN = r"^[A-Za-z0-9][A-Za-z0-9._:\-]{0,63}$"
-DETECTOR_ID_RULE = "1-64 characters: letters, digits and . _ : - , starting with a letter or digit"
+DETECTOR_ID_RULE = ("1 to 64 characters, each a letter, a digit, a period (.), an underscore (_), "
+                    "a colon (:) or a hyphen (-); the first a letter or digit")
 _ID = re.compile(DETECTOR_ID_PATTERN)
 
 # ---------------------------------------------------------------------------- roads, days
@@ -94,6 +95,18 @@ GRANTS: dict[str, frozenset[str]] = {
     "admin": frozenset({"read", "operate", "admin", "ingest"}),
 }
 ROLES = tuple(GRANTS)
+# What each permission lets a key do, in the words of an error message.
+PERMISSION_ACTIONS: dict[str, str] = {
+    "ingest": "send counts",
+    "read": "read detectors, counts, baselines and alerts",
+    "operate": "acknowledge alerts",
+    "admin": "register detectors and fit baselines",
+}
+
+
+def roles_granting(permission: str) -> tuple[str, ...]:
+    """The roles whose keys hold ``permission``."""
+    return tuple(role for role, held in GRANTS.items() if permission in held)
 
 
 def sql_in(column: str, values: tuple[str, ...]) -> str:

@@ -16,11 +16,13 @@ from typing import Any
 import orjson
 from sqlalchemy import Connection
 
+from service.stats.capacity import capacity_cap
 from service.stats.episodes import (
     NO_REPORTS_REOPEN_S,
     Episode,
     GroupRun,
     cause_for,
+    common_site,
     communications_runs,
     episodes_from_rows,
     summary_sentence,
@@ -65,9 +67,16 @@ def _episode_values(ep: Episode, info: DetectorInfo, baseline_id: int, cause: st
         "end_s": ep.end_s, "closed_s": ep.closed_s, "observed": ep.observed,
         "expected": ep.expected, "log_p": ep.log_p, "n_intervals": ep.n_intervals,
         "baseline_id": baseline_id, "detectors": None, "part_of": None,
-        "summary": summary_sentence(ep, cause, interval_s=info.interval_s,
-                                    timezone=info.timezone, label=info.label, group=info.group),
+        "summary": _detector_summary(ep, cause, info),
     }
+
+
+def _detector_summary(ep: Episode, cause: str, info: DetectorInfo) -> str:
+    cap = capacity_cap(info.road_class, lanes=info.lanes, interval_s=info.interval_s,
+                       per_lane_hourly=info.capacity_per_lane_h) \
+        if ep.kind == "over_capacity" else None
+    return summary_sentence(ep, cause, interval_s=info.interval_s, timezone=info.timezone,
+                            label=info.label, group=info.group, cap_per_interval=cap)
 
 
 def refresh_group(conn: Connection, writer: AlertWriter, group: str, lo: int, hi: int, *,
@@ -96,9 +105,11 @@ def _write_communications_alerts(conn: Connection, writer: AlertWriter, group: s
     runs = communications_runs(rows, n_members=len(members), step=step)
     stored = {r.start_s: r for r in store.alerts_from(conn, subject, lo, kind="no_reports")}
     timezone = next(iter(infos.values())).timezone
+    site = common_site([infos[m].label for m in members if m in infos])
     group_ids: list[tuple[int, int, int]] = []
     for run in runs:
-        values = _group_values(run, group, step=step, hi=hi, timezone=timezone)
+        values = _group_values(run, group, step=step, hi=hi, timezone=timezone, site=site,
+                               group_size=len(members))
         alert_id = writer.upsert(stored.pop(run[0], None), values)
         group_ids.append((run[0], run[1], alert_id))
     for old in stored.values():
@@ -107,8 +118,8 @@ def _write_communications_alerts(conn: Connection, writer: AlertWriter, group: s
     return group_ids
 
 
-def _group_values(run: GroupRun, group: str, *, step: int, hi: int, timezone: str
-                  ) -> dict[str, Any]:
+def _group_values(run: GroupRun, group: str, *, step: int, hi: int, timezone: str,
+                  site: str | None, group_size: int) -> dict[str, Any]:
     start, last, dets, expected, log_p = run
     subject = f"group:{group}"
     ep = Episode(subject=subject, detector_id=None, kind="no_reports", start_s=start,
@@ -122,7 +133,8 @@ def _group_values(run: GroupRun, group: str, *, step: int, hi: int, timezone: st
         "n_intervals": ep.n_intervals, "baseline_id": None,
         "detectors": orjson.dumps(dets).decode(), "part_of": None,
         "summary": summary_sentence(ep, "communications", interval_s=step, timezone=timezone,
-                                    group=group, members=dets),
+                                    group=group, members=dets, group_size=group_size,
+                                    site=site),
     }
 
 
@@ -143,7 +155,6 @@ def _refresh_detector_alert(conn: Connection, writer: AlertWriter, row: Any,
                  start_s=row.start_s, end_s=row.end_s, closed_s=row.closed_s,
                  n_intervals=row.n_intervals, observed=row.observed,
                  expected=row.expected or 0.0, log_p=row.log_p or 0.0)
-    summary = summary_sentence(ep, cause, interval_s=info.interval_s, timezone=info.timezone,
-                               label=info.label, group=group)
+    summary = _detector_summary(ep, cause, info)
     if cause != row.cause or summary != row.summary or part_of != row.part_of:
         writer.upsert(row, {"cause": cause, "summary": summary, "part_of": part_of})

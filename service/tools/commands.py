@@ -137,8 +137,10 @@ def cmd_plot(args: argparse.Namespace, settings: Settings) -> int:
         counts = c.get("/v1/counts", params={"detector_id": args.detector, "from": lo,
                                              "until": hi}).json()["data"]
         alerts = c.get("/v1/alerts", params={"detector_id": args.detector, "limit": 1000}).json()
-    out = plot_day(doc, counts, [a for a in alerts["data"] if not a["withdrawn"]],
-                   title=f"{args.detector} on {args.date}", out=args.out)
+        det = c.get(f"/v1/detectors/{args.detector}").json()
+    name = det.get("label") or args.detector
+    out = plot_day(doc, counts, alerts["data"], title=f"{name} ({args.detector}), {args.date}",
+                   out=args.out, timezone=det.get("timezone"))
     print(out)
     return 0
 

@@ -170,9 +170,11 @@ def demo_plot(base: str, key: str, truth: dict[str, Any], alerts: list[dict[str,
         doc = c.get(f"/v1/detectors/{det}/baseline", params={"date": day}).json()
         lo, hi = doc["data"][0]["start"], doc["data"][-1]["start"]
         counts = c.get("/v1/counts", params={"detector_id": det, "from": lo, "until": hi}).json()
+        info = c.get(f"/v1/detectors/{det}").json()
     mine = [a for a in alerts if a["detector_id"] == det]
-    return plot_day(doc, counts["data"], mine, title=f"{det} on {day} (demo: {target['id']})",
-                    out=folder / f"{det}_{day}.png")
+    name = info.get("label") or det
+    return plot_day(doc, counts["data"], mine, title=f"{name} ({det}), {day} (demo {target['id']})",
+                    out=folder / f"{det}_{day}.png", timezone=info.get("timezone"))
 
 
 def main_demo(feed: str | None = None, folder: str | None = None, workers: int = 2) -> int:

@@ -55,7 +55,7 @@ class Error(BaseModel):
 
 
 class CountRejection(BaseModel):
-    """An item that can never be stored as sent: do not resend it."""
+    """An item that can never be stored as sent: fix it and send only the fixed items."""
 
     index: int = Field(description="Position of the item in the batch (0-based; CSV: data rows).")
     detector_id: str | None
@@ -200,8 +200,9 @@ EXTRA: dict[tuple[str, str], dict[int | str, dict[str, Any]]] = {
                              "(`conflicts`; GET /v1/counts/conflicts).",
               "content": _content({"$ref": REF + "CountBatchResult"})},
         415: error("The Content-Type is neither application/json nor text/csv."),
-        422: {"description": "Some items can never be stored as sent (listed in `errors`; the "
-                             "valid ones were stored, do not resend them), or the batch is empty.",
+        422: {"description": "Some items can never be stored as sent (listed in `errors`): all "
+                             "valid items were stored; fix the rejected ones and send only "
+                             "those. Or the batch is empty.",
               "content": _content({"anyOf": [{"$ref": REF + "CountBatchResult"},
                                              {"$ref": REF + "Error"}]})},
         503: error("The database is busy or unreachable; nothing was stored: resend the same "
