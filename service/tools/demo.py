@@ -147,7 +147,7 @@ def print_alerts(alerts: list[dict[str, Any]], intervals: dict[str, int]) -> Non
         lo = datetime.fromisoformat(a["start"].replace("Z", "+00:00")).astimezone(zone)
         hi = datetime.fromisoformat(a["end"].replace("Z", "+00:00")).astimezone(zone)
         rows.append([a["id"], a["detector_id"] or f"[{a['group']}]", a["kind"], a["cause"],
-                     a["status"], lo.strftime("%a %m-%d %H:%M"),
+                     a["status"], lo.strftime("%a %d %b %H:%M"),
                      f"{(hi - lo).total_seconds() / 3600:.1f}", a["score"],
                      (a["summary"][:70] + "…") if len(a["summary"]) > 71 else a["summary"]])
     print(f"\nAlerts an operator would see ({len(alerts)}):")
