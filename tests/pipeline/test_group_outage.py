@@ -96,6 +96,7 @@ def test_one_interval_from_one_member_does_not_close_a_group_outage(database_url
     assert not listed_open(engine) & {done.alert_id}
 
 
+@pytest.mark.slow
 def test_member_still_silent_after_group_outage_is_shown(database_url, engine, network) -> None:
     """Three of four members report again and one stays silent: the group alert closes and
     the silent member's own alert, still open, is listed (not hidden as part of the group)

@@ -80,6 +80,7 @@ def test_out_of_service_detector_that_goes_dead_raises_alert_only_back_in_servic
     assert [(a["id"], a["suppressed"]) for a in later] == [(kept[0]["id"], False)]
 
 
+@pytest.mark.slow
 def test_alert_that_ended_while_out_of_service_stays_suppressed(setup, engine, keys,
                                                                 network) -> None:
     """A fault that came and went while the detector was out of service is not raised when it
@@ -105,6 +106,7 @@ def test_alert_that_ended_while_out_of_service_stays_suppressed(setup, engine, k
     assert kept and all(a["suppressed"] and a["status"] == "closed" for a in kept)
 
 
+@pytest.mark.slow
 def test_retired_detector_raises_no_missing_data_alert(setup, engine, keys, network) -> None:
     """A retired detector that stops reporting raises no no_reports alert; the same silence
     on a detector in service does."""
