@@ -224,7 +224,7 @@ def detector_health(engine: Engine, detector_id: str, *,
                     clock: Callable[[Connection], float]) -> dict[str, Any]:
     """Completeness, share of intervals flagged (24 h and 7 days before ``clock(conn)``, the
     scoring clock in seconds) and open alerts of one detector."""
-    d, c, e, a = tables.detectors, tables.counts, tables.evidence, tables.alerts
+    d, c, e = tables.detectors, tables.counts, tables.evidence
     with read_transaction(engine) as conn:
         det = conn.execute(select(d.c.interval_s).where(d.c.detector_id == detector_id)).first()
         if det is None:
