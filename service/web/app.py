@@ -30,7 +30,7 @@ from service.pipeline.score import Scorer, mark_dirty
 from service.store.engine import make_engine
 from service.web import openapi
 from service.web.deps import PRINCIPAL_SCOPE_KEY, check_permission, identify
-from service.web.routes import alerts, baselines, counts, detectors, health
+from service.web.routes import alerts, baselines, corrections, counts, detectors, health
 
 log = logging.getLogger("tallyward.http")
 WRITE_METHODS = frozenset({"POST", "PUT", "PATCH"})
@@ -311,6 +311,7 @@ def create_app(settings: Settings | None = None, *, engine: Engine | None = None
     app.include_router(health.router)
     app.include_router(detectors.import_router)
     app.include_router(detectors.router)
+    app.include_router(corrections.router)
     app.include_router(counts.router)
     app.include_router(baselines.router)
     app.include_router(alerts.router)

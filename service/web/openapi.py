@@ -238,6 +238,13 @@ EXTRA: dict[tuple[str, str], dict[int | str, dict[str, Any]]] = {
     ("GET", "/v1/alerts/{alert_id}"): {404: _not_found("unknown alert")},
     ("POST", "/v1/alerts/{alert_id}/acknowledge"): {404: _not_found("unknown alert")},
     ("GET", "/v1/detectors/{detector_id}/health"): {404: _not_found("unknown detector")},
+    # Service states, alert history, count corrections (migration 0007).
+    ("PATCH", "/v1/detectors/{detector_id}"): {404: _not_found("unknown detector")},
+    ("POST", "/v1/alerts/{alert_id}/unacknowledge"): {404: _not_found("unknown alert")},
+    ("POST", "/v1/alerts/{alert_id}/notes"): {404: _not_found("unknown alert")},
+    ("POST", "/v1/counts/corrections"): {
+        404: _not_found("unknown detector or conflict, or no count stored at that interval")},
+    ("GET", "/v1/counts/corrections"): {404: _not_found("unknown `detector_id`")},
     ("GET", "/v1/health"): {
         503: {"description": "The database is unreachable or its schema is not at the "
                              "migration head.",
@@ -338,8 +345,8 @@ def publish(schema: dict[str, Any], permissions: dict[tuple[str, str], str | Non
     components["securitySchemes"] = {SCHEME: {
         "type": "http", "scheme": "bearer",
         "description": "An API key made with `tallyward keys create --role ROLE`; roles: ingest "
-                       "(POST /v1/counts), read (every GET), operate (read and acknowledge "
-                       "alerts), admin (everything)."}}
+                       "(POST /v1/counts), read (every GET), operate (read, acknowledge "
+                       "alerts, notes, out of / back in service), admin (everything)."}}
 
 
 def error_headers(request: Request, exc: StarletteHTTPException) -> dict[str, str] | None:
