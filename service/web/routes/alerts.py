@@ -12,6 +12,7 @@ from service.domain import DETECTOR_ID_PATTERN, INT32_MAX, INT64_MAX, KINDS, pla
 from service.errors import ValidationFailed
 from service.store import alerts as alert_store
 from service.store.scoring import clock_now
+from service.web import paging
 from service.web.deps import EngineDep, OperateDep, ReadDep, SettingsDep
 from service.web.schemas import Acknowledgement, AlertPublic, AlertsPage, DetectorHealth
 
@@ -25,7 +26,21 @@ KindFilter = Annotated[str | None, Query(max_length=20, description="Only this k
                        AfterValidator(plain_text)]
 
 
-@router.get("", response_model=AlertsPage)
+ALERT_CSV_COLUMNS = ("id", "seq", "detector_id", "group", "kind", "cause", "status",
+                     "withdrawn", "start", "end", "closed_at", "intervals", "observed",
+                     "expected", "p_value", "score", "baseline_id", "summary", "detectors")
+ALERTS_CSV = {200: {"content": {"text/csv": {"schema": {"type": "string"}}},
+                    "description": "JSON (AlertsPage), or CSV with Accept: text/csv (columns "
+                                   f"{', '.join(ALERT_CSV_COLUMNS)}; poll on with the "
+                                   "`Tallyward-Next-After` header)."}}
+
+
+def _alert_csv_row(alert: dict[str, Any]) -> list[Any]:
+    return [" ".join(alert[c] or ()) if c == "detectors" else alert[c]
+            for c in ALERT_CSV_COLUMNS]
+
+
+@router.get("", response_model=AlertsPage, responses=ALERTS_CSV)
 def list_alerts(
     request: Request, engine: EngineDep, _: ReadDep,
     after: Annotated[int, Query(ge=0, le=INT64_MAX,
@@ -37,11 +52,16 @@ def list_alerts(
     """Alert changes after `after`, in seq order; poll again with `next_after`."""
     if kind is not None and kind not in KINDS:
         raise ValidationFailed(f"unknown kind {kind!r}; kinds are {', '.join(KINDS)}")
+    as_csv = paging.wants_csv(request)  # CSV answers carry no ETag (one per representation)
     polled = alert_store.poll(engine, after=after, status=status, detector_id=detector_id,
                               group=group, kind=kind, limit=limit, query=request.url.query,
-                              if_none_match=request.headers.get("if-none-match"))
+                              if_none_match=None if as_csv else request.headers.get("if-none-match"))
     if polled.page is None:
         return Response(status_code=304, headers={"ETag": polled.etag})
+    if as_csv:
+        return paging.csv_response(
+            paging.csv_text(ALERT_CSV_COLUMNS, map(_alert_csv_row, polled.page["data"])),
+            filename="alerts.csv", headers={"Tallyward-Next-After": str(polled.page["next_after"])})
     # Serialised here (the ETag header goes with it); the shape is AlertsPage.
     return Response(orjson.dumps(polled.page), media_type="application/json",
                     headers={"ETag": polled.etag})
