@@ -40,8 +40,9 @@ def _engine(settings: Settings):  # type: ignore[no-untyped-def]
         if not path.exists():
             raise TallywardError(
                 f"no database at {path.resolve()} (TALLYWARD_DATABASE_URL="
-                f"{_safe_url(settings)}); set TALLYWARD_DATABASE_URL to the service's database, "
-                "e.g. sqlite:///demo_run/tallyward.db, or create one with `tallyward migrate`")
+                f"{_safe_url(settings)}); set TALLYWARD_DATABASE_URL to the service's database "
+                "(the demo's: README, From the demo to a running service), or create one with "
+                "`tallyward migrate`")
     return make_engine(settings)
 
 
@@ -248,8 +249,19 @@ EXIT_STATUSES = """exit status:
   2  bad usage: an unknown option, an argument or a TALLYWARD_* setting that cannot be used
 
 settings come from TALLYWARD_* environment variables (README: Configuration), e.g.
-TALLYWARD_DATABASE_URL=sqlite:///demo_run/tallyward.db"""
-HELP_FORMAT = argparse.ArgumentDefaultsHelpFormatter  # every option's help shows its default
+TALLYWARD_DATABASE_URL=postgresql+psycopg://tallyward@db-host/tallyward"""
+
+
+class HELP_FORMAT(argparse.HelpFormatter):  # noqa: N801 - used like argparse's formatter names
+    """Every option's help ends with its default, when it has one worth showing."""
+
+    def _get_help_string(self, action: argparse.Action) -> str | None:
+        text = action.help or ""
+        if "%(default)" not in text and action.default not in (None, False, argparse.SUPPRESS) \
+                and (action.option_strings or action.nargs in (argparse.OPTIONAL,
+                                                               argparse.ZERO_OR_MORE)):
+            text += " (default: %(default)s)"
+        return text
 
 
 def build_parser() -> argparse.ArgumentParser:

@@ -213,7 +213,7 @@ def register(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
     s.set_defaults(func=cmd_evaluate)
 
     s = sub.add_parser("plot", help="PNG of a detector's day against its baseline band")
-    s.add_argument("detector")
+    s.add_argument("detector", help="detector id")
     s.add_argument("--date", required=True, help="local date YYYY-MM-DD")
     s.add_argument("--out", required=True, help="PNG path")
     _server_args(s, role="read")
