@@ -118,6 +118,8 @@ def safe_cell(value: Any) -> Any:
         return "'" + value
     if value is None:
         return ""
+    if isinstance(value, bool):
+        return "true" if value else "false"
     return value
 
 
