@@ -11,14 +11,18 @@ from service.store import tables
 # every detector is in service.
 STATE_COLUMN = "service_state"
 IN_SERVICE = "in_service"
+SUPPRESSED_COLUMN = "suppressed"  # alerts kept but not shown (detector out of service)
 
 
 def open_alerts_by_kind_cause(conn: Connection) -> dict[tuple[str, str], int]:
-    """Open, not withdrawn alerts counted by (kind, cause)."""
+    """Open alerts an operator sees (not withdrawn; not suppressed, when the schema keeps
+    suppressed alerts of detectors out of service) counted by (kind, cause)."""
     a = tables.alerts
+    shown = [a.c.status == "open", a.c.withdrawn == 0]
+    if SUPPRESSED_COLUMN in a.c:
+        shown.append(a.c[SUPPRESSED_COLUMN] == 0)
     rows = conn.execute(select(a.c.kind, a.c.cause, func.count())
-                        .where(a.c.status == "open", a.c.withdrawn == 0)
-                        .group_by(a.c.kind, a.c.cause))
+                        .where(*shown).group_by(a.c.kind, a.c.cause))
     return {(kind, cause): int(n) for kind, cause, n in rows}
 
 
