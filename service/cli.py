@@ -179,6 +179,9 @@ def cmd_keys(args: argparse.Namespace, settings: Settings) -> int:
 class UsageError(TallywardError):
     """A command-line argument that cannot be used as given (exit status 2)."""
 
+    exit_status = 2  # read by main() from the attribute: `python -m service.cli` loads this
+    # module twice (as __main__ and as service.cli), so the class may not be main()'s own
+
 
 def time_arg(text: str | None, option: str = "time") -> int | None:
     """An RFC 3339 command-line argument as epoch seconds (None stays None); ``UsageError``
@@ -371,12 +374,9 @@ def main(argv: Sequence[str] | None = None) -> int:
         # and the flush at exit, go nowhere instead of raising again.
         os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
         return 0
-    except UsageError as exc:
-        print(f"error: {exc.message}", file=sys.stderr)
-        return 2
     except TallywardError as exc:
         print(f"error: {exc.message}", file=sys.stderr)
-        return 1
+        return int(getattr(exc, "exit_status", 1))
     except (FileNotFoundError, IsADirectoryError, PermissionError) as exc:
         print(f"error: {exc}", file=sys.stderr)
         return 1

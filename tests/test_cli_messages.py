@@ -80,13 +80,19 @@ def test_bad_setting_names_the_environment_variable(sqlite_url) -> None:
     assert "TALLYWARD_FALSE_ALERTS_PER_WEEK" in line and "'-1'" in line
 
 
-def test_as_of_that_is_not_a_time_fails_before_the_progress_bar(sqlite_url) -> None:
-    """`fit --as-of yesterday` is bad usage (2), told before any progress bar is drawn."""
-    r = tallyward(["fit", "--as-of", "yesterday"], database_url=sqlite_url)
+@pytest.mark.parametrize("argv, option, bar", [
+    (["fit", "--as-of", "yesterday"], "--as-of", "fit baselines"),
+    (["replay", "seed_feed", "--from", "yesterday"], "--from", "replay"),
+])
+def test_time_that_is_not_a_time_fails_before_the_progress_bar(sqlite_url, argv, option,
+                                                               bar) -> None:
+    """`fit --as-of yesterday` (and `replay --from yesterday`) is bad usage (2), told before
+    any progress bar is drawn."""
+    r = tallyward(argv, database_url=sqlite_url)
     assert r.returncode == 2
     line = one_clear_line(r)
-    assert line.startswith("error: --as-of:") and "RFC 3339" in line
-    assert "fit baselines" not in r.stderr
+    assert line.startswith(f"error: {option}:") and "RFC 3339" in line
+    assert f"{bar}:" not in r.stderr
 
 
 def test_import_detectors_of_a_non_json_file(sqlite_url, tmp_path) -> None:
