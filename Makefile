@@ -22,6 +22,8 @@ $(DEMO_STAMP): pyproject.toml | $(BIN)/python
 	$(BIN)/pip install --quiet -e ".[demo]"
 	touch $(DEMO_STAMP)
 
+# Each run works in a new demo_run/run-<time>/ (demo_run/latest names it): a database that a
+# server started on an earlier run may still use is never replaced.
 demo: $(DEMO_STAMP)
 	$(BIN)/tallyward demo
 

@@ -18,16 +18,31 @@ from pathlib import Path
 from typing import Any
 
 import orjson
+from pydantic import ValidationError
 from sqlalchemy.exc import OperationalError
 
-from service.config import Settings, get_settings
+from service import __version__
+from service.config import Settings, get_settings, settings_error_text
 from service.errors import TallywardError
 from service.textio import csv_chunks, file_pos, open_text, table
 
 
 def _engine(settings: Settings):  # type: ignore[no-untyped-def]
+    """The engine of a command that works on an existing Tallyward database: a SQLite file
+    that is not there is an error naming the setting (never an empty file left behind)."""
+    from sqlalchemy.engine import make_url
+
     from service.store.engine import make_engine
 
+    url = make_url(settings.database_url)
+    if url.get_backend_name() == "sqlite" and url.database not in (None, "", ":memory:"):
+        path = Path(url.database)
+        if not path.exists():
+            raise TallywardError(
+                f"no database at {path.resolve()} (TALLYWARD_DATABASE_URL="
+                f"{_safe_url(settings)}); set TALLYWARD_DATABASE_URL to the service's database "
+                "(the demo's: README, From the demo to a running service), or create one with "
+                "`tallyward migrate`")
     return make_engine(settings)
 
 
@@ -89,7 +104,12 @@ def cmd_serve(args: argparse.Namespace, settings: Settings) -> int:
 def cmd_import_detectors(args: argparse.Namespace, settings: Settings) -> int:
     from service.store.detectors import import_feature_collection
 
-    doc = orjson.loads(Path(args.file).read_bytes())
+    try:
+        doc = orjson.loads(Path(args.file).read_bytes())
+    except orjson.JSONDecodeError as exc:
+        raise TallywardError(f"{args.file} is not JSON ({exc}); a detector file is a GeoJSON "
+                             'FeatureCollection (RFC 7946): {"type": "FeatureCollection", '
+                             '"features": [...]}') from None
     result = import_feature_collection(_engine(settings), doc)
     print(f"detectors: {result['created']} created, {result['updated']} updated, "
           f"{len(result['errors'])} rejected")
@@ -156,8 +176,16 @@ def cmd_keys(args: argparse.Namespace, settings: Settings) -> int:
     return 0
 
 
-def time_arg(text: str | None) -> int | None:
-    """An RFC 3339 command-line argument as epoch seconds (None stays None)."""
+class UsageError(TallywardError):
+    """A command-line argument that cannot be used as given (exit status 2)."""
+
+    exit_status = 2  # read by main() from the attribute: `python -m service.cli` loads this
+    # module twice (as __main__ and as service.cli), so the class may not be main()'s own
+
+
+def time_arg(text: str | None, option: str = "time") -> int | None:
+    """An RFC 3339 command-line argument as epoch seconds (None stays None); ``UsageError``
+    naming the option otherwise."""
     from service.timefmt import parse_rfc3339
 
     if text is None:
@@ -165,7 +193,8 @@ def time_arg(text: str | None) -> int | None:
     try:
         return parse_rfc3339(text)
     except ValueError as exc:
-        raise TallywardError(str(exc)) from None
+        message = str(exc).removeprefix("start ")
+        raise UsageError(f"{option}: {message}") from None
 
 
 def cmd_fit(args: argparse.Namespace, settings: Settings) -> int:
@@ -173,13 +202,14 @@ def cmd_fit(args: argparse.Namespace, settings: Settings) -> int:
 
     from service.pipeline import fit as fitting
 
+    as_of_s = time_arg(args.as_of, "--as-of")  # a bad value fails before any bar is drawn
     engine = _engine(settings)
     ids = args.detector or fitting.all_detector_ids(engine)
     started = time.perf_counter()
     with tqdm(total=len(ids), unit="det", desc="fit baselines", file=sys.stderr,
               disable=args.quiet) as bar:
         results = fitting.fit_many(settings, engine, detector_ids=ids,
-                                   as_of_s=time_arg(args.as_of), workers=args.workers,
+                                   as_of_s=as_of_s, workers=args.workers,
                                    thresholds=not args.no_thresholds, progress=bar.update)
     elapsed = time.perf_counter() - started
     by_status: dict[str, int] = {}
@@ -215,57 +245,99 @@ def cmd_score(args: argparse.Namespace, settings: Settings) -> int:
 # ----------------------------------------------------------------------------- parser
 
 
+EXIT_STATUSES = """exit status:
+  0  the command did its work
+  1  the work failed (rejected rows, failed fits, a database or service that refused or
+     could not be reached); the message says which
+  2  bad usage: an unknown option, an argument or a TALLYWARD_* setting that cannot be used
+
+settings come from TALLYWARD_* environment variables (README: Configuration), e.g.
+TALLYWARD_DATABASE_URL=postgresql+psycopg://tallyward@db-host/tallyward"""
+
+
+class HELP_FORMAT(argparse.HelpFormatter):  # noqa: N801 - used like argparse's formatter names
+    """Every option's help ends with its default, when it has one worth showing."""
+
+    def _get_help_string(self, action: argparse.Action) -> str | None:
+        text = action.help or ""
+        if "%(default)" not in text and action.default not in (None, False, argparse.SUPPRESS) \
+                and (action.option_strings or action.nargs in (argparse.OPTIONAL,
+                                                               argparse.ZERO_OR_MORE)):
+            text += " (default: %(default)s)"
+        return text
+
+
 def build_parser() -> argparse.ArgumentParser:
-    p = argparse.ArgumentParser(prog="tallyward", description=__doc__.splitlines()[0])
-    sub = p.add_subparsers(dest="command", required=True)
+    p = argparse.ArgumentParser(prog="tallyward", description=__doc__.splitlines()[0],
+                                epilog=EXIT_STATUSES, formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("--version", action="version", version=f"tallyward {__version__}")
+    sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
     s = sub.add_parser("serve", help="run the HTTP service (migrates first)")
     s.add_argument("--host", default="127.0.0.1",
                    help="address to listen on; a non-loopback address needs TALLYWARD_AUTH=required")
-    s.add_argument("--port", type=int, default=8000)
-    s.add_argument("--workers", type=int, default=1)
+    s.add_argument("--port", type=int, default=8000, help="TCP port to listen on")
+    s.add_argument("--workers", type=int, default=1,
+                   help="HTTP worker processes (each with its own /metrics figures)")
     s.set_defaults(func=cmd_serve)
 
-    s = sub.add_parser("migrate", help="upgrade the database schema to head")
+    s = sub.add_parser("migrate", help="create or upgrade the database schema to head")
     s.set_defaults(func=cmd_migrate)
 
     s = sub.add_parser("import-detectors", help="create/update detectors from a GeoJSON file")
-    s.add_argument("file")
+    s.add_argument("file", help="GeoJSON FeatureCollection (RFC 7946) of detectors")
     s.set_defaults(func=cmd_import_detectors)
 
     s = sub.add_parser("import-counts", help="store counts from a CSV (or .csv.gz) file")
-    s.add_argument("file")
+    s.add_argument("file", help="CSV with the header detector_id,start,count (.gz accepted)")
     s.add_argument("--chunk", type=int, default=10_000, help="rows per transaction")
     s.add_argument("--quiet", action="store_true", help="no progress bar")
     s.set_defaults(func=cmd_import_counts)
 
-    s = sub.add_parser("keys", help="API keys")
-    ks = s.add_subparsers(dest="keys_cmd", required=True)
+    s = sub.add_parser("keys", help="API keys: create, list, revoke")
+    ks = s.add_subparsers(dest="keys_cmd", required=True, metavar="ACTION")
     k = ks.add_parser("create", help="create a key and print it (shown only this once)")
-    k.add_argument("--role", required=True, choices=["ingest", "read", "operate", "admin"])
-    k.add_argument("--name", required=True)
+    k.add_argument("--role", required=True, choices=["ingest", "read", "operate", "admin"],
+                   help="what the key may do (README: API keys)")
+    k.add_argument("--name", required=True, help="a unique name to list and revoke it by")
     ks.add_parser("list", help="list keys")
     k = ks.add_parser("revoke", help="revoke a key by name")
-    k.add_argument("name")
+    k.add_argument("name", help="the key's name")
     s.set_defaults(func=cmd_keys)
 
     s = sub.add_parser("fit", help="fit baselines (expected counts by time of day and day type)")
-    s.add_argument("--detector", action="append", help="detector id (repeat); default: all")
-    s.add_argument("--as-of", help="RFC 3339 end of the history window; default: latest count")
-    s.add_argument("--workers", type=int, default=max(1, min(4, os.cpu_count() or 1)))
+    s.add_argument("--detector", action="append",
+                   help="detector id (repeat for several); default: every detector")
+    s.add_argument("--as-of", help="RFC 3339 end of the history window, e.g. "
+                                   "2026-11-16T00:00:00-06:00; default: just after the latest "
+                                   "stored count")
+    s.add_argument("--workers", type=int, default=max(1, min(4, os.cpu_count() or 1)),
+                   help="fitting processes")
     s.add_argument("--no-thresholds", action="store_true",
                    help="skip deriving scoring thresholds (the first scoring pass does it)")
-    s.add_argument("--quiet", action="store_true")
+    s.add_argument("--quiet", action="store_true", help="no progress bar")
     s.set_defaults(func=cmd_fit)
 
     s = sub.add_parser("score", help="score pending counts (a worker beside the service)")
     s.add_argument("--loop", action="store_true", help="keep running")
-    s.add_argument("--idle", type=float, default=1.0)
+    s.add_argument("--idle", type=float, default=1.0,
+                   help="seconds to wait between passes when nothing is pending (with --loop)")
     s.set_defaults(func=cmd_score)
 
     for register in command_plugins():
         register(sub)
+    _show_defaults(p)
     return p
+
+
+def _show_defaults(parser: argparse.ArgumentParser) -> None:
+    """Every command's help lists its options' defaults and the exit statuses."""
+    for action in parser._actions:
+        if isinstance(action, argparse._SubParsersAction):
+            for child in action.choices.values():
+                child.formatter_class = HELP_FORMAT
+                child.epilog = child.epilog or "exit status: 0 done, 1 the work failed, 2 bad usage"
+                _show_defaults(child)
 
 
 COMMANDS_GROUP = "tallyward.commands"
@@ -285,23 +357,38 @@ def command_plugins() -> list[Callable[[Any], None]]:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    args = build_parser().parse_args(argv)
+    """Run one command; the exit status is 0 (done), 1 (the work failed) or 2 (bad usage:
+    an argument or a setting that cannot be used)."""
+    args = build_parser().parse_args(argv)  # bad usage exits 2 here (argparse)
     try:
         settings = get_settings()
-    except Exception as exc:  # noqa: BLE001 - settings errors name the variable
-        print(f"configuration error: {exc}", file=sys.stderr)
+    except ValidationError as exc:
+        print(f"configuration error: {settings_error_text(exc)}", file=sys.stderr)
         return 2
     try:
-        return int(args.func(args, settings) or 0)
+        status = int(args.func(args, settings) or 0)
+        sys.stdout.flush()  # a closed pipe shows here, where it is handled, not at exit
+        return status
+    except BrokenPipeError:
+        # The reader (`| head`) closed the pipe: what it wanted was delivered. Later writes,
+        # and the flush at exit, go nowhere instead of raising again.
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 0
     except TallywardError as exc:
         print(f"error: {exc.message}", file=sys.stderr)
-        return 1
-    except FileNotFoundError as exc:
+        return int(getattr(exc, "exit_status", 1))
+    except (FileNotFoundError, IsADirectoryError, PermissionError) as exc:
         print(f"error: {exc}", file=sys.stderr)
         return 1
     except OperationalError as exc:
-        print(f"error: the database is busy or unreachable ({type(exc.orig).__name__}: "
-              f"{str(exc.orig).strip()[:200]}); retry shortly", file=sys.stderr)
+        cause = str(exc.orig).strip()
+        if "no such table" in cause or ("relation" in cause and "does not exist" in cause):
+            print(f"error: the database {_safe_url(settings)} has no Tallyward schema "
+                  f"({cause[:120]}); set TALLYWARD_DATABASE_URL to the service's database, or "
+                  "create the schema with `tallyward migrate`", file=sys.stderr)
+        else:
+            print(f"error: the database is busy or unreachable ({type(exc.orig).__name__}: "
+                  f"{cause[:200]}); retry shortly", file=sys.stderr)
         return 1
     except KeyboardInterrupt:
         return 130

@@ -10,7 +10,7 @@ from __future__ import annotations
 from functools import lru_cache
 from typing import Literal
 
-from pydantic import Field, field_validator
+from pydantic import Field, ValidationError, field_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
 
@@ -100,6 +100,17 @@ class Settings(BaseSettings):
         description="PostgreSQL lock_timeout (seconds; 0 = none): how long a statement waits for "
         "a lock held by another session before the request answers 503 with Retry-After.",
     )
+    metrics_public: bool = Field(
+        False,
+        description="GET /metrics without an API key: false (default) = it needs a key of role "
+        "read like the API (or loopback-open); true = anyone who reaches the port may scrape it.",
+    )
+    page_cursor_secret: str | None = Field(
+        None, min_length=16,
+        description="Secret that signs GET /v1/counts page cursors (HMAC-SHA256). Unset: a "
+        "secret is drawn at start, so cursors do not outlive the process or cross --workers; "
+        "set the same value on every process behind one address.",
+    )
     sqlite_busy_timeout_s: float = Field(
         5.0, ge=0, le=600,
         description="SQLite: how long a write waits for another writer's lock (seconds) before "
@@ -116,6 +127,26 @@ class Settings(BaseSettings):
         if value.startswith("postgresql://"):
             value = "postgresql+psycopg://" + value[len("postgresql://") :]
         return value
+
+
+ENV_PREFIX = "TALLYWARD_"
+
+
+def settings_error_text(exc: ValidationError) -> str:
+    """A settings error as people set them: one line per problem, naming the environment
+    variable (``TALLYWARD_FALSE_ALERTS_PER_WEEK``), never the field name alone."""
+    lines = []
+    for err in exc.errors():
+        field = str(err["loc"][0]) if err.get("loc") else ""
+        name = f"{ENV_PREFIX}{field.upper()}" if field else "settings"
+        message = str(err.get("msg", "invalid")).removeprefix("Value error, ")
+        if name in message:  # the message names the variable already
+            lines.append(message)
+            continue
+        given = err.get("input")
+        shown = f" (got {given!r})" if isinstance(given, str | int | float) else ""
+        lines.append(f"{name}: {message}{shown}")
+    return "; ".join(lines)
 
 
 @lru_cache

@@ -365,9 +365,9 @@ def validate_items(
     offsets = LocalOffsets()
     latest_ok = now_s + future_tolerance_s
 
-    def reject(item: RawItem, message: str) -> None:
+    def reject(item: RawItem, message: str, reason: str) -> None:
         rejected.append({"index": item[0], "detector_id": _echo(item[1]),
-                         "start": _echo(item[2]), "error": message})
+                         "start": _echo(item[2]), "error": message, "reason": reason})
 
     aligned: dict[tuple[DetectorGrid, int], int] = {}
     for item in items:
@@ -386,27 +386,29 @@ def validate_items(
         # Slow path: work out exactly what is wrong (or parse a new timestamp).
         if isinstance(count, _NotAnObject):
             reject(item, f"item is a JSON {count.type_name}, not an object with "
-                         "detector_id, start and count")
+                         "detector_id, start and count", "bad_item")
             continue
         if isinstance(count, _UnknownFields):
             names = ", ".join(repr(n) for n in count.names)
-            reject(item, f"unknown field {names}; an item takes only detector_id, start and count")
+            reject(item, f"unknown field {names}; an item takes only detector_id, start and count",
+                   "unknown_field")
             continue
         if isinstance(count, _BadLine):
             reject(item, f"CSV line {count.line} {count.problem}; each line is "
-                         "detector_id,start,count")
+                         "detector_id,start,count", "bad_csv_line")
             continue
         if not isinstance(det, str) or not det:
-            reject(item, "detector_id is missing or not a string")
+            reject(item, "detector_id is missing or not a string", "bad_detector_id")
             continue
         if grid is None:
             problem = detector_id_error(det)
             reject(item, problem or f"unknown detector {det!r}; register it with "
-                                    "PUT /v1/detectors/{id} first")
+                                    "PUT /v1/detectors/{id} first",
+                   "bad_detector_id" if problem else "unknown_detector")
             continue
         if not isinstance(start_text, str):
             reject(item, "start is missing or not a string; use an RFC 3339 timestamp with offset, "
-                         "e.g. 2026-11-16T08:15:00-06:00")
+                         "e.g. 2026-11-16T08:15:00-06:00", "bad_start")
             continue
         if start is None:
             try:
@@ -415,22 +417,22 @@ def validate_items(
                 start = str(exc)
             parsed_starts[start_text] = start
         if isinstance(start, str):
-            reject(item, start)
+            reject(item, start, "bad_start")
             continue
         value, problem = _count_error(count)
         if problem is not None:
-            reject(item, problem)
+            reject(item, problem, "bad_count")
             continue
         if start > latest_ok:
             reject(item, f"start {start_text} is more than {future_tolerance_s} s ahead of the "
-                         "server clock; check the controller's clock")
+                         "server clock; check the controller's clock", "future_start")
             continue
         local = start + offsets.offset(grid.timezone, start)
         if local % grid.interval_s:
             reject(item, f"start {start_text} is not on detector {det}'s {grid.interval_s}-second "
                          f"interval grid (local time {local % 86400 // 3600:02d}:"
                          f"{local % 3600 // 60:02d}:{local % 60:02d} is "
-                         f"{local % grid.interval_s} s past an interval start)")
+                         f"{local % grid.interval_s} s past an interval start)", "off_grid")
             continue
         valid.append((index, det, start, value))  # type: ignore[arg-type]
     return valid, rejected

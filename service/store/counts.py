@@ -1,11 +1,14 @@
-"""Count reads: one detector's stored counts a page at a time, and the recorded conflicts."""
+"""Count reads: stored counts a page at a time (by detector, group, time range), and the
+recorded conflicts."""
 
 from __future__ import annotations
 
+from collections.abc import Callable
+from dataclasses import dataclass
 from typing import Any
 
 import orjson
-from sqlalchemy import Engine, select
+from sqlalchemy import Engine, and_, or_, select
 
 from service.errors import NotFound
 from service.store import tables
@@ -15,42 +18,74 @@ from service.timefmt import format_utc
 ROWS_PER_FETCH = 2000  # rows pulled from the database cursor at a time
 
 
-def counts_page_json(engine: Engine, detector_id: str, *, from_s: int | None,
-                     until_s: int | None, limit: int, max_bytes: int) -> bytes:
-    """A page of one detector's counts in time order, as the JSON of ``CountsPage``.
+@dataclass
+class CountsPage:
+    """One page of counts: the encoded rows, how many, and where the next page starts
+    (``(detector_id, start_s)`` of the first row left out; None at the end)."""
 
-    Rows are encoded as they come off the cursor and the page stops at ``limit`` rows or
-    ``max_bytes`` of row data, so a large read holds one page of JSON, not every row as
-    objects; ``next_from`` then names the first start left out."""
+    rows: bytes
+    n: int
+    next_position: tuple[str, int] | None
+
+
+def counts_page(engine: Engine, *, detector_id: str | None, group: str | None,
+                from_s: int | None, until_s: int | None, after: tuple[str, int] | None,
+                limit: int, max_bytes: int, encode: Callable[[str, int, int], bytes]
+                ) -> CountsPage:
+    """A page of stored counts ordered by detector, then interval start.
+
+    Filters: one detector, or the detectors of a group, or every detector; starts in
+    ``[from_s, until_s)``; and from ``after`` on (inclusive: the position a previous page
+    left off at). Rows are encoded by ``encode(detector_id, start_s, count)`` as they come off
+    the cursor, and the page stops at ``limit`` rows or ``max_bytes`` of encoded rows, so a
+    large read holds one page of text, not every row as objects."""
     c, d = tables.counts, tables.detectors
-    page = bytearray(b'{"detector_id":' + orjson.dumps(detector_id) + b',"data":[')
-    data_start = len(page)
+    page = bytearray()
     rows = 0
-    next_from: str | None = None
+    next_position: tuple[str, int] | None = None
     with read_transaction(engine) as conn:
-        if conn.execute(select(d.c.detector_id).where(d.c.detector_id == detector_id)).first() is None:
-            raise NotFound(f"unknown detector {detector_id!r}")
-        q = select(c.c.start_s, c.c.count).where(c.c.detector_id == detector_id)
+        q = select(c.c.detector_id, c.c.start_s, c.c.count)
+        if detector_id is not None:
+            found = select(d.c.detector_id).where(d.c.detector_id == detector_id)
+            if conn.execute(found).first() is None:
+                raise NotFound(f"unknown detector {detector_id!r}")
+            q = q.where(c.c.detector_id == detector_id)
+        if group is not None:
+            members = select(d.c.detector_id).where(d.c.group_id == group)
+            if conn.execute(members.limit(1)).first() is None:
+                raise NotFound(f"unknown group {group!r}: no detector belongs to it")
+            q = q.where(c.c.detector_id.in_(members))
         if from_s is not None:
             q = q.where(c.c.start_s >= from_s)
         if until_s is not None:
             q = q.where(c.c.start_s < until_s)
+        if after is not None:
+            q = q.where(or_(c.c.detector_id > after[0],
+                            and_(c.c.detector_id == after[0], c.c.start_s >= after[1])))
         result = conn.execution_options(yield_per=ROWS_PER_FETCH).execute(
-            q.order_by(c.c.start_s).limit(limit + 1))
+            q.order_by(c.c.detector_id, c.c.start_s).limit(limit + 1))
         try:
-            for start_s, count in result:
-                piece = b'{"start":"%s","count":%d},' % (format_utc(start_s).encode(), count)
-                if rows == limit or (rows and len(page) - data_start + len(piece) > max_bytes):
-                    next_from = format_utc(start_s)
+            for det, start_s, count in result:
+                piece = encode(det, start_s, count)
+                if rows == limit or (rows and len(page) + len(piece) > max_bytes):
+                    next_position = (det, int(start_s))
                     break
                 page += piece
                 rows += 1
         finally:
             result.close()
-    if rows:
-        del page[-1]  # the last row's comma
-    page += b'],"next_from":' + orjson.dumps(next_from) + b"}"
-    return bytes(page)
+    return CountsPage(bytes(page), rows, next_position)
+
+
+def json_row(detector_id: str, start_s: int, count: int) -> bytes:
+    """One count as the JSON object of ``CountPublic``, with a trailing comma."""
+    return b'{"detector_id":%s,"start":"%s","count":%d},' % (
+        orjson.dumps(detector_id), format_utc(start_s).encode(), count)
+
+
+def csv_row(detector_id: str, start_s: int, count: int) -> bytes:
+    """One count as an RFC 4180 CSV line (ids hold no comma, quote or formula character)."""
+    return b"%s,%s,%d\r\n" % (detector_id.encode(), format_utc(start_s).encode(), count)
 
 
 def conflicts_page(engine: Engine, *, detector_id: str | None, after: int, limit: int

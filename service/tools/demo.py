@@ -1,6 +1,7 @@
 """The main job in one command, on the embedded SQLite default and the demo network.
 
-Creates ``demo_run/tallyward.db``, loads ``seed_feed/``'s detectors and history, fits every
+Creates ``demo_run/run-<time>/tallyward.db`` (a new folder per run, so a database a server
+still uses is never replaced; ``demo_run/latest`` names the newest), loads ``seed_feed/``'s detectors and history, fits every
 baseline as of the start of the test period, starts the service on a loopback port with the
 data clock, replays the test period through the HTTP API as field controllers would, waits
 for scoring, prints the alerts an operator would see and scores them against the truth.
@@ -20,6 +21,7 @@ import httpx
 import orjson
 
 from service.config import Settings
+from service.errors import TallywardError
 from service.pipeline import fit as fitting
 from service.store import keys as security
 from service.store import migrations as migrate
@@ -63,8 +65,8 @@ def run_demo(*, feed: Path, folder: Path, workers: int = 2, speed: str = "max") 
     test_start = parse_rfc3339(truth["test"]["start"])
     folder.mkdir(parents=True, exist_ok=True)
     db_path = folder / "tallyward.db"
-    for suffix in ("", "-wal", "-shm"):
-        Path(f"{db_path}{suffix}").unlink(missing_ok=True)
+    if db_path.exists():  # never replace a database a server may be using
+        raise TallywardError(f"{db_path} exists; the demo makes a new database in a new folder")
     url = f"sqlite:///{db_path}"
     settings = Settings(database_url=url, clock="data")
     t = _step(f"database {db_path} (SQLite, WAL) — migrating to head")
@@ -133,6 +135,10 @@ def run_demo(*, feed: Path, folder: Path, workers: int = 2, speed: str = "max") 
         except subprocess.TimeoutExpired:
             server.kill()
     print(f"\ndemo finished in {time.perf_counter() - started:.0f} s; database left at {db_path}")
+    print(f"Serve it (README: From the demo to a running service):\n"
+          f"  export TALLYWARD_DATABASE_URL=sqlite:///{db_path.resolve()}\n"
+          f"  export TALLYWARD_CLOCK=data\n"
+          f"  .venv/bin/tallyward serve")
     print("Alerts are advisory: verify in the field before acting (see README, Cautions).")
     return 0
 
@@ -183,7 +189,35 @@ def main_demo(feed: str | None = None, folder: str | None = None, workers: int =
     else:  # the working folder's seed_feed/ first (an installed package has no checkout)
         feed_path = next((p for p in (Path.cwd() / "seed_feed", REPO / "seed_feed")
                           if (p / "truth.json").exists()), REPO / "seed_feed")
-    out = Path(folder) if folder else Path.cwd() / "demo_run"
-    if out.exists() and not (out / "tallyward.db").exists() and any(out.iterdir()):
-        raise SystemExit(f"{out} exists and is not a demo folder; pick another with --folder")
+    if folder:
+        out = Path(folder)
+        if (out / "tallyward.db").exists():
+            raise TallywardError(
+                f"{out} already holds a demo database ({out / 'tallyward.db'}); a server may be "
+                "using it, so the demo does not replace it. Pick a new --folder, or leave "
+                "--folder out for a fresh demo_run/run-<time>/ folder, or delete the old one "
+                "yourself once nothing uses it")
+        if out.exists() and any(out.iterdir()):
+            raise TallywardError(f"{out} exists and is not empty; pick another with --folder")
+    else:
+        out = new_run_folder(Path.cwd() / "demo_run")
     return run_demo(feed=feed_path, folder=out, workers=workers)
+
+
+def new_run_folder(parent: Path) -> Path:
+    """A new ``run-<UTC time>`` folder under ``parent``, recorded in ``parent/latest``.
+
+    Each run gets its own database, so a run never replaces the database of an earlier run
+    that a server may still be serving. ``latest`` is a text file holding the newest run's
+    folder: read once (``$(cat demo_run/latest)``), it stays valid when a later run starts."""
+    parent.mkdir(parents=True, exist_ok=True)
+    stamp = time.strftime("%Y%m%d-%H%M%S", time.gmtime())
+    for n in range(100):
+        out = parent / (f"run-{stamp}" if n == 0 else f"run-{stamp}-{n}")
+        try:
+            out.mkdir()
+        except FileExistsError:
+            continue
+        (parent / "latest").write_text(f"{out}\n", encoding="utf-8")
+        return out
+    raise TallywardError(f"could not make a new run folder under {parent}")

@@ -28,7 +28,7 @@ from service.domain import CONTROL_CHARACTERS, DETECTOR_ID_PATTERN, detector_id_
 from service.errors import Forbidden, TallywardError, Unauthorized, Unavailable
 from service.pipeline.score import Scorer, mark_dirty
 from service.store.engine import make_engine
-from service.web import openapi
+from service.web import docs, metrics, openapi
 from service.web.deps import PRINCIPAL_SCOPE_KEY, check_permission, identify
 from service.web.routes import alerts, baselines, corrections, counts, detectors, health
 
@@ -259,8 +259,9 @@ def create_app(settings: Settings | None = None, *, engine: Engine | None = None
             if scorer is not None:
                 scorer.stop()
 
-    app = FastAPI(title="Tallyward", version=__version__, description=DESCRIPTION,
-                  docs_url="/docs", openapi_url="/openapi.json", lifespan=lifespan)
+    # /docs and /redoc from bundled assets: nothing loads from another host
+    app = docs.offline_app(title="Tallyward", version=__version__, description=DESCRIPTION,
+                           openapi_url="/openapi.json", lifespan=lifespan)
     app.state.settings = settings
     app.state.engine = engine
     app.state.after_store = mark_dirty
@@ -322,6 +323,7 @@ def create_app(settings: Settings | None = None, *, engine: Engine | None = None
                        timeout_s=settings.http_body_timeout_s)
     app.add_middleware(KeyBeforeBody)
     openapi.document(app)
+    metrics.install(app, settings, engine)  # GET /metrics and the request timer
     app.add_middleware(AccessLog)
     return app
 

@@ -61,6 +61,9 @@ class CountRejection(BaseModel):
     detector_id: str | None
     start: str | None
     error: str
+    reason: str = Field(description="Stable code of the problem: `bad_item`, `unknown_field`, "
+                                    "`bad_csv_line`, `bad_detector_id`, `unknown_detector`, "
+                                    "`bad_start`, `bad_count`, `future_start`, `off_grid`.")
 
 
 class CountConflict(BaseModel):

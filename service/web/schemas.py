@@ -132,15 +132,21 @@ class BaselineProfile(BaseModel):
 
 
 class CountPublic(BaseModel):
+    detector_id: str
     start: str = Field(description="RFC 3339 interval start (UTC).")
     count: int
 
 
 class CountsPage(BaseModel):
-    detector_id: str
-    data: list[CountPublic]
-    next_from: str | None = Field(description="Ask for this start next (as `from`); null at the "
-                                              "end.")
+    detector_id: str | None = Field(description="The detector asked for, or null.")
+    group: str | None = Field(description="The group asked for, or null.")
+    data: list[CountPublic] = Field(description="Ordered by detector, then start.")
+    next: str | None = Field(description="Cursor to the rest: ask again with the same filters "
+                                         "and cursor=<next>; null when this page reaches the "
+                                         "end.")
+    next_from: str | None = Field(description="With one detector_id: the start of the first "
+                                              "row left out (usable as `from`); null otherwise "
+                                              "and at the end. Prefer `next`.")
 
 
 class ConflictPublic(BaseModel):

@@ -101,7 +101,8 @@ def test_get_counts_extreme_but_valid_times_are_an_empty_page(client, keys, engi
     r = client.get("/v1/counts", params={"detector_id": "D1", "from": "0001-01-01T00:00:00+01:00",
                                          "until": "9999-12-31T23:59:59-01:00"},
                    headers=auth(keys["read"]))
-    assert r.status_code == 200 and r.json() == {"detector_id": "D1", "data": [], "next_from": None}
+    assert r.status_code == 200 and r.json() == {"detector_id": "D1", "group": None, "data": [],
+                                                 "next": None, "next_from": None}
 
 
 @pytest.mark.parametrize("after", [str(2**31), str(2**63), "99999999999999999999999"])

@@ -255,5 +255,5 @@ def test_405_allow_lists_every_method_of_the_path(live_server, keys) -> None:
     assert r.headers["allow"] == "GET, PATCH, PUT"
     assert r.json()["error"] == "method_not_allowed"
     assert r.json()["message"] == ("method not allowed: DELETE /v1/detectors/D1 (this path "
-                                   "takes GET, PUT); the routes and their methods are listed "
+                                   "takes GET, PATCH, PUT); the routes and their methods are listed "
                                    "at /docs")

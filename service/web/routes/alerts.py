@@ -14,6 +14,7 @@ from service.store import alerts as alert_store
 from service.store import detectors as registry
 from service.store.scoring import clock_now
 from service.timefmt import parse_rfc3339
+from service.web import paging
 from service.web.deps import EngineDep, OperateDep, ReadDep, SettingsDep
 from service.web.schemas import (
     Acknowledgement,
@@ -43,7 +44,22 @@ def _time(name: str, text: str | None) -> int | None:
         raise ValidationFailed(f"{name}: {str(exc).replace('start ', '', 1)}") from None
 
 
-@router.get("", response_model=AlertsPage)
+ALERT_CSV_COLUMNS = ("id", "seq", "detector_id", "group", "kind", "cause", "status",
+                     "withdrawn", "start", "end", "closed_at", "intervals", "observed",
+                     "expected", "p_value", "score", "baseline_id", "summary", "detectors",
+                     "suppressed")
+ALERTS_CSV = {200: {"content": {"text/csv": {"schema": {"type": "string"}}},
+                    "description": "JSON (AlertsPage), or CSV with Accept: text/csv (columns "
+                                   f"{', '.join(ALERT_CSV_COLUMNS)}; poll on with the "
+                                   "`Tallyward-Next-After` header)."}}
+
+
+def _alert_csv_row(alert: dict[str, Any]) -> list[Any]:
+    return [" ".join(alert[c] or ()) if c == "detectors" else alert.get(c, False)
+            if c == "suppressed" else alert[c] for c in ALERT_CSV_COLUMNS]
+
+
+@router.get("", response_model=AlertsPage, responses=ALERTS_CSV)
 def list_alerts(
     request: Request, engine: EngineDep, _: ReadDep,
     after: Annotated[int, Query(ge=0, le=INT64_MAX,
@@ -65,12 +81,17 @@ def list_alerts(
     if lo is not None and hi is not None and lo >= hi:
         raise ValidationFailed(f"start_after ({start_after}) must be earlier than start_before "
                                f"({start_before}); the range is empty")
+    as_csv = paging.wants_csv(request)  # CSV answers carry no ETag (one per representation)
     polled = alert_store.poll(engine, after=after, status=status, detector_id=detector_id,
                               group=group, kind=kind, limit=limit, query=request.url.query,
-                              if_none_match=request.headers.get("if-none-match"),
+                              if_none_match=None if as_csv else request.headers.get("if-none-match"),
                               start_after_s=lo, start_before_s=hi, suppressed=suppressed)
     if polled.page is None:
         return Response(status_code=304, headers={"ETag": polled.etag})
+    if as_csv:
+        return paging.csv_response(
+            paging.csv_text(ALERT_CSV_COLUMNS, map(_alert_csv_row, polled.page["data"])),
+            filename="alerts.csv", headers={"Tallyward-Next-After": str(polled.page["next_after"])})
     # Serialised here (the ETag header goes with it); the shape is AlertsPage.
     return Response(orjson.dumps(polled.page), media_type="application/json",
                     headers={"ETag": polled.etag})

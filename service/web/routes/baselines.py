@@ -6,7 +6,7 @@ import time
 from datetime import date
 from typing import Annotated, Any, Literal
 
-from fastapi import APIRouter, Path, Query
+from fastapi import APIRouter, Path, Query, Request
 from fastapi.concurrency import run_in_threadpool
 
 from service.domain import DAY_TYPES, DETECTOR_ID_PATTERN
@@ -14,6 +14,7 @@ from service.errors import NotFound, ValidationFailed
 from service.pipeline import baseline_day
 from service.pipeline import fit as fitting
 from service.timefmt import parse_rfc3339
+from service.web import metrics, paging
 from service.web.deps import AdminDep, EngineDep, ReadDep, SettingsDep
 from service.web.schemas import BaselineDay, BaselineProfile, FitRequest, FitResult
 
@@ -25,7 +26,7 @@ FIRST_DATE, LAST_DATE = date(1990, 1, 1), date(2100, 12, 31)
 
 
 @router.post("/baselines/fit", response_model=FitResult)
-async def fit(req: FitRequest, engine: EngineDep, settings: SettingsDep, _: AdminDep
+async def fit(request: Request, req: FitRequest, engine: EngineDep, settings: SettingsDep, _: AdminDep
               ) -> dict[str, Any]:
     """Fit baselines now (one process); `tallyward fit --workers N` is faster for networks."""
     as_of = None
@@ -42,6 +43,7 @@ async def fit(req: FitRequest, engine: EngineDep, settings: SettingsDep, _: Admi
     started = time.perf_counter()
     results = await run_in_threadpool(fitting.fit_many, settings, engine,
                                       detector_ids=req.detector_ids, as_of_s=as_of, workers=1)
+    metrics.observe_fits(request.app, results)
     return {"seconds": round(time.perf_counter() - started, 2),
             "data": [{k: r.get(k) for k in ("detector_id", "status", "reason", "baseline_id")}
                      for r in results]}
@@ -60,14 +62,21 @@ def _baseline_date(text: str) -> date:
     return day
 
 
-@router.get("/detectors/{detector_id}/baseline", response_model=BaselineDay)
+BASELINE_CSV_COLUMNS = ("detector_id", "day_type", "start", "expected", "low", "high")
+BASELINE_CSV = {200: {"content": {"text/csv": {"schema": {"type": "string"}}},
+                      "description": "JSON (BaselineDay), or CSV with Accept: text/csv (columns "
+                                     f"{', '.join(BASELINE_CSV_COLUMNS)})."}}
+
+
+@router.get("/detectors/{detector_id}/baseline", response_model=BaselineDay,
+            responses=BASELINE_CSV)
 def get_baseline(
-    detector_id: DetectorId, engine: EngineDep, _: ReadDep,
+    request: Request, detector_id: DetectorId, engine: EngineDep, _: ReadDep,
     date_: Annotated[str | None, Query(
         alias="date", description=f"Local date YYYY-MM-DD, {FIRST_DATE}..{LAST_DATE}.")] = None,
     day_type: Annotated[Literal[DAY_TYPES] | None, Query()] = None,  # type: ignore[valid-type]
     level: Annotated[float, Query(gt=0.5, lt=1.0, description="Central interval level.")] = 0.95,
-) -> dict[str, Any]:
+) -> Any:
     """Expected count and predictive interval for every interval of a local day."""
     if (date_ is None) == (day_type is None):
         raise ValidationFailed("give exactly one of date=YYYY-MM-DD or "
@@ -75,6 +84,11 @@ def get_baseline(
     day = _baseline_date(date_) if date_ is not None else None
     figures = baseline_day.baseline_day(engine, detector_id, day=day, day_type=day_type,
                                         level=level)
+    if paging.wants_csv(request):
+        rows = ([detector_id, figures["day_type"], p["start"], p["expected"], p["low"], p["high"]]
+                for p in figures["data"])
+        return paging.csv_response(paging.csv_text(BASELINE_CSV_COLUMNS, rows),
+                                   filename=f"{detector_id}_{date_ or day_type}_baseline.csv")
     return {**figures, "date": date_}
 
 
