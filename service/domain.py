@@ -58,7 +58,8 @@ def interval_error(interval_s: object) -> str | None:
 # ---------------------------------------------------------------------------- detector ids
 
 DETECTOR_ID_PATTERN = r"^[A-Za-z0-9][A-Za-z0-9._:\-]{0,63}$"
-DETECTOR_ID_RULE = "1-64 characters: letters, digits and . _ : - , starting with a letter or digit"
+DETECTOR_ID_RULE = ("1 to 64 characters, each a letter, a digit, a period (.), an underscore (_), "
+                    "a colon (:) or a hyphen (-); the first a letter or digit")
 _ID = re.compile(DETECTOR_ID_PATTERN)
 
 # ---------------------------------------------------------------------------- roads, days
@@ -94,6 +95,18 @@ GRANTS: dict[str, frozenset[str]] = {
     "admin": frozenset({"read", "operate", "admin", "ingest"}),
 }
 ROLES = tuple(GRANTS)
+# What each permission lets a key do, in the words of an error message.
+PERMISSION_ACTIONS: dict[str, str] = {
+    "ingest": "send counts",
+    "read": "read detectors, counts, baselines and alerts",
+    "operate": "acknowledge alerts and set detectors in or out of service",
+    "admin": "register detectors and fit baselines",
+}
+
+
+def roles_granting(permission: str) -> tuple[str, ...]:
+    """The roles whose keys hold ``permission``."""
+    return tuple(role for role, held in GRANTS.items() if permission in held)
 
 
 def sql_in(column: str, values: tuple[str, ...]) -> str:
@@ -152,3 +165,20 @@ def detector_id_error(detector_id: str) -> str | None:
         return f"detector_id is {len(detector_id):,} characters long; ids are {DETECTOR_ID_RULE}"
     shown = repr(detector_id[:64])
     return f"detector_id {shown} is not a valid id; ids are {DETECTOR_ID_RULE}"
+
+# ---------------------------------------------------------------------------- service states
+
+# A detector's service state, set by people (PATCH /v1/detectors/{id}):
+#   in_service      expected to report; alerts raised as usual (the default)
+#   out_of_service  being repaired or known bad: counts are stored and scored, but alerts it
+#                   would raise are kept as suppressed (shown only when asked for); returns to
+#                   service by itself at its ``until`` time, when one is set
+#   retired         no longer expected to report: no missing-data alerts; kept for history
+SERVICE_STATES = ("in_service", "out_of_service", "retired")
+# Who may set which state: operate keys mute and unmute; only admin keys retire (or bring a
+# retired detector back), as retiring changes what the network is expected to report.
+SERVICE_STATE_PERMISSION = {"in_service": "operate", "out_of_service": "operate",
+                            "retired": "admin"}
+
+# Entries of an alert's append-only history.
+HISTORY_ACTIONS = ("acknowledge", "unacknowledge", "note")

@@ -101,7 +101,8 @@ class BatchResult:
         text = (f"{self.accepted} stored, {self.duplicate} already stored, "
                 f"{len(self.conflicts)} conflicting, {len(self.rejected)} rejected")
         if self.rejected:
-            text += "; the rejected items can never be stored as sent: see errors (do not resend)"
+            text += ("; all valid items were stored; fix the rejected items listed in errors "
+                     "and send only those")
         elif self.conflicts:
             text += "; stored values were kept and the offered ones recorded: see conflicts"
         return text

@@ -54,6 +54,7 @@ from service.stats.thresholds import Thresholds
 from service.stats.timeline import WarmState, score_timeline
 from service.store import scoring as store
 from service.store.baselines import BaselineCache, save_thresholds
+from service.store.detectors import return_due
 from service.store.engine import read_transaction, write_transaction
 from service.store.scoring import Claim, DetectorInfo, mark_dirty
 from service.timefmt import LocalOffsets
@@ -375,6 +376,9 @@ def score_pass(engine: Engine, settings: Settings, *, limit: int = 64,
     recorded (the database is unreachable): the leases then expire and the work is retried.
     Without a ``cache`` the pass starts with an empty one."""
     cache = cache if cache is not None else ScoringCache()
+    # Out-of-service periods that have reached their ``until`` end before this pass writes
+    # alerts, so none is suppressed after its detector is back in service.
+    return_due(engine)
     claims, clock = store.claim(engine, settings, limit=limit)
     if not claims:
         return 0

@@ -171,6 +171,31 @@ def cause_for(kind: str, *, others: Sequence[str], neighbor_kinds: dict[str, set
 
 
 # ----------------------------------------------------------------------------- text
+#
+# One template per kind, and one cause phrase per (kind, cause): the sentence names the place,
+# what was seen against what was expected, when (the detector's local time, with weekday, day
+# and month: "since Tue 17 Nov 17:10"), for how long, and the likely cause only where there is
+# one. tests/stats/test_sentences.py renders every kind x cause.
+
+SENTENCE_TARGET = 200  # characters; met whenever the place's name leaves room
+
+_CAUSE_PHRASES: dict[tuple[str, str], str] = {
+    ("zero_counts", "detector"): "likely a dead loop or detector card",
+    ("low_volume", "detector"): "likely an undercounting loop or detector card",
+    ("high_volume", "detector"): "likely a chattering or double-counting detector",
+    ("over_capacity", "detector"): "likely a double-counting detector",
+    ("repeated_value", "detector"): "likely a stuck detector card",
+    ("zero_counts", "traffic"): "likely a traffic event: other lanes here drop too",
+    ("low_volume", "traffic"): "likely a traffic event: other lanes here drop too",
+    ("high_volume", "traffic"): "likely a traffic event: other lanes here rise too",
+    ("repeated_value", "communications"): "likely a frozen controller: others here repeat too",
+    ("no_reports", "communications"): "likely a controller or communications loss",
+}
+
+
+def cause_phrase(kind: str, cause: str) -> str | None:
+    """The likely cause in words, or None where the evidence names none (``unknown``)."""
+    return _CAUSE_PHRASES.get((kind, cause))
 
 
 def _duration(seconds: int) -> str:
@@ -183,71 +208,96 @@ def _duration(seconds: int) -> str:
     return f"{hours / 24:.1f} days"
 
 
-def _local(t: int, tz: str, fmt: str) -> str:
-    return datetime.fromtimestamp(t, ZoneInfo(tz)).strftime(fmt)
+def _local(t: int, tz: str) -> datetime:
+    return datetime.fromtimestamp(t, ZoneInfo(tz))
 
 
-def _when(start_s: int, span_end_s: int, timezone: str) -> str:
-    """The episode's local time span: a range within a day, else where it started."""
-    if span_end_s - start_s < 86_400:
-        return f"{_local(start_s, timezone, '%a %H:%M')}–{_local(span_end_s, timezone, '%H:%M')}"
-    return f"from {_local(start_s, timezone, '%a %m-%d %H:%M')}"
+def _stamp(moment: datetime) -> str:
+    """Weekday, day, month name and 24-hour time: never read as a range ("Tue 17 Nov 17:10")."""
+    return f"{moment:%a} {moment.day} {moment:%b %H:%M}"
 
 
-def _cause_tail(cause: str, group: str | None) -> str:
-    return {
-        "detector": "likely a detector fault",
-        "traffic": f"neighbors in {group} deviate too — likely a traffic event",
-        "communications": "likely a communications loss",
-        "unknown": "cause unknown (no neighbors to compare)",
-    }[cause]
+def _span(ep: Episode, interval_s: int, timezone: str) -> str:
+    """How long and when, in the detector's local time: "for 2 h since Tue 17 Nov 17:10" while
+    open, "for 2 h, Tue 17 Nov 17:10–19:10" once closed (the end's date only if it differs)."""
+    span_end = ep.end_s + interval_s
+    length = _duration(span_end - ep.start_s)
+    start = _local(ep.start_s, timezone)
+    if ep.closed_s is None:
+        return f"for {length} since {_stamp(start)}"
+    end = _local(span_end, timezone)
+    end_text = f"{end:%H:%M}" if end.date() == start.date() else _stamp(end)
+    return f"for {length}, {_stamp(start)}–{end_text}"
+
+
+def common_site(labels: Sequence[str | None]) -> str | None:
+    """The leading comma-separated parts that all labels share ("Brannock Ave & Third St, EB
+    approach" for its lanes' labels), or None when they share nothing."""
+    parts = [[p.strip() for p in (lb or "").split(",")] for lb in labels]
+    if not parts or any(not p[0] for p in parts):
+        return None
+    shared: list[str] = []
+    for column in zip(*parts, strict=False):
+        if len(set(column)) != 1:
+            break
+        shared.append(column[0])
+    return ", ".join(shared) or None
+
+
+def _vehicles(n: float) -> str:
+    return f"{n:,.0f} vehicle" + ("" if round(n) == 1 else "s")
 
 
 def summary_sentence(ep: Episode, cause: str, *, interval_s: int, timezone: str,
                      label: str | None = None, group: str | None = None,
-                     members: Sequence[str] = ()) -> str:
-    """One sentence a person can read on a phone."""
-    span_end = ep.end_s + interval_s
-    when = _when(ep.start_s, span_end, timezone)
-    length = _duration(span_end - ep.start_s)
-    where = label or ep.detector_id or f"group {group}"
-    tail = _cause_tail(cause, group)
-    if ep.kind == "no_reports":
-        return _no_reports_sentence(ep, where=where, length=length, when=when, tail=tail,
-                                 interval_s=interval_s, group=group, members=members)
-    return _count_sentence(ep, cause, where=where, length=length, when=when, tail=tail)
+                     members: Sequence[str] = (), group_size: int | None = None,
+                     site: str | None = None, cap_per_interval: float | None = None) -> str:
+    """One sentence a person can read on a phone (see the template notes above).
+
+    ``members`` are a group alert's silent detectors, ``group_size`` the group's detectors in
+    all, ``site`` the place they share (:func:`common_site`); ``cap_per_interval`` the count
+    above which an interval is physically implausible (over-capacity alerts)."""
+    span = _span(ep, interval_s, timezone)
+    if ep.detector_id is None:  # a group's communications alert
+        place = site or (f"group {group}" if group else ep.subject)
+        of = f" of {group_size}" if group_size else ""
+        text = f"{place}: no reports from {len(members)}{of} detectors {span}"
+        phrase: str | None = "likely a controller or communications loss"
+    else:
+        place = label or ep.detector_id
+        head, tail = _observation(ep, interval_s, cap_per_interval)
+        text = f"{place}: {head} {span}{tail}"
+        patchy = ep.kind == "no_reports" and _is_patchy(ep, interval_s)
+        phrase = "likely a communications fault" if patchy else cause_phrase(ep.kind, cause)
+        if ep.kind == "repeated_value" and cause == "unknown":
+            phrase = "likely a stuck detector card or frozen controller"
+    return f"{text}; {phrase}." if phrase else f"{text}."
 
 
-def _no_reports_sentence(ep: Episode, *, where: str, length: str, when: str, tail: str,
-                      interval_s: int, group: str | None, members: Sequence[str]) -> str:
-    if ep.detector_id is None:
-        return (f"No reports from {len(members)} detectors of {group} for {length} ({when} "
-                f"local) — likely a controller or communications loss.")
-    if ep.n_intervals * interval_s < ep.end_s + interval_s - ep.start_s:
-        spanned = (ep.end_s + interval_s - ep.start_s) // interval_s
-        return (f"{where}: reported {spanned - ep.n_intervals} of {spanned} intervals over "
-                f"{length} ({when} local) — {tail}.")
-    return f"{where}: no reports for {length} ({when} local) — {tail}."
+def _is_patchy(ep: Episode, interval_s: int) -> bool:
+    return ep.n_intervals * interval_s < ep.end_s + interval_s - ep.start_s
 
 
-def _count_sentence(ep: Episode, cause: str, *, where: str, length: str, when: str,
-                    tail: str) -> str:
+def _observation(ep: Episode, interval_s: int, cap_per_interval: float | None
+                 ) -> tuple[str, str]:
+    """What was seen (before the time span) and what was expected (after it), by kind."""
     observed, expected = ep.observed or 0.0, ep.expected
+    if ep.kind == "no_reports":
+        if _is_patchy(ep, interval_s):
+            spanned = (ep.end_s + interval_s - ep.start_s) // interval_s
+            return f"reported {spanned - ep.n_intervals} of {spanned} intervals", ""
+        return "no reports", ""
     if ep.kind == "zero_counts":
-        what = "dead loop or card" if cause == "detector" else "closure or blockage"
-        return (f"{where}: counted 0 vehicles for {length} ({when} local) where about "
-                f"{expected:,.0f} were expected — {tail} ({what}).")
+        return "counted 0 vehicles", f", where about {expected:,.0f} were expected"
     if ep.kind == "low_volume":
         share = observed / expected if expected else 0.0
-        return (f"{where}: counted {observed:,.0f} vehicles in {length} ({when} local), "
-                f"{share:.0%} of the {expected:,.0f} expected — {tail}.")
+        return f"counted {_vehicles(observed)}", f", {share:.0%} of the {expected:,.0f} expected"
     if ep.kind == "high_volume":
         ratio = observed / expected if expected else float("inf")
-        what = " (chattering or double counting)" if cause == "detector" else ""
-        return (f"{where}: counted {observed:,.0f} vehicles in {length} ({when} local), "
-                f"{ratio:.1f}× the {expected:,.0f} expected — {tail}{what}.")
+        return f"counted {_vehicles(observed)}", f", {ratio:.1f}× the {expected:,.0f} expected"
     if ep.kind == "over_capacity":
-        return (f"{where}: counted {observed:,.0f} vehicles in {length} ({when} local), more than "
-                f"its lanes can carry — physically implausible, likely double counting.")
-    return (f"{where}: the same count repeated {ep.n_intervals} times ({when} local) — likely "
-            f"a frozen controller or stuck detector.")
+        limit = (f" (max {cap_per_interval:,.0f} per {interval_s // 60} min)"
+                 if cap_per_interval else "")
+        return f"counted {_vehicles(observed)}", f", more than its lanes can carry{limit}"
+    value = observed / ep.n_intervals if ep.n_intervals else observed
+    return f"reported the same count, {value:,.0f}, {ep.n_intervals} times in a row", ""

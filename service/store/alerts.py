@@ -1,5 +1,10 @@
 """Alert reads and writes for the API: the change feed polled by dashboards (with its ETag),
-one alert, acknowledgements, and a detector's 24 h / 7 day health figures.
+one alert with its history, acknowledgements (and their withdrawal) and notes, and a
+detector's 24 h / 7 day health figures.
+
+An alert's history (``alert_history``) is appended to, never changed: each acknowledgement,
+withdrawal of one and note is an entry (action, by, at, note, and the API key that made it).
+The alert row keeps the acknowledgement in force (the latest one, unless withdrawn since).
 
 Rows are returned in their public shape (times as RFC 3339, ``p_value`` and ``score`` from
 ``log_p``). The alert sequence (``counters.alert_seq``) rises on every change of an alert, so
@@ -18,7 +23,7 @@ from typing import Any
 import orjson
 from sqlalchemy import Connection, Engine, func, select, update
 
-from service.errors import NotFound
+from service.errors import NotFound, ValidationFailed
 from service.store import tables
 from service.store.engine import read_transaction, write_transaction
 from service.timefmt import format_utc
@@ -57,6 +62,7 @@ def alert_public(row: Any, interval_s: int | None) -> dict[str, Any]:
         "baseline_id": m["baseline_id"], "summary": m["summary"],
         "detectors": orjson.loads(m["detectors"]) if m["detectors"] else None,
         "acknowledged": ack,
+        "suppressed": bool(m["suppressed"]),
     }
 
 
@@ -90,8 +96,12 @@ class Poll:
 
 
 def poll(engine: Engine, *, after: int, status: str, detector_id: str | None, group: str | None,
-         kind: str | None, limit: int, query: str, if_none_match: str | None) -> Poll:
-    """Alert changes with ``seq > after`` in seq order (group members' shares hidden).
+         kind: str | None, limit: int, query: str, if_none_match: str | None,
+         start_after_s: int | None = None, start_before_s: int | None = None,
+         suppressed: bool = False) -> Poll:
+    """Alert changes with ``seq > after`` in seq order (group members' shares hidden, and
+    suppressed alerts unless ``suppressed``), optionally only alerts starting in
+    [``start_after_s``, ``start_before_s``).
 
     The ETag is the highest committed seq with the request's ``query`` string: it changes when
     any alert changes, and differs between filters."""
@@ -114,6 +124,12 @@ def poll(engine: Engine, *, after: int, status: str, detector_id: str | None, gr
             q = q.where(a.c.group_id == group)
         if kind is not None:
             q = q.where(a.c.kind == kind)
+        if not suppressed:
+            q = q.where(a.c.suppressed == 0)
+        if start_after_s is not None:
+            q = q.where(a.c.start_s >= start_after_s)
+        if start_before_s is not None:
+            q = q.where(a.c.start_s < start_before_s)
         rows = conn.execute(q.order_by(a.c.seq).limit(limit)).all()
         intervals = _intervals(conn) if rows else {}
     data = [alert_public(r, _step(r, intervals)) for r in rows]
@@ -124,30 +140,83 @@ def poll(engine: Engine, *, after: int, status: str, detector_id: str | None, gr
     return Poll(etag, {"data": data, "next_after": next_after})
 
 
+def _history(conn: Connection, alert_id: int) -> list[dict[str, Any]]:
+    h = tables.alert_history
+    return [{"action": r.action, "by": r.actor, "at": format_utc(r.at_s), "note": r.note,
+             "key": r.key_name}
+            for r in conn.execute(select(h).where(h.c.alert_id == alert_id)
+                                  .order_by(h.c.entry_id))]
+
+
 def _get(conn: Connection, alert_id: int) -> dict[str, Any]:
     a = tables.alerts
     row = conn.execute(select(a).where(a.c.alert_id == alert_id)).first()
     if row is None:
         raise NotFound(f"unknown alert {alert_id}")
-    return alert_public(row, _step(row, _intervals(conn)))
+    return {**alert_public(row, _step(row, _intervals(conn))),
+            "history": _history(conn, alert_id)}
 
 
 def get_alert(engine: Engine, alert_id: int) -> dict[str, Any]:
-    """One alert in its public shape; ``NotFound`` if there is none."""
+    """One alert in its public shape, with its history; ``NotFound`` if there is none."""
     with read_transaction(engine) as conn:
         return _get(conn, alert_id)
 
 
-def acknowledge(engine: Engine, alert_id: int, *, by: str, note: str | None) -> dict[str, Any]:
-    """Record who acknowledged an alert (a change: it takes a new seq); the alert afterwards."""
+def _append(conn: Connection, alert_id: int, *, action: str, by: str, note: str | None,
+            key_name: str | None, now: float, **alert_values: Any) -> None:
+    """One history entry, and the alert's change (a new seq, so pollers see it)."""
     a = tables.alerts
+    conn.execute(tables.alert_history.insert().values(
+        alert_id=alert_id, action=action, actor=by, key_name=key_name, at_s=now, note=note))
+    (seq,) = next_seqs(conn, 1)
+    conn.execute(a.update().where(a.c.alert_id == alert_id).values(
+        seq=seq, updated_s=now, **alert_values))
+
+
+def _current_ack(conn: Connection, alert_id: int) -> Any:
+    a = tables.alerts
+    row = conn.execute(select(a.c.acknowledged_by).where(a.c.alert_id == alert_id)).first()
+    if row is None:
+        raise NotFound(f"unknown alert {alert_id}")
+    return row
+
+
+def acknowledge(engine: Engine, alert_id: int, *, by: str, note: str | None,
+                key_name: str | None = None) -> dict[str, Any]:
+    """Acknowledge an alert: a history entry, and the acknowledgement in force (a second one
+    is appended and takes over; the first stays in the history); the alert afterwards."""
     with write_transaction(engine) as conn:
-        if conn.execute(select(a.c.alert_id).where(a.c.alert_id == alert_id)).first() is None:
-            raise NotFound(f"unknown alert {alert_id}")
-        (seq,) = next_seqs(conn, 1)
+        _current_ack(conn, alert_id)
         now = time.time()
-        conn.execute(a.update().where(a.c.alert_id == alert_id).values(
-            acknowledged_by=by, ack_note=note, acknowledged_s=now, seq=seq, updated_s=now))
+        _append(conn, alert_id, action="acknowledge", by=by, note=note, key_name=key_name,
+                now=now, acknowledged_by=by, ack_note=note, acknowledged_s=now)
+        return _get(conn, alert_id)
+
+
+def unacknowledge(engine: Engine, alert_id: int, *, by: str, note: str | None,
+                  key_name: str | None = None) -> dict[str, Any]:
+    """Withdraw the acknowledgement in force (a history entry); ``ValidationFailed`` when the
+    alert is not acknowledged."""
+    with write_transaction(engine) as conn:
+        if _current_ack(conn, alert_id).acknowledged_by is None:
+            raise ValidationFailed(
+                f"alert {alert_id} is not acknowledged, so there is no acknowledgement to "
+                "withdraw; acknowledge it first (POST /v1/alerts/{id}/acknowledge)",
+                code="not_acknowledged")
+        now = time.time()
+        _append(conn, alert_id, action="unacknowledge", by=by, note=note, key_name=key_name,
+                now=now, acknowledged_by=None, ack_note=None, acknowledged_s=None)
+        return _get(conn, alert_id)
+
+
+def add_note(engine: Engine, alert_id: int, *, by: str, note: str,
+             key_name: str | None = None) -> dict[str, Any]:
+    """Append a note to an alert's history; the alert afterwards."""
+    with write_transaction(engine) as conn:
+        _current_ack(conn, alert_id)
+        _append(conn, alert_id, action="note", by=by, note=note, key_name=key_name,
+                now=time.time())
         return _get(conn, alert_id)
 
 
@@ -155,15 +224,13 @@ def detector_health(engine: Engine, detector_id: str, *,
                     clock: Callable[[Connection], float]) -> dict[str, Any]:
     """Completeness, share of intervals flagged (24 h and 7 days before ``clock(conn)``, the
     scoring clock in seconds) and open alerts of one detector."""
-    d, c, e, a = tables.detectors, tables.counts, tables.evidence, tables.alerts
+    d, c, e = tables.detectors, tables.counts, tables.evidence
     with read_transaction(engine) as conn:
         det = conn.execute(select(d.c.interval_s).where(d.c.detector_id == detector_id)).first()
         if det is None:
             raise NotFound(f"unknown detector {detector_id!r}")
         now = int(clock(conn))
-        open_alerts = conn.execute(select(a.c.alert_id, a.c.kind, a.c.start_s).where(
-            a.c.detector_id == detector_id, a.c.status == "open", a.c.withdrawn == 0)
-            .order_by(a.c.start_s)).all()
+        open_alerts = _open_alerts(conn, detector_id)
         windows = {}
         for name, span in HEALTH_WINDOWS_S:
             lo = now - span
@@ -177,5 +244,26 @@ def detector_health(engine: Engine, detector_id: str, *,
                              "completeness": round(present / intervals, 4),
                              "flagged_share": round(flagged / intervals, 4)}
     return {"detector_id": detector_id, **windows,
-            "open_alerts": [{"id": r.alert_id, "kind": r.kind, "start": format_utc(r.start_s)}
-                            for r in open_alerts]}
+            "open_alerts": open_alerts}
+
+
+def _open_alerts(conn: Connection, detector_id: str) -> list[dict[str, Any]]:
+    """The open alerts about a detector as ``GET /v1/alerts`` lists them: its own (but not its
+    share of a group alert, which the list hides) and the open group alerts that name it."""
+    a, d = tables.alerts, tables.detectors
+    live = (a.c.status == "open", a.c.withdrawn == 0)
+    own = conn.execute(select(a.c.alert_id, a.c.kind, a.c.start_s, a.c.suppressed).where(
+        a.c.detector_id == detector_id, a.c.part_of.is_(None), *live)).all()
+    group = conn.execute(select(d.c.group_id).where(d.c.detector_id == detector_id)).scalar()
+    shared = []
+    if group is not None:
+        for r in conn.execute(select(a.c.alert_id, a.c.kind, a.c.start_s, a.c.suppressed,
+                                     a.c.detectors).where(
+                a.c.subject == f"group:{group}", *live)):
+            if detector_id in (orjson.loads(r.detectors) if r.detectors else []):
+                shared.append((r, f"group:{group}"))
+    rows = [(r, None) for r in own] + shared
+    rows.sort(key=lambda x: (x[0].start_s, x[0].alert_id))
+    return [{"id": r.alert_id, "kind": r.kind, "start": format_utc(r.start_s),
+             "suppressed": bool(r.suppressed), "subject": subject or detector_id}
+            for r, subject in rows]

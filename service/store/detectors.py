@@ -3,15 +3,18 @@
 from __future__ import annotations
 
 import time
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
 from typing import Any
 
 from pydantic import ValidationError
-from sqlalchemy import Connection, Engine, func, select
+from sqlalchemy import Connection, Engine, func, select, update
 from sqlalchemy.exc import DataError, IntegrityError
 
-from service.domain import control_character_error, detector_id_error
-from service.errors import BadRequest, NotFound, ValidationFailed
+from service.domain import SERVICE_STATES, control_character_error, detector_id_error
+from service.errors import BadRequest, Forbidden, NotFound, ValidationFailed
 from service.store import tables as models
+from service.store.alerts import next_seqs
 from service.store.engine import read_transaction, write_transaction
 from service.store.records import DetectorCreate, FeatureIn
 from service.timefmt import format_utc
@@ -59,7 +62,7 @@ def upsert_detector(conn: Connection, detector_id: str, spec: DetectorCreate) ->
     return False
 
 
-def public(row: Any) -> dict[str, Any]:
+def public(row: Any, *, now: float | None = None) -> dict[str, Any]:
     m = row._mapping
     location = None
     if m["lon"] is not None and m["lat"] is not None:
@@ -70,6 +73,7 @@ def public(row: Any) -> dict[str, Any]:
         "road_class": m["road_class"], "holiday_calendar": m["holiday_calendar"],
         "location": location, "capacity_per_lane_h": m["capacity_per_lane_h"],
         "created": format_utc(m["created_s"]), "updated": format_utc(m["updated_s"]),
+        "service": service_public(m, now=time.time() if now is None else now),
     }
 
 
@@ -174,3 +178,150 @@ def _pydantic_message(exc: ValidationError) -> str:
         where = ".".join(str(p) for p in err["loc"])
         parts.append(f"{where}: {err['msg']}" if where else err["msg"])
     return "; ".join(parts)
+
+
+# ---------------------------------------------------------------------------- service states
+
+RETURNED_BY_ITSELF = "returned to service by itself at the end of its out-of-service period"
+
+
+def service_public(m: Any, *, now: float) -> dict[str, Any]:
+    """A detector row's service state as shown: an out-of-service period whose ``until`` has
+    passed shows as in service even before the sweep (``return_due``) has recorded it."""
+    state, until = m["service_state"], m["service_until_s"]
+    if state == "out_of_service" and until is not None and until <= now:
+        return {"state": "in_service", "reason": RETURNED_BY_ITSELF, "by": None,
+                "since": format_utc(until), "until": None}
+    since = m["service_since_s"]
+    return {"state": state, "reason": m["service_reason"], "by": m["service_by"],
+            "since": format_utc(since) if since is not None else None,
+            "until": format_utc(until) if until is not None else None}
+
+
+@dataclass(frozen=True)
+class MemberState:
+    """What alerting needs of a detector's service state and scoring progress."""
+
+    detector_id: str
+    state: str  # as in force at the time asked (an expired out-of-service period is in_service)
+    clock_s: int | None  # the scoring clock when the state was set (retirement's cut-off)
+    has_baseline: bool
+    scored_through_s: int | None
+
+
+def member_states(conn: Connection, detector_ids: Sequence[str], *, now: float
+                  ) -> dict[str, MemberState]:
+    """Service state in force at ``now`` (wall clock) and scoring progress of each detector."""
+    d, s = models.detectors, models.detector_state
+    out: dict[str, MemberState] = {}
+    ids = list(detector_ids)
+    for i in range(0, len(ids), 500):
+        rows = conn.execute(select(
+            d.c.detector_id, d.c.service_state, d.c.service_until_s, d.c.service_clock_s,
+            s.c.baseline_id, s.c.scored_through_s)
+            .select_from(d.outerjoin(s, s.c.detector_id == d.c.detector_id))
+            .where(d.c.detector_id.in_(ids[i:i + 500])))
+        for r in rows:
+            state = r.service_state
+            if state == "out_of_service" and r.service_until_s is not None \
+                    and r.service_until_s <= now:
+                state = "in_service"
+            out[r.detector_id] = MemberState(r.detector_id, state, r.service_clock_s,
+                                             r.baseline_id is not None, r.scored_through_s)
+    return out
+
+
+def _unsuppress_open(conn: Connection, detector_id: str, *, now: float) -> int:
+    """Raise the detector's open suppressed alerts (each with a new seq); how many."""
+    a = models.alerts
+    ids = [r[0] for r in conn.execute(select(a.c.alert_id).where(
+        a.c.detector_id == detector_id, a.c.suppressed == 1, a.c.status == "open",
+        a.c.withdrawn == 0).order_by(a.c.start_s))]
+    if not ids:
+        return 0
+    for alert_id, seq in zip(ids, next_seqs(conn, len(ids)), strict=True):
+        conn.execute(update(a).where(a.c.alert_id == alert_id).values(
+            suppressed=0, seq=seq, updated_s=now))
+    return len(ids)
+
+
+def set_service_state(engine: Engine, detector_id: str, *, state: str, reason: str | None,
+                      until_s: float | None, by: str, may_retire: bool,
+                      clock: Callable[[Connection], float], now: float | None = None
+                      ) -> dict[str, Any]:
+    """Put a detector in or out of service, or retire it; the detector afterwards.
+
+    Out of service: new alerts are kept as suppressed until it returns (at ``until_s``, wall
+    clock, or by a later change). Returning to service raises its suppressed alerts that are
+    still open. Retiring, or changing a retired detector, needs ``may_retire`` (admin).
+    Retiring marks the detector for rescoring from ``clock(conn)`` (the scoring clock), so
+    that missing data from then on stops being evidence."""
+    now = time.time() if now is None else now
+    if state not in SERVICE_STATES:
+        raise ValidationFailed(f"unknown service state {state!r}; states are "
+                               f"{', '.join(SERVICE_STATES)}")
+    if until_s is not None and state != "out_of_service":
+        raise ValidationFailed(f"until applies to out_of_service only, not to {state}; "
+                               "leave it out")
+    if until_s is not None and until_s <= now:
+        raise ValidationFailed(f"until {format_utc(until_s)} is not in the future (now "
+                               f"{format_utc(now)}); give a later time, or no until to keep "
+                               "the detector out of service until changed")
+    if state in ("out_of_service", "retired") and not (reason and reason.strip()):
+        raise ValidationFailed(f"a reason is required to set {state} (what is wrong, or the "
+                               "work order)")
+    d = models.detectors
+    with write_transaction(engine) as conn:
+        row = conn.execute(select(d.c.service_state).where(
+            d.c.detector_id == detector_id)).first()
+        if row is None:
+            raise NotFound(f"unknown detector {detector_id!r}")
+        if not may_retire and "retired" in (state, row.service_state):
+            raise Forbidden("only an admin key may retire a detector or return a retired one "
+                            "to service; operate keys may set in_service and out_of_service")
+        clock_s = clock(conn)
+        conn.execute(update(d).where(d.c.detector_id == detector_id).values(
+            service_state=state, service_reason=reason, service_by=by, service_since_s=now,
+            service_until_s=until_s, service_clock_s=int(clock_s), updated_s=now))
+        if state == "in_service":
+            _unsuppress_open(conn, detector_id, now=now)
+        if state == "retired" or row.service_state == "retired":
+            _rescore_from(conn, detector_id, int(clock_s), now=now)
+        full = conn.execute(select(d).where(d.c.detector_id == detector_id)).one()
+    return public(full, now=now)
+
+
+def _rescore_from(conn: Connection, detector_id: str, from_s: int, *, now: float) -> None:
+    """Mark a detector with a baseline for rescoring from ``from_s`` (as ingest does)."""
+    s = models.detector_state
+    dirty = conn.execute(select(s.c.dirty_from_s).where(s.c.detector_id == detector_id)).first()
+    if dirty is None:  # no baseline yet: nothing scored, nothing to redo
+        return
+    start = from_s if dirty.dirty_from_s is None else min(int(dirty.dirty_from_s), from_s)
+    conn.execute(update(s).where(s.c.detector_id == detector_id).values(
+        dirty_from_s=start, pending_since_s=func.coalesce(s.c.pending_since_s, now)))
+
+
+def return_due(engine: Engine, *, now: float | None = None) -> list[str]:
+    """Return to service every detector whose out-of-service period has ended (``until``
+    passed, wall clock), raising its still-open suppressed alerts; the ids returned.
+
+    Cheap when nothing is due (one index look-up), so every scoring pass may call it."""
+    now = time.time() if now is None else now
+    d = models.detectors
+    due = (select(d.c.detector_id).where(d.c.service_until_s <= now,
+                                         d.c.service_state == "out_of_service")
+           .order_by(d.c.detector_id))
+    with read_transaction(engine) as conn:
+        if conn.execute(due.limit(1)).first() is None:
+            return []
+    with write_transaction(engine) as conn:
+        ids = [r[0] for r in conn.execute(due)]
+        for detector_id in ids:
+            until = conn.execute(select(d.c.service_until_s).where(
+                d.c.detector_id == detector_id)).scalar_one()
+            conn.execute(update(d).where(d.c.detector_id == detector_id).values(
+                service_state="in_service", service_reason=RETURNED_BY_ITSELF, service_by=None,
+                service_since_s=until, service_until_s=None, updated_s=now))
+            _unsuppress_open(conn, detector_id, now=now)
+    return ids

@@ -21,7 +21,14 @@ from sqlalchemy import (
     text,
 )
 
-from service.domain import INTERVAL_CHECK_SQL, ROAD_CLASSES, ROLES, sql_in
+from service.domain import (
+    HISTORY_ACTIONS,
+    INTERVAL_CHECK_SQL,
+    ROAD_CLASSES,
+    ROLES,
+    SERVICE_STATES,
+    sql_in,
+)
 
 NAMING = {
     "ix": "ix_%(table_name)s_%(column_0_N_name)s",
@@ -55,6 +62,15 @@ detectors = Table(
     # The interval rule of service.domain (migration 0004 put it in place of a plain range).
     CheckConstraint(INTERVAL_CHECK_SQL, name="interval_allowed"),
     CheckConstraint(sql_in("road_class", ROAD_CLASSES), name="road_class_known"),
+    # Service state (migration 0007): who set it, why, when (wall clock, and the scoring clock
+    # that retirement cuts missing-data evidence at) and, out of service, until when.
+    Column("service_state", String(16), nullable=False, server_default="in_service"),
+    Column("service_reason", Text, nullable=True),
+    Column("service_by", String(100), nullable=True),
+    Column("service_since_s", Float, nullable=True),
+    Column("service_until_s", Float, nullable=True, index=True),
+    Column("service_clock_s", BigInteger, nullable=True),
+    CheckConstraint(sql_in("service_state", SERVICE_STATES), name="service_state_known"),
 )
 
 counts = Table(
@@ -184,6 +200,9 @@ alerts = Table(
     Column("ack_note", Text, nullable=True),
     Column("created_s", Float, nullable=False),
     Column("updated_s", Float, nullable=False),
+    # Raised while the detector was out of service (migration 0007): hidden unless asked for.
+    Column("suppressed", Integer, nullable=False, server_default="0"),
+    Index("ix_alerts_start_s", "start_s"),
     Index("ix_alerts_subject_kind_start_s", "subject", "kind", "start_s", unique=True),
     Index("ix_alerts_detector_id_end_s", "detector_id", "end_s"),
     Index("ix_alerts_group_id", "group_id"),
@@ -194,4 +213,40 @@ counters = Table(
     metadata,
     Column("name", String(40), primary_key=True),
     Column("value", BigInteger, nullable=False),
+)
+
+# Acknowledgements, their withdrawals and notes on an alert: appended, never changed
+# (migration 0007). ``actor`` is the person or desk named in the request, ``key_name`` the
+# API key that made it.
+alert_history = Table(
+    "alert_history",
+    metadata,
+    Column("entry_id", Integer, primary_key=True, autoincrement=True),
+    Column("alert_id", Integer, ForeignKey("alerts.alert_id", ondelete="CASCADE"),
+           nullable=False),
+    Column("action", String(16), nullable=False),
+    Column("actor", String(100), nullable=False),
+    Column("key_name", String(100), nullable=True),
+    Column("at_s", Float, nullable=False),
+    Column("note", Text, nullable=True),
+    CheckConstraint(sql_in("action", HISTORY_ACTIONS), name="action_known"),
+    Index("ix_alert_history_alert_id_entry_id", "alert_id", "entry_id"),
+)
+
+# A stored count replaced by an admin (migration 0007): the audit trail of corrections.
+count_corrections = Table(
+    "count_corrections",
+    metadata,
+    Column("correction_id", Integer, primary_key=True, autoincrement=True),
+    Column("detector_id", String(64), ForeignKey("detectors.detector_id", ondelete="CASCADE"),
+           nullable=False),
+    Column("start_s", BigInteger, nullable=False),
+    Column("old_count", Integer, nullable=False),
+    Column("new_count", Integer, nullable=False),
+    Column("reason", Text, nullable=False),
+    Column("actor", String(100), nullable=False),  # the API key's name
+    Column("corrected_s", Float, nullable=False),
+    Column("conflict_id", Integer, nullable=True),  # the conflict whose offered value was taken
+    CheckConstraint("new_count >= 0", name="new_count_not_negative"),
+    Index("ix_count_corrections_detector_id_correction_id", "detector_id", "correction_id"),
 )

@@ -174,8 +174,12 @@ def cmd_plot(args: argparse.Namespace, settings: Settings) -> int:
         r = c.get("/v1/alerts", params={"detector_id": args.detector, "limit": 1000})
         r.raise_for_status()
         alerts = r.json()
-    out = plot_day(doc, counts, [a for a in alerts["data"] if not a["withdrawn"]],
-                   title=f"{args.detector} on {args.date}", out=args.out)
+        r = c.get(f"/v1/detectors/{args.detector}")
+        r.raise_for_status()
+        det = r.json()
+    name = det.get("label") or args.detector
+    out = plot_day(doc, counts, alerts["data"], title=f"{name} ({args.detector}), {args.date}",
+                   out=args.out, timezone=det.get("timezone"))
     print(out)
     return 0
 

@@ -153,7 +153,7 @@ def print_alerts(alerts: list[dict[str, Any]], intervals: dict[str, int]) -> Non
         lo = datetime.fromisoformat(a["start"].replace("Z", "+00:00")).astimezone(zone)
         hi = datetime.fromisoformat(a["end"].replace("Z", "+00:00")).astimezone(zone)
         rows.append([a["id"], a["detector_id"] or f"[{a['group']}]", a["kind"], a["cause"],
-                     a["status"], lo.strftime("%a %m-%d %H:%M"),
+                     a["status"], lo.strftime("%a %d %b %H:%M"),
                      f"{(hi - lo).total_seconds() / 3600:.1f}", a["score"],
                      (a["summary"][:70] + "…") if len(a["summary"]) > 71 else a["summary"]])
     print(f"\nAlerts an operator would see ({len(alerts)}):")
@@ -176,9 +176,11 @@ def demo_plot(base: str, key: str, truth: dict[str, Any], alerts: list[dict[str,
         doc = c.get(f"/v1/detectors/{det}/baseline", params={"date": day}).json()
         lo, hi = doc["data"][0]["start"], doc["data"][-1]["start"]
         counts = c.get("/v1/counts", params={"detector_id": det, "from": lo, "until": hi}).json()
+        info = c.get(f"/v1/detectors/{det}").json()
     mine = [a for a in alerts if a["detector_id"] == det]
-    return plot_day(doc, counts["data"], mine, title=f"{det} on {day} (demo: {target['id']})",
-                    out=folder / f"{det}_{day}.png")
+    name = info.get("label") or det
+    return plot_day(doc, counts["data"], mine, title=f"{name} ({det}), {day} (demo {target['id']})",
+                    out=folder / f"{det}_{day}.png", timezone=info.get("timezone"))
 
 
 def main_demo(feed: str | None = None, folder: str | None = None, workers: int = 2) -> int:

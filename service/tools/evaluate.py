@@ -185,4 +185,4 @@ def print_report(report: dict[str, Any], *, out=None) -> None:  # type: ignore[n
 
 
 def _short(ts: str) -> str:
-    return datetime.fromisoformat(ts).strftime("%a %m-%d %H:%M")
+    return datetime.fromisoformat(ts).strftime("%a %d %b %H:%M")

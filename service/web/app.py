@@ -24,12 +24,13 @@ from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from service import __version__, logs
 from service.config import Settings, get_settings
+from service.domain import CONTROL_CHARACTERS, DETECTOR_ID_PATTERN, detector_id_error
 from service.errors import Forbidden, TallywardError, Unauthorized, Unavailable
 from service.pipeline.score import Scorer, mark_dirty
 from service.store.engine import make_engine
 from service.web import docs, metrics, openapi
 from service.web.deps import PRINCIPAL_SCOPE_KEY, check_permission, identify
-from service.web.routes import alerts, baselines, counts, detectors, health
+from service.web.routes import alerts, baselines, corrections, counts, detectors, health
 
 log = logging.getLogger("tallyward.http")
 WRITE_METHODS = frozenset({"POST", "PUT", "PATCH"})
@@ -280,7 +281,10 @@ def create_app(settings: Settings | None = None, *, engine: Engine | None = None
         problems = []
         for err in exc.errors():
             where = ".".join(str(p) for p in err.get("loc", ()) if p != "body")
-            problems.append({"field": where, "message": err.get("msg", "invalid")})
+            message = err.get("msg", "invalid")
+            if (err.get("ctx") or {}).get("pattern") == DETECTOR_ID_PATTERN:
+                message = detector_id_error(str(err.get("input", ""))) or message
+            problems.append({"field": where, "message": message})
         text = "; ".join(f"{p['field']}: {p['message']}" if p["field"] else p["message"]
                          for p in problems)
         return _json(422, {"error": "validation_failed", "message": text, "detail": problems})
@@ -288,8 +292,18 @@ def create_app(settings: Settings | None = None, *, engine: Engine | None = None
     @app.exception_handler(StarletteHTTPException)
     async def _http_error(request: Request, exc: StarletteHTTPException) -> Response:
         code = {404: "not_found", 405: "method_not_allowed"}.get(exc.status_code, "http_error")
-        return _json(exc.status_code, {"error": code, "message": str(exc.detail)},
-                     openapi.error_headers(request, exc))
+        message = str(exc.detail)
+        where = f"{request.method} {CONTROL_CHARACTERS.sub('?', request.url.path[:200])}"
+        if exc.status_code == 404:
+            message = (f"no such route: {where}; the routes are listed at /docs "
+                       "(OpenAPI document: /openapi.json)")
+        headers = openapi.error_headers(request, exc)
+        if exc.status_code == 405:
+            allowed = next((v for k, v in (headers or {}).items() if k.lower() == "allow"), None)
+            methods = f" (this path takes {allowed})" if allowed else ""
+            message = (f"method not allowed: {where}{methods}; the routes and their methods "
+                       "are listed at /docs")
+        return _json(exc.status_code, {"error": code, "message": message}, headers)
 
     @app.exception_handler(OperationalError)
     async def _db_down(_: Request, exc: OperationalError) -> Response:
@@ -298,6 +312,7 @@ def create_app(settings: Settings | None = None, *, engine: Engine | None = None
     app.include_router(health.router)
     app.include_router(detectors.import_router)
     app.include_router(detectors.router)
+    app.include_router(corrections.router)
     app.include_router(counts.router)
     app.include_router(baselines.router)
     app.include_router(alerts.router)

@@ -8,6 +8,7 @@ from fastapi import Depends, Request
 from sqlalchemy import Engine
 
 from service.config import Settings
+from service.domain import PERMISSION_ACTIONS, roles_granting
 from service.errors import Forbidden, Unauthorized
 from service.store.keys import Principal, authenticate
 
@@ -61,8 +62,10 @@ def identify(settings: Settings, engine: Engine, *, authorization: str | None,
 
 def check_permission(principal: Principal, permission: str) -> None:
     if not principal.may(permission):
-        raise Forbidden(f"key {principal.name!r} has role {principal.role!r}, which may not "
-                        f"{permission}; this needs a key with a role that grants {permission!r}")
+        action = PERMISSION_ACTIONS.get(permission, permission)
+        allowed = " or ".join(roles_granting(permission))
+        raise Forbidden(f"key {principal.name!r} has the {principal.role!r} role; to {action} "
+                        f"use a key with the {allowed} role")
 
 
 def _principal(request: Request, permission: str) -> Principal:

@@ -55,7 +55,7 @@ class Error(BaseModel):
 
 
 class CountRejection(BaseModel):
-    """An item that can never be stored as sent: do not resend it."""
+    """An item that can never be stored as sent: fix it and send only the fixed items."""
 
     index: int = Field(description="Position of the item in the batch (0-based; CSV: data rows).")
     detector_id: str | None
@@ -203,8 +203,9 @@ EXTRA: dict[tuple[str, str], dict[int | str, dict[str, Any]]] = {
                              "(`conflicts`; GET /v1/counts/conflicts).",
               "content": _content({"$ref": REF + "CountBatchResult"})},
         415: error("The Content-Type is neither application/json nor text/csv."),
-        422: {"description": "Some items can never be stored as sent (listed in `errors`; the "
-                             "valid ones were stored, do not resend them), or the batch is empty.",
+        422: {"description": "Some items can never be stored as sent (listed in `errors`): all "
+                             "valid items were stored; fix the rejected ones and send only "
+                             "those. Or the batch is empty.",
               "content": _content({"anyOf": [{"$ref": REF + "CountBatchResult"},
                                              {"$ref": REF + "Error"}]})},
         503: error("The database is busy or unreachable; nothing was stored: resend the same "
@@ -240,6 +241,13 @@ EXTRA: dict[tuple[str, str], dict[int | str, dict[str, Any]]] = {
     ("GET", "/v1/alerts/{alert_id}"): {404: _not_found("unknown alert")},
     ("POST", "/v1/alerts/{alert_id}/acknowledge"): {404: _not_found("unknown alert")},
     ("GET", "/v1/detectors/{detector_id}/health"): {404: _not_found("unknown detector")},
+    # Service states, alert history, count corrections (migration 0007).
+    ("PATCH", "/v1/detectors/{detector_id}"): {404: _not_found("unknown detector")},
+    ("POST", "/v1/alerts/{alert_id}/unacknowledge"): {404: _not_found("unknown alert")},
+    ("POST", "/v1/alerts/{alert_id}/notes"): {404: _not_found("unknown alert")},
+    ("POST", "/v1/counts/corrections"): {
+        404: _not_found("unknown detector or conflict, or no count stored at that interval")},
+    ("GET", "/v1/counts/corrections"): {404: _not_found("unknown `detector_id`")},
     ("GET", "/v1/health"): {
         503: {"description": "The database is unreachable or its schema is not at the "
                              "migration head.",
@@ -340,8 +348,8 @@ def publish(schema: dict[str, Any], permissions: dict[tuple[str, str], str | Non
     components["securitySchemes"] = {SCHEME: {
         "type": "http", "scheme": "bearer",
         "description": "An API key made with `tallyward keys create --role ROLE`; roles: ingest "
-                       "(POST /v1/counts), read (every GET), operate (read and acknowledge "
-                       "alerts), admin (everything)."}}
+                       "(POST /v1/counts), read (every GET), operate (read, acknowledge "
+                       "alerts, notes, out of / back in service), admin (everything)."}}
 
 
 def error_headers(request: Request, exc: StarletteHTTPException) -> dict[str, str] | None:

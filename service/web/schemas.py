@@ -15,17 +15,32 @@ from service.domain import (
     ALERT_STATUSES,
     CAUSES,
     DAY_TYPES,
+    HISTORY_ACTIONS,
+    INT32_MAX,
     KINDS,
+    SERVICE_STATES,
     plain_text,
     prose,
 )
 from service.store.records import DetectorCreate
 
 
+class ServiceStatePublic(BaseModel):
+    state: Literal[SERVICE_STATES] = Field(  # type: ignore[valid-type]
+        description="'in_service' (default), 'out_of_service' (alerts kept as suppressed), "
+        "'retired' (not expected to report: no missing-data alerts).")
+    reason: str | None = Field(description="Why, as given when the state was set.")
+    by: str | None = Field(description="Name of the API key that set the state.")
+    since: str | None = Field(description="When the state was set (RFC 3339, UTC).")
+    until: str | None = Field(description="Out of service: when it returns to service by "
+                                          "itself; null when set until changed.")
+
+
 class DetectorPublic(DetectorCreate):
     detector_id: str
     created: str
     updated: str
+    service: ServiceStatePublic | None = None
 
 
 class DetectorsPublic(BaseModel):
@@ -186,6 +201,8 @@ class AlertPublic(BaseModel):
     summary: str
     detectors: list[str] | None = Field(description="Members, for a group alert.")
     acknowledged: AcknowledgementPublic | None
+    suppressed: bool = Field(False, description="Raised while the detector was out of "
+                             "service: listed only with suppressed=true.")
 
 
 class AlertsPage(BaseModel):
@@ -207,6 +224,10 @@ class OpenAlertRef(BaseModel):
     id: int
     kind: Literal[KINDS]  # type: ignore[valid-type]
     start: str
+    subject: str = Field(description="The detector, or 'group:<id>' for a group outage that "
+                                     "names it (its own share of that outage is not listed).")
+    suppressed: bool = Field(description="Raised while out of service (listed by GET "
+                                         "/v1/alerts only with suppressed=true).")
 
 
 class DetectorHealth(BaseModel):
@@ -214,4 +235,81 @@ class DetectorHealth(BaseModel):
     clock: Literal["wall", "data"]
     last_24h: HealthWindow
     last_7d: HealthWindow
-    open_alerts: list[OpenAlertRef]
+    open_alerts: list[OpenAlertRef] = Field(description="Open alerts about the detector, by "
+                                            "the ids GET /v1/alerts lists them under.")
+    service: ServiceStatePublic
+
+
+# ---------------------------------------------------------------------------- service states
+
+
+class ServiceChange(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+    state: Literal[SERVICE_STATES] = Field(  # type: ignore[valid-type]
+        description="'in_service', 'out_of_service' (operate or admin) or 'retired' (admin).")
+    reason: Annotated[str | None, Field(max_length=500), AfterValidator(prose)] = Field(
+        None, description="Why (required for out_of_service and retired): the fault, the work "
+                          "order.")
+    until: Annotated[str | None, Field(max_length=64), AfterValidator(plain_text)] = Field(
+        None, description="out_of_service only: RFC 3339 time (wall clock, in the future) at "
+                          "which the detector returns to service by itself.")
+
+
+# ---------------------------------------------------------------------------- alert history
+
+
+class HistoryEntry(BaseModel):
+    action: Literal[HISTORY_ACTIONS]  # type: ignore[valid-type]
+    by: str = Field(description="Who, as named in the request.")
+    at: str
+    note: str | None
+    key: str | None = Field(description="Name of the API key that made the entry.")
+
+
+class AlertDetail(AlertPublic):
+    history: list[HistoryEntry] = Field(description="Acknowledgements, their withdrawals and "
+                                                    "notes, oldest first; never changed.")
+
+
+class AlertNote(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+    by: Annotated[str, Field(min_length=1, max_length=100), AfterValidator(plain_text)] = Field(
+        description="Who writes the note (name or desk); no control characters.")
+    note: Annotated[str, Field(min_length=1, max_length=2000), AfterValidator(prose)] = Field(
+        description="Free text; may hold tabs and line breaks, no other control characters.")
+
+
+# ---------------------------------------------------------------------------- corrections
+
+
+class CorrectionRequest(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+    detector_id: Annotated[str | None, Field(max_length=64), AfterValidator(plain_text)] = Field(
+        None, description="The detector (taken from the conflict when conflict_id is given).")
+    start: Annotated[str | None, Field(max_length=64), AfterValidator(plain_text)] = Field(
+        None, description="RFC 3339 start of the stored interval (taken from the conflict when "
+                          "conflict_id is given).")
+    count: int | None = Field(None, ge=0, le=1_000_000, description="The new count, vehicles "
+                              "(0..1,000,000); default with conflict_id: the conflict's offered "
+                              "value.")
+    conflict_id: int | None = Field(None, ge=1, le=INT32_MAX, description="Accept this recorded "
+                                    "conflict's offered value (or the count given).")
+    reason: Annotated[str, Field(min_length=1, max_length=1000), AfterValidator(prose)] = Field(
+        description="Why the stored count is replaced.")
+
+
+class CorrectionPublic(BaseModel):
+    id: int
+    detector_id: str
+    start: str
+    old: int = Field(description="The count stored before the correction.")
+    new: int = Field(description="The count stored by the correction.")
+    reason: str
+    by: str = Field(description="Name of the API key that made the correction.")
+    at: str
+    conflict_id: int | None
+
+
+class CorrectionsPage(BaseModel):
+    data: list[CorrectionPublic]
+    next_after: int = Field(description="Ask for corrections after this id next.")

@@ -1,4 +1,6 @@
-"""Alert episodes from flagged intervals, their likely cause and summary: pure, no database."""
+"""Alert episodes from flagged intervals and their likely cause: pure, no database.
+
+The summary sentences have their own table-driven specification in test_sentences.py."""
 
 from __future__ import annotations
 
@@ -12,7 +14,6 @@ from service.stats.episodes import (
     cause_for,
     communications_runs,
     episodes_from_rows,
-    summary_sentence,
 )
 
 STEP = 300  # five-minute intervals
@@ -133,30 +134,3 @@ def test_communications_runs_need_most_of_the_group_missing_together() -> None:
     assert [(r[0], r[1], r[2]) for r in runs] == [(T0, T0 + STEP, ["a", "b"]),
                                                   (T0 + 6 * STEP, T0 + 6 * STEP, ["a", "b"])]
     assert runs[0][3] == 40.0 and runs[0][4] == -5.0
-
-
-def test_summary_names_a_dead_detector_fault() -> None:
-    """A zero_counts episode blamed on the detector reads as a dead loop with the local time."""
-    ep = Episode(subject=DET, detector_id=DET, kind="zero_counts", start_s=T0, end_s=T0 + 11 * STEP,
-                 closed_s=None, n_intervals=12, observed=0.0, expected=240.0, log_p=-30.0)
-    text = summary_sentence(ep, "detector", interval_s=STEP, timezone="UTC", label="Main St NB")
-    assert text == ("Main St NB: counted 0 vehicles for 1 h (Thu 00:00–01:00 local) where about "
-                    "240 were expected — likely a detector fault (dead loop or card).")
-
-
-def test_summary_of_gappy_missing_data_says_how_many_intervals_arrived() -> None:
-    """A missing-data episode with reported intervals inside says what was reported."""
-    ep = Episode(subject=DET, detector_id=DET, kind="no_reports", start_s=T0, end_s=T0 + 5 * STEP,
-                 closed_s=T0 + 6 * STEP, n_intervals=2, observed=None, expected=20.0, log_p=-8.0)
-    text = summary_sentence(ep, "communications", interval_s=STEP, timezone="UTC")
-    assert text.startswith(f"{DET}: reported 4 of 6 intervals over 30 min")
-
-
-def test_summary_of_group_outage_counts_its_members() -> None:
-    """A group's missing-data episode names the group and how many detectors went silent."""
-    ep = Episode(subject="group:g1", detector_id=None, kind="no_reports", start_s=T0,
-                 end_s=T0 + 3 * STEP, closed_s=None, n_intervals=4, observed=None, expected=0.0,
-                 log_p=-8.0)
-    text = summary_sentence(ep, "communications", interval_s=STEP, timezone="UTC", group="g1",
-                            members=["a", "b", "c"])
-    assert text.startswith("No reports from 3 detectors of g1 for 20 min")

@@ -122,6 +122,8 @@ def test_openapi_documents_the_health_scoring_fields(client) -> None:
 
 
 def test_unknown_route_is_json_404(client) -> None:
-    """Unknown paths answer JSON, not HTML."""
+    """Unknown paths answer JSON, not HTML, naming the path and pointing to /docs."""
     r = client.get("/v1/nothing")
     assert r.status_code == 404 and r.json()["error"] == "not_found"
+    assert r.json()["message"] == ("no such route: GET /v1/nothing; the routes are listed at "
+                                   "/docs (OpenAPI document: /openapi.json)")

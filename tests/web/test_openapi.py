@@ -252,5 +252,8 @@ def test_405_allow_lists_every_method_of_the_path(live_server, keys) -> None:
     """A path served by several routes answers 405 with all of their methods in Allow."""
     r = httpx.delete(live_server.url + "/v1/detectors/D1", headers=auth(keys["admin"]), timeout=30)
     assert r.status_code == 405
-    assert r.headers["allow"] == "GET, PUT"
+    assert r.headers["allow"] == "GET, PATCH, PUT"
     assert r.json()["error"] == "method_not_allowed"
+    assert r.json()["message"] == ("method not allowed: DELETE /v1/detectors/D1 (this path "
+                                   "takes GET, PUT); the routes and their methods are listed "
+                                   "at /docs")

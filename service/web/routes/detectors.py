@@ -10,17 +10,20 @@ from fastapi.concurrency import run_in_threadpool
 from pydantic import AfterValidator
 
 from service.domain import DETECTOR_ID_PATTERN, plain_text
-from service.errors import BadRequest
+from service.errors import BadRequest, ValidationFailed
 from service.pipeline import ingest
 from service.store import detectors as registry
 from service.store.engine import write_transaction
-from service.web.deps import AdminDep, EngineDep, ReadDep
+from service.store.scoring import clock_now
+from service.timefmt import parse_rfc3339
+from service.web.deps import AdminDep, EngineDep, OperateDep, ReadDep, SettingsDep
 from service.web.openapi import IMPORT_BODY
 from service.web.schemas import (
     DetectorCreate,
     DetectorImportResult,
     DetectorPublic,
     DetectorsPublic,
+    ServiceChange,
 )
 
 router = APIRouter(prefix="/v1/detectors", tags=["detectors"])
@@ -35,6 +38,34 @@ def put_detector(detector_id: DetectorId, spec: DetectorCreate, engine: EngineDe
         created = registry.upsert_detector(conn, detector_id, spec)
     response.status_code = 201 if created else 200
     return registry.get_detector(engine, detector_id)
+
+
+SERVICE_DOC = """Put a detector out of service (with a reason and optionally `until`), back in
+service, or retire it.
+
+Out of service: its counts are still stored and scored, but alerts it raises are kept as
+suppressed (listed by `GET /v1/alerts?suppressed=true`); at `until` (wall clock) it returns to
+service by itself, and its suppressed alerts still open are raised then. Retired: no longer
+expected to report, so missing data raises nothing; kept for history. Operate and admin keys
+may set `in_service` and `out_of_service`; only admin keys may retire a detector or change a
+retired one. 422: unknown state, `until` not in the future or given with another state,
+missing reason."""
+
+
+@router.patch("/{detector_id}", response_model=DetectorPublic, description=SERVICE_DOC,
+              summary="Set a detector's service state")
+def patch_detector(detector_id: DetectorId, change: ServiceChange, engine: EngineDep,
+                   settings: SettingsDep, principal: OperateDep) -> dict[str, Any]:
+    until_s = None
+    if change.until is not None:
+        try:
+            until_s = parse_rfc3339(change.until)
+        except ValueError as exc:
+            raise ValidationFailed(f"until: {str(exc).replace('start ', '', 1)}") from None
+    return registry.set_service_state(
+        engine, detector_id, state=change.state, reason=change.reason, until_s=until_s,
+        by=principal.name, may_retire=principal.may("admin"),
+        clock=lambda conn: clock_now(conn, settings))
 
 
 @router.get("", response_model=DetectorsPublic)
