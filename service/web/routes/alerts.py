@@ -11,7 +11,10 @@ from pydantic import AfterValidator
 from service.domain import DETECTOR_ID_PATTERN, INT32_MAX, INT64_MAX, KINDS, plain_text
 from service.errors import ValidationFailed
 from service.store import alerts as alert_store
+from service.store.engine import read_transaction
+from service.store.jobs import fit_state
 from service.store.scoring import clock_now
+from service.timefmt import format_utc
 from service.web.deps import EngineDep, OperateDep, ReadDep, SettingsDep
 from service.web.schemas import Acknowledgement, AlertPublic, AlertsPage, DetectorHealth
 
@@ -70,5 +73,9 @@ def detector_health(detector_id: Annotated[str, Path(pattern=DETECTOR_ID_PATTERN
     """Completeness, open alerts and share of intervals flagged over the last 24 h and 7 days."""
     figures = alert_store.detector_health(engine, detector_id,
                                           clock=lambda conn: clock_now(conn, settings))
+    with read_transaction(engine) as conn:
+        fit = fit_state(conn, detector_id, first_fit_days=settings.first_fit_days)
+    next_refit = fit.pop("next_refit_s")
+    fit["next_refit"] = format_utc(next_refit) if next_refit is not None else None
     return {"detector_id": detector_id, "clock": settings.clock,
-            **{k: v for k, v in figures.items() if k != "detector_id"}}
+            **{k: v for k, v in figures.items() if k != "detector_id"}, "baseline": fit}
