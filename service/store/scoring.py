@@ -21,7 +21,7 @@ from typing import Any
 
 import numpy as np
 import orjson
-from sqlalchemy import Connection, Engine, case, delete, func, or_, select, update
+from sqlalchemy import Connection, Engine, and_, case, delete, func, or_, select, update
 
 from service.config import Settings
 from service.domain import MIN_INTERVAL_S
@@ -92,8 +92,11 @@ def claim(engine: Engine, settings: Settings, *, limit: int = 64) -> tuple[list[
     now = time.time()
 
     def due_query(clock: float):
-        due = or_(s.c.dirty_from_s.is_not(None), s.c.claimed_from_s.is_not(None),
-                  s.c.scored_through_s.is_(None),
+        # Never scored: due once an interval after score_from_s has ended (before that a
+        # pass finds nothing to score, and the claim would come back at once, forever).
+        never = and_(s.c.scored_through_s.is_(None),
+                     s.c.score_from_s + d.c.interval_s + settings.missing_grace_s <= clock)
+        due = or_(s.c.dirty_from_s.is_not(None), s.c.claimed_from_s.is_not(None), never,
                   s.c.scored_through_s + d.c.interval_s + settings.missing_grace_s <= clock)
         return (select(s.c.detector_id, s.c.baseline_id, s.c.score_from_s, s.c.dirty_from_s,
                        s.c.claimed_from_s, s.c.scored_through_s, s.c.warm_state)
