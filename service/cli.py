@@ -251,7 +251,7 @@ def _start_line(command: str, settings: Settings, *, workers: int, **more: Any) 
 def cmd_worker(args: argparse.Namespace, settings: Settings) -> int:
     import signal
 
-    from service.pipeline.worker import Worker, default_tasks, refits_enabled
+    from service.pipeline.worker import Worker, default_tasks, one_blas_thread, refits_enabled
     from service.store import migrations as migrate
 
     if not _database_reachable(settings):
@@ -263,6 +263,7 @@ def cmd_worker(args: argparse.Namespace, settings: Settings) -> int:
               f"this code needs {head}; run `tallyward migrate` (or `tallyward serve`) first",
               file=sys.stderr)
         return 1
+    one_blas_thread()  # the cause of slow fits outside `tallyward fit` (see the function)
     refits = refits_enabled(settings, in_worker=True)
     _start_line("worker", settings, workers=1, refits="nightly" if refits else "off",
                 refit_hour=settings.refit_hour, first_fit_days=settings.first_fit_days)

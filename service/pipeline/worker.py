@@ -61,6 +61,18 @@ def refits_enabled(settings: Settings, *, in_worker: bool) -> bool:
     return settings.refits == "nightly" or (settings.refits == "auto" and in_worker)
 
 
+def one_blas_thread() -> None:
+    """Limit BLAS (OpenBLAS) to one thread in this process, as ``fit_many``'s worker processes
+    do. Measured (/tmp micro-benchmark, 2 busy cores, deriving one detector's thresholds):
+    0.16-0.63 s wall with one BLAS thread against 3.7-17.8 s with OpenBLAS's default two;
+    its threads spin on small matrices. This was why fits through the API (in the API process,
+    default BLAS threads) ran 8-26x slower than `tallyward fit --workers N`. Workers scale by
+    processes instead."""
+    from threadpoolctl import threadpool_limits
+
+    threadpool_limits(1)
+
+
 class Worker:
     """Runs its tasks in turn until stopped (``run`` in this thread, ``start`` in a new one)."""
 

@@ -26,7 +26,7 @@ from service import __version__, logs
 from service.config import Settings, get_settings
 from service.errors import Forbidden, TallywardError, Unauthorized, Unavailable
 from service.pipeline.score import mark_dirty
-from service.pipeline.worker import Worker, default_tasks, refits_enabled
+from service.pipeline.worker import Worker, default_tasks, one_blas_thread, refits_enabled
 from service.store.engine import make_engine
 from service.web import openapi
 from service.web.deps import PRINCIPAL_SCOPE_KEY, check_permission, identify
@@ -253,6 +253,7 @@ def create_app(settings: Settings | None = None, *, engine: Engine | None = None
         # 'worker' or 'off': no background thread; `tallyward worker` processes do the work.
         runner = None
         if settings.scoring == "inline":
+            one_blas_thread()  # fits in this process at `tallyward fit`'s speed
             runner = Worker(default_tasks(engine, settings, refits=refits_enabled(
                 settings, in_worker=False)), name="tallyward-inline").start()
             app.state.after_commit = lambda _result: runner.wake.set()
