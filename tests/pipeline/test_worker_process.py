@@ -69,14 +69,24 @@ class WorkerProcess:
                 self.proc.wait(10)
 
 
+@pytest.fixture
+def database_url(database_url: str) -> str:  # type: ignore[override]
+    """PostgreSQL only: SKIP LOCKED claims shared by worker processes."""
+    if not database_url.startswith("postgresql"):
+        pytest.skip("worker processes sharing claims: PostgreSQL")
+    return database_url
+
+
 def env_for(database_url: str) -> dict[str, str]:
     return {**{k: v for k, v in os.environ.items() if not k.startswith("TALLYWARD_")},
             "TALLYWARD_DATABASE_URL": database_url, "TALLYWARD_CLOCK": "data",
             "TALLYWARD_SCORING": "worker", "TALLYWARD_WORKER_LEASE_S": str(LEASE_S),
-            "TALLYWARD_LOG_LEVEL": "INFO"}
+            "TALLYWARD_LOG_LEVEL": "INFO",
+            # Scoring alone: a nightly refit would replace the baselines the reference uses.
+            "TALLYWARD_REFITS": "off"}
 
 
-def test_rows(net, *, dead_from: int, dead_s: int = 7200) -> list[dict]:  # type: ignore[no-untyped-def]
+def day_rows(net, *, dead_from: int, dead_s: int = 7200) -> list[dict]:  # type: ignore[no-untyped-def]
     """The test day's counts as the API takes them; DEAD counts 0 from ``dead_from``."""
     ids = [d.detector_id for d in net.detectors]
     rows = []
@@ -111,7 +121,7 @@ def test_worker_scores_what_the_api_stores_and_the_alert_is_pollable_within_5_s(
     net = small_network(DETS, history_days=21, test_days=1, seed=3)
     load_network(engine, net, until_s=net.test_start_s)
     fitting.fit_many(Settings(database_url=database_url), engine, as_of_s=net.test_start_s)
-    rows = test_rows(net, dead_from=net.test_start_s + 7 * 3600)
+    rows = day_rows(net, dead_from=net.test_start_s + 7 * 3600)
     env = env_for(database_url)
     server = LiveServer(database_url, env={k: v for k, v in env.items()
                                            if k.startswith("TALLYWARD_")}).start()
@@ -155,7 +165,7 @@ def test_a_killed_workers_claims_are_taken_over_without_losing_or_doubling_alert
     # which gives a pass long enough to be caught in the middle.
     fitting.fit_many(Settings(database_url=database_url), engine, as_of_s=net.test_start_s,
                      thresholds=False)
-    rows = test_rows(net, dead_from=net.test_start_s + 7 * 3600)
+    rows = day_rows(net, dead_from=net.test_start_s + 7 * 3600)
     env = env_for(database_url)
     server = LiveServer(database_url, env={k: v for k, v in env.items()
                                            if k.startswith("TALLYWARD_")}).start()
