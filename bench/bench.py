@@ -1,6 +1,6 @@
 """Tallyward benchmarks: figures and ratios against the ideal, printed in one run.
 
-    .venv/bin/python bench/bench.py [--only ingest|fit|score|score-db|latency] [--pg URL]
+    .venv/bin/python bench/bench.py [--only ingest|fit|score|score-db|latency|fit-api] [--pg URL]
 
 ingest  HTTP ingest through a real uvicorn into SQLite (1,000-count batches, one client)
         vs a bare sqlite3 executemany of the same rows into the same schema.
@@ -360,8 +360,91 @@ def bench_latency(repeats: int) -> None:
           " counts per interval at 200 counts/s")
 
 
+def _load_synthetic(folder: Path, n_det: int, days: int) -> tuple[str, int]:
+    """A SQLite file with ``n_det`` detectors' synthetic 5-minute history; (URL, as_of)."""
+    url = fresh_db(folder, "fitapi.db", n_det)
+    conn = sqlite3.connect(url.removeprefix("sqlite:///"), isolation_level=None)
+    as_of = 0
+    for det, t, c in synthetic_history(n_det, days):
+        conn.execute("BEGIN")
+        conn.executemany("INSERT INTO counts VALUES (?, ?, ?, 0.0)",
+                         zip([det] * t.size, t.tolist(), c.tolist(), strict=True))
+        conn.execute("COMMIT")
+        as_of = int(t[-1]) + 300
+    conn.close()
+    return url, as_of
+
+
+def _api_fit(base: str, key: str, as_of: int, n_det: int) -> float:
+    """POST /v1/baselines/fit and poll the job until done: wall seconds."""
+    from service.timefmt import format_utc
+
+    headers = {"Authorization": f"Bearer {key}"}
+    with httpx.Client(base_url=base, headers=headers, timeout=60) as c:
+        t0 = time.perf_counter()
+        r = c.post("/v1/baselines/fit", json={"as_of": format_utc(as_of)})
+        assert r.status_code == 202, r.text
+        href = r.json()["href"]
+        while True:
+            job = c.get(href).json()
+            if job["state"] == "done":
+                break
+            time.sleep(0.1)
+        elapsed = time.perf_counter() - t0
+    assert sum(x["status"] == "fitted" for x in job["results"]) == n_det, job["results"][:3]
+    return elapsed
+
+
+def bench_fit_api(repeats: int) -> None:
+    """The same fits (with thresholds) by `tallyward fit` and through POST /v1/baselines/fit."""
+    import os
+    import subprocess
+
+    from service.timefmt import format_utc
+
+    n_det, days = 24, 56
+    print(f"== fit through the API vs `tallyward fit`: {n_det} detectors x {days} days of "
+          "5-minute counts, SQLite, thresholds derived, data clock ==")
+    with tempfile.TemporaryDirectory() as tmp:
+        url, as_of = _load_synthetic(Path(tmp), n_det, days)
+        engine = make_engine(Settings(database_url=url))
+        key = security.create_key(engine, name="fitapi", role="admin")
+        engine.dispose()
+        env = {**{k: v for k, v in os.environ.items() if not k.startswith("TALLYWARD_")},
+               "TALLYWARD_DATABASE_URL": url, "TALLYWARD_CLOCK": "data",
+               "TALLYWARD_LOG_LEVEL": "WARNING"}
+        figures: dict[str, float] = {}
+        for workers in (1, 2):
+            t0 = time.perf_counter()
+            subprocess.run([sys.executable, "-m", "service.cli", "fit", "--quiet", "--as-of",
+                            format_utc(as_of), "--workers", str(workers)], cwd=REPO, env=env,
+                           check=True, stdout=subprocess.DEVNULL)
+            figures[f"cli{workers}"] = time.perf_counter() - t0
+        with serving(url, env={"TALLYWARD_CLOCK": "data"}) as (base, _proc):
+            figures["inline"] = _api_fit(base, key, as_of, n_det)
+        with serving(url, env={"TALLYWARD_CLOCK": "data", "TALLYWARD_SCORING": "worker"}) \
+                as (base, _proc):
+            procs = [subprocess.Popen([sys.executable, "-m", "service.cli", "worker"], cwd=REPO,
+                                      env={**env, "TALLYWARD_SCORING": "worker"},
+                                      stderr=subprocess.DEVNULL) for _ in range(2)]
+            try:
+                figures["workers2"] = _api_fit(base, key, as_of, n_det)
+            finally:
+                for p in procs:
+                    p.terminate()
+                    p.wait(30)
+    cli1, cli2 = figures["cli1"], figures["cli2"]
+    print(f"  `tallyward fit --workers 1`          {cli1:>7.1f} s  ({cli1 / n_det * 1000:.0f} ms/detector,"
+          " process start included)")
+    print(f"  `tallyward fit --workers 2`          {cli2:>7.1f} s")
+    print(f"  API, inline runner (one process)     {figures['inline']:>7.1f} s  "
+          f"ratio to CLI --workers 1: {figures['inline'] / cli1:.2f}x")
+    print(f"  API + 2 `tallyward worker` processes {figures['workers2']:>7.1f} s  "
+          f"ratio to CLI --workers 2: {figures['workers2'] / cli2:.2f}x")
+
+
 SECTIONS = {"ingest": bench_ingest, "fit": bench_fit, "score": bench_score,
-            "score-db": bench_score_db, "latency": bench_latency}
+            "score-db": bench_score_db, "latency": bench_latency, "fit-api": bench_fit_api}
 
 
 def main() -> None:

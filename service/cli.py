@@ -1,4 +1,4 @@
-"""``tallyward`` command line: serve, migrate, import-detectors, import-counts, keys, fit, score.
+"""``tallyward`` command line: serve, worker, migrate, import-*, keys, fit, score.
 
 The demo tools (replay, demo, evaluate, plot) add their commands through the entry-point
 group ``tallyward.commands`` when installed with the ``demo`` extra.
@@ -92,7 +92,10 @@ def cmd_serve(args: argparse.Namespace, settings: Settings) -> int:
               "machine without a proxy forwarding header is admitted as admin without a key. "
               "Do not put a reverse proxy on this host in front of it; use "
               "TALLYWARD_AUTH=required for anything but a local demo.", file=sys.stderr)
+    if not _database_reachable(settings):
+        return 1
     migrate.upgrade(settings.database_url)
+    _start_line("serve", settings, workers=args.workers)
     uvicorn.run("service.web.app:app_from_env", factory=True, host=args.host, port=args.port,
                 workers=args.workers, log_level="warning", access_log=False,
                 http=server.protocol(), timeout_keep_alive=settings.http_keep_alive_s,
@@ -242,6 +245,73 @@ def cmd_score(args: argparse.Namespace, settings: Settings) -> int:
     return 0
 
 
+def _database_reachable(settings: Settings) -> bool:
+    """Connect once (5 s at most); on failure print one clear line naming the database."""
+    from sqlalchemy import create_engine, text
+
+    connect_args = {"connect_timeout": 5} if settings.database_url.startswith("postgresql") \
+        else {}
+    engine = create_engine(settings.database_url, connect_args=connect_args)
+    try:
+        with engine.connect() as conn:
+            conn.execute(text("SELECT 1"))
+    except Exception as exc:  # noqa: BLE001 - any failure to connect is reported the same way
+        reason = str(getattr(exc, "orig", None) or exc).strip().splitlines()
+        print(f"error: cannot reach the database {_safe_url(settings)} "
+              f"({reason[0][:200] if reason else type(exc).__name__}); check "
+              "TALLYWARD_DATABASE_URL and that the database is running", file=sys.stderr)
+        return False
+    finally:
+        engine.dispose()
+    return True
+
+
+def _start_line(command: str, settings: Settings, *, workers: int, **more: Any) -> None:
+    """One log line at start: what runs, against which database, on which clock."""
+    import logging
+
+    from service import __version__, logs
+
+    logs.configure(settings.log_level)
+    logging.getLogger("tallyward.start").info(f"tallyward {command} starting", extra={"fields": {
+        "version": __version__, "database": _safe_url(settings), "clock": settings.clock,
+        "auth": settings.auth, "scoring": settings.scoring, "workers": workers, **more}})
+
+
+def cmd_worker(args: argparse.Namespace, settings: Settings) -> int:
+    import signal
+
+    from service.pipeline.worker import Worker, default_tasks, one_blas_thread, refits_enabled
+    from service.store import migrations as migrate
+
+    if not _database_reachable(settings):
+        return 1
+    engine = _engine(settings)
+    current, head = migrate.current_revision(engine), migrate.head_revision(settings.database_url)
+    if current != head:
+        print(f"error: the database {_safe_url(settings)} is at schema revision {current} and "
+              f"this code needs {head}; run `tallyward migrate` (or `tallyward serve`) first",
+              file=sys.stderr)
+        return 1
+    one_blas_thread()  # the cause of slow fits outside `tallyward fit` (see the function)
+    refits = refits_enabled(settings, in_worker=True)
+    _start_line("worker", settings, workers=1, refits="nightly" if refits else "off",
+                refit_hour=settings.refit_hour, first_fit_days=settings.first_fit_days)
+    worker = Worker(default_tasks(engine, settings, refits=refits))
+    if args.once:
+        done = worker.run_until_idle()
+        print(f"worker: {done} units of work done; nothing left", file=sys.stderr)
+        return 0
+
+    def _stop(_signum: int, _frame: Any) -> None:
+        worker.stop_event.set()
+        worker.wake.set()
+
+    signal.signal(signal.SIGTERM, _stop)
+    worker.run()
+    return 0
+
+
 # ----------------------------------------------------------------------------- parser
 
 
@@ -323,6 +393,13 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--idle", type=float, default=1.0,
                    help="seconds to wait between passes when nothing is pending (with --loop)")
     s.set_defaults(func=cmd_score)
+
+    s = sub.add_parser("worker", help="run scoring, the missing-data sweep, refits and fit jobs "
+                       "(beside `serve` with TALLYWARD_SCORING=worker; start as many as needed)")
+    s.add_argument("--once", action="store_true",
+                   help="work until nothing is left to do, then exit (default: run until "
+                   "SIGTERM or Ctrl-C)")
+    s.set_defaults(func=cmd_worker)
 
     for register in command_plugins():
         register(sub)

@@ -55,8 +55,11 @@ class Settings(BaseSettings):
     fit_min_completeness: float = Field(
         0.8, gt=0, le=1, description="Days with a smaller share of intervals present are left out of fits."
     )
-    scoring: Literal["inline", "off"] = Field(
-        "inline", description="'inline': score counts in the request that stores them. 'off': store only."
+    scoring: Literal["inline", "worker", "off"] = Field(
+        "inline", description="'inline': the API process scores counts itself and runs fit jobs "
+        "(one-process set-up, the embedded SQLite default). 'worker': the API only stores; "
+        "`tallyward worker` processes score, sweep for missing data, refit and run jobs. "
+        "'off': store only (nothing scores unless a worker or `tallyward score` runs)."
     )
     log_level: str = Field("INFO", description="Python log level for the JSON logs.")
     max_page_bytes: int = Field(
@@ -116,6 +119,28 @@ class Settings(BaseSettings):
         description="SQLite: how long a write waits for another writer's lock (seconds) before "
         "the request answers 503 with Retry-After.",
     )
+
+    # Workers and rolling refits (see `tallyward worker`).
+    refits: Literal["auto", "nightly", "off"] = Field(
+        "auto",
+        description="Rolling refits: 'nightly' refits each detector's baseline every night at "
+        "TALLYWARD_REFIT_HOUR and fits new detectors once they have TALLYWARD_FIRST_FIT_DAYS "
+        "of history; 'off' never; 'auto' = nightly in `tallyward worker`, off in the inline "
+        "runner of `tallyward serve` (so a replay of history keeps the baselines it was given).",
+    )
+    refit_hour: int = Field(
+        2, ge=0, le=23, description="Local hour (0-23, each detector's own time zone) of the "
+        "nightly refit.")
+    first_fit_days: float = Field(
+        7.0, ge=3, le=730, description="Days of history (first stored interval to the clock) "
+        "a new detector needs before its first fit; until then its health says 'learning'.")
+    worker_poll_s: float = Field(
+        1.0, gt=0, le=60, description="Seconds an idle worker waits before looking for work "
+        "again (scoring, missing-data sweep, jobs).")
+    worker_lease_s: float = Field(
+        120.0, ge=1, le=3600, description="Seconds a scorer's claim on a detector holds: work "
+        "of a worker that dies is taken over by another after this long. Longer than a "
+        "scoring pass takes.")
 
     @field_validator("database_url")
     @classmethod

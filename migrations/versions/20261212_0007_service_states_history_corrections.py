@@ -10,7 +10,7 @@
   and when.
 
 Revision ID: 0007
-Revises: 0005
+Revises: 0006
 Create Date: 2026-12-12
 """
 
@@ -18,7 +18,7 @@ import sqlalchemy as sa
 from alembic import op
 
 revision = "0007"
-down_revision = "0005"
+down_revision = "0006"
 branch_labels = None
 depends_on = None
 

@@ -21,7 +21,7 @@ from typing import Any
 
 import numpy as np
 import orjson
-from sqlalchemy import Connection, Engine, case, delete, func, or_, select, update
+from sqlalchemy import Connection, Engine, and_, case, delete, func, or_, select, update
 
 from service.config import Settings
 from service.domain import MIN_INTERVAL_S
@@ -31,7 +31,7 @@ from service.store.engine import is_sqlite, read_transaction, write_transaction
 
 log = logging.getLogger("tallyward.scoring")
 
-LEASE_S = 120.0  # seconds a claim holds a detector
+LEASE_S = 120.0  # seconds a claim holds a detector (default of TALLYWARD_WORKER_LEASE_S)
 # Retry a detector whose scoring failed after RETRY_FIRST_S, doubling per consecutive failure up
 # to RETRY_MAX_S. Module constants until they move to Settings.
 RETRY_FIRST_S = 5.0  # seconds
@@ -92,8 +92,11 @@ def claim(engine: Engine, settings: Settings, *, limit: int = 64) -> tuple[list[
     now = time.time()
 
     def due_query(clock: float):
-        due = or_(s.c.dirty_from_s.is_not(None), s.c.claimed_from_s.is_not(None),
-                  s.c.scored_through_s.is_(None),
+        # Never scored: due once an interval after score_from_s has ended (before that a
+        # pass finds nothing to score, and the claim would come back at once, forever).
+        never = and_(s.c.scored_through_s.is_(None),
+                     s.c.score_from_s + d.c.interval_s + settings.missing_grace_s <= clock)
+        due = or_(s.c.dirty_from_s.is_not(None), s.c.claimed_from_s.is_not(None), never,
                   s.c.scored_through_s + d.c.interval_s + settings.missing_grace_s <= clock)
         return (select(s.c.detector_id, s.c.baseline_id, s.c.score_from_s, s.c.dirty_from_s,
                        s.c.claimed_from_s, s.c.scored_through_s, s.c.warm_state)
@@ -119,7 +122,7 @@ def claim(engine: Engine, settings: Settings, *, limit: int = 64) -> tuple[list[
             starts = [v for v in (r.dirty_from_s, r.claimed_from_s) if v is not None]
             from_s = min(starts) if starts else None
             conn.execute(update(s).where(s.c.detector_id == r.detector_id).values(
-                lease_until_s=now + LEASE_S, claimed_from_s=from_s, dirty_from_s=None))
+                lease_until_s=now + settings.worker_lease_s, claimed_from_s=from_s, dirty_from_s=None))
             claims.append(Claim(r.detector_id, r.baseline_id, r.score_from_s, from_s,
                                 r.scored_through_s, r.warm_state))
     return claims, clock

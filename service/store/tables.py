@@ -250,3 +250,55 @@ count_corrections = Table(
     CheckConstraint("new_count >= 0", name="new_count_not_negative"),
     Index("ix_count_corrections_detector_id_correction_id", "detector_id", "correction_id"),
 )
+
+# Long tasks asked for through the API (migration 0006): a job, and its work one detector a
+# row, claimed by workers with a lease so several share a job and a killed one's items are
+# taken over.
+jobs = Table(
+    "jobs",
+    metadata,
+    Column("job_id", String(32), primary_key=True),
+    Column("kind", String(16), nullable=False),  # "fit"
+    Column("state", String(12), nullable=False),  # queued, running, done
+    Column("params", Text, nullable=False),  # JSON
+    Column("total", Integer, nullable=False),
+    Column("created_by", String(100), nullable=True),
+    Column("created_s", Float, nullable=False),
+    Column("started_s", Float, nullable=True),
+    Column("finished_s", Float, nullable=True),
+    CheckConstraint("state IN ('queued', 'running', 'done')", name="state_known"),
+    CheckConstraint("kind IN ('fit')", name="kind_known"),
+    Index("ix_jobs_state", "state"),
+)
+
+job_items = Table(
+    "job_items",
+    metadata,
+    Column("job_id", String(32), ForeignKey("jobs.job_id", ondelete="CASCADE"),
+           primary_key=True),
+    Column("position", Integer, primary_key=True),
+    Column("detector_id", String(64), nullable=False),
+    Column("status", String(24), nullable=False),  # pending, or the fit's status
+    Column("lease_until_s", Float, nullable=True),  # wall time a worker's claim holds until
+    Column("reason", Text, nullable=True),
+    Column("baseline_id", Integer, nullable=True),
+    Column("seconds", Float, nullable=True),
+    Column("finished_s", Float, nullable=True),
+    Index("ix_job_items_job_id_status", "job_id", "status"),
+)
+
+# Each detector's refit schedule: when its next refit (or first fit) is due on the scoring
+# clock, the lease of the worker doing it, and the last attempt's outcome.
+refits = Table(
+    "refits",
+    metadata,
+    Column("detector_id", String(64), ForeignKey("detectors.detector_id", ondelete="CASCADE"),
+           primary_key=True),
+    Column("due_s", BigInteger, nullable=False),
+    Column("lease_until_s", Float, nullable=True),
+    Column("attempted_s", BigInteger, nullable=True),  # scoring clock of the last attempt
+    Column("status", String(24), nullable=True),
+    Column("reason", Text, nullable=True),
+    Column("updated_s", Float, nullable=False),
+    Index("ix_refits_due_s", "due_s"),
+)

@@ -26,11 +26,12 @@ from service import __version__, logs
 from service.config import Settings, get_settings
 from service.domain import CONTROL_CHARACTERS, DETECTOR_ID_PATTERN, detector_id_error
 from service.errors import Forbidden, TallywardError, Unauthorized, Unavailable
-from service.pipeline.score import Scorer, mark_dirty
+from service.pipeline.score import mark_dirty
+from service.pipeline.worker import Worker, default_tasks, one_blas_thread, refits_enabled
 from service.store.engine import make_engine
 from service.web import docs, metrics, openapi
 from service.web.deps import PRINCIPAL_SCOPE_KEY, check_permission, identify
-from service.web.routes import alerts, baselines, corrections, counts, detectors, health
+from service.web.routes import alerts, baselines, corrections, counts, detectors, health, jobs
 
 log = logging.getLogger("tallyward.http")
 WRITE_METHODS = frozenset({"POST", "PUT", "PATCH"})
@@ -249,15 +250,19 @@ def create_app(settings: Settings | None = None, *, engine: Engine | None = None
 
     @asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
-        scorer = None
+        # Inline (the one-process set-up): this process runs the worker loop in a thread.
+        # 'worker' or 'off': no background thread; `tallyward worker` processes do the work.
+        runner = None
         if settings.scoring == "inline":
-            scorer = Scorer(engine, settings).start()
-            app.state.after_commit = lambda _result: scorer.wake.set()
+            one_blas_thread()  # fits in this process at `tallyward fit`'s speed
+            runner = Worker(default_tasks(engine, settings, refits=refits_enabled(
+                settings, in_worker=False)), name="tallyward-inline").start()
+            app.state.after_commit = lambda _result: runner.wake.set()
         try:
             yield
         finally:
-            if scorer is not None:
-                scorer.stop()
+            if runner is not None:
+                runner.stop()
 
     # /docs and /redoc from bundled assets: nothing loads from another host
     app = docs.offline_app(title="Tallyward", version=__version__, description=DESCRIPTION,
@@ -317,6 +322,7 @@ def create_app(settings: Settings | None = None, *, engine: Engine | None = None
     app.include_router(baselines.router)
     app.include_router(alerts.router)
     app.include_router(alerts.detector_router)
+    app.include_router(jobs.router)
     # Outermost last: every answer (401, 408, 413 included) gets a request id and a log line,
     # and the key is checked before the body is read.
     app.add_middleware(BodyLimit, max_bytes=settings.max_body_bytes,

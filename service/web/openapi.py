@@ -228,6 +228,7 @@ EXTRA: dict[tuple[str, str], dict[int | str, dict[str, Any]]] = {
     },
     ("GET", "/v1/detectors/{detector_id}"): {404: _not_found("unknown detector")},
     ("POST", "/v1/baselines/fit"): {404: _not_found("an unknown detector in `detector_ids`")},
+    ("GET", "/v1/jobs/{job_id}"): {404: _not_found("unknown job id")},
     ("GET", "/v1/detectors/{detector_id}/baseline"): {
         404: _not_found("unknown detector, or `no_baseline` when none is fitted yet")},
     ("GET", "/v1/detectors/{detector_id}/baseline/profile"): {

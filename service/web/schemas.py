@@ -230,6 +230,21 @@ class OpenAlertRef(BaseModel):
                                          "/v1/alerts only with suppressed=true).")
 
 
+class DetectorFitState(BaseModel):
+    state: Literal["learning", "scored"] = Field(
+        description="'learning': no baseline yet (the first fit waits for enough history); "
+        "'scored': a baseline judges the detector's counts.")
+    days_needed: int = Field(description="Days of history still needed before the first fit "
+                             "(TALLYWARD_FIRST_FIT_DAYS); 0 once scored or due.")
+    history_days: float | None = Field(description="Days from the first stored interval to "
+                                       "the clock, while learning.")
+    baseline_id: int | None = Field(description="The baseline scoring uses.")
+    next_refit: str | None = Field(description="When the next refit (or first fit) is due, "
+                                   "on the scoring clock; null before a worker scheduled it.")
+    last_fit_status: str | None = Field(description="Outcome of the last scheduled fit.")
+    last_fit_reason: str | None = Field(description="Why that fit did not happen, if not.")
+
+
 class DetectorHealth(BaseModel):
     detector_id: str
     clock: Literal["wall", "data"]
@@ -238,6 +253,7 @@ class DetectorHealth(BaseModel):
     open_alerts: list[OpenAlertRef] = Field(description="Open alerts about the detector, by "
                                             "the ids GET /v1/alerts lists them under.")
     service: ServiceStatePublic
+    baseline: DetectorFitState = Field(description="Learning or scored, and the refit schedule.")
 
 
 # ---------------------------------------------------------------------------- service states

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import time
+
 import pytest
 
 from service.timefmt import format_utc
@@ -11,21 +13,41 @@ from tests.factories import load_network, small_network
 DETS = ("bra3-nb-lt", "bra3-nb-t1", "bra3-nb-t2")
 
 
+JOB_WAIT_S = 300  # a bound on waiting for the inline runner, not a speed requirement
+
+
+def fit_job(client, keys, body):  # type: ignore[no-untyped-def]
+    """POST a fit (202 with a job id), then poll the job until it is done; the job."""
+    r = client.post("/v1/baselines/fit", json=body, headers=auth(keys["admin"]))
+    assert r.status_code == 202, r.text
+    href = r.json()["href"]
+    assert r.headers["location"] == href == f"/v1/jobs/{r.json()['id']}"
+    deadline = time.monotonic() + JOB_WAIT_S
+    while True:
+        job = client.get(href, headers=auth(keys["read"])).json()
+        if job["state"] == "done" or time.monotonic() > deadline:
+            return job
+        time.sleep(0.1)
+
+
 @pytest.fixture
 def fitted(client, engine, keys):  # type: ignore[no-untyped-def]
     net = small_network(DETS)
     load_network(engine, net, until_s=net.test_start_s)
-    r = client.post("/v1/baselines/fit", json={"as_of": format_utc(net.test_start_s)},
-                    headers=auth(keys["admin"]))
-    assert r.status_code == 200, r.text
-    return net, r.json()
+    job = fit_job(client, keys, {"as_of": format_utc(net.test_start_s)})
+    assert job["state"] == "done", job
+    return net, job
 
 
 def test_fit_reports_each_detector(fitted) -> None:
-    """Every detector of a 3-week history is fitted, with its baseline id."""
-    _, body = fitted
-    assert [d["status"] for d in body["data"]] == ["fitted"] * 3
-    assert all(d["baseline_id"] for d in body["data"])
+    """A fit job fits every detector of a 3-week history: progress 3/3, each with its
+    baseline id, in the order of the registry."""
+    net, job = fitted
+    assert job["progress"] == {"done": 3, "total": 3}
+    assert [d["detector_id"] for d in job["results"]] == sorted(DETS)
+    assert [d["status"] for d in job["results"]] == ["fitted"] * 3
+    assert all(d["baseline_id"] for d in job["results"])
+    assert job["as_of"] == format_utc(net.test_start_s) and job["finished"]
 
 
 def test_baseline_for_a_date_gives_every_interval_with_band(client, keys, fitted) -> None:
@@ -93,10 +115,9 @@ def test_fit_with_too_little_history_says_so(client, engine, keys) -> None:
     """A detector with two days of counts is insufficient_history, not an error."""
     net = small_network(("bra3-nb-lt",), history_days=2, test_days=1)
     load_network(engine, net, until_s=net.test_start_s)
-    r = client.post("/v1/baselines/fit", json={"as_of": format_utc(net.test_start_s)},
-                    headers=auth(keys["admin"]))
-    assert r.json()["data"][0]["status"] == "insufficient_history"
-    assert r.json()["data"][0]["reason"]
+    job = fit_job(client, keys, {"as_of": format_utc(net.test_start_s)})
+    assert job["results"][0]["status"] == "insufficient_history"
+    assert job["results"][0]["reason"]
 
 
 @pytest.mark.parametrize("day", ["9999-12-31", "0001-01-01", "1989-12-31", "2101-01-01"])
@@ -122,3 +143,25 @@ def test_baseline_malformed_date_is_422(client, keys, day) -> None:
     r = client.get("/v1/detectors/bra3-nb-t1/baseline", params={"date": day},
                    headers=auth(keys["read"]))
     assert r.status_code == 422 and "YYYY-MM-DD" in r.json()["message"]
+
+
+def test_unknown_job_id_is_404_saying_what_a_job_id_is(client, keys) -> None:
+    """A job id that does not exist, or is not one at all, is a 404 that says what job ids
+    are; never a 500."""
+    for job_id in ("0" * 32, "not-a-job", "ABCDEF" * 6):
+        r = client.get(f"/v1/jobs/{job_id}", headers=auth(keys["read"]))
+        assert r.status_code == 404, r.text
+        assert r.json()["error"] == "not_found" and "POST /v1/baselines/fit" in r.json()["message"]
+
+
+def test_fit_of_an_unknown_detector_is_404_and_queues_nothing(client, engine, keys) -> None:
+    """Naming a detector that is not registered is refused before a job is made."""
+    from sqlalchemy import func, select
+
+    from service.store import tables
+
+    r = client.post("/v1/baselines/fit", json={"detector_ids": ["NOPE-1"]},
+                    headers=auth(keys["admin"]))
+    assert r.status_code == 404 and "NOPE-1" in r.json()["message"]
+    with engine.connect() as conn:
+        assert conn.execute(select(func.count()).select_from(tables.jobs)).scalar_one() == 0

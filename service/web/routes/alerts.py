@@ -12,8 +12,10 @@ from service.domain import DETECTOR_ID_PATTERN, INT32_MAX, INT64_MAX, KINDS, pla
 from service.errors import ValidationFailed
 from service.store import alerts as alert_store
 from service.store import detectors as registry
+from service.store.engine import read_transaction
+from service.store.jobs import fit_state
 from service.store.scoring import clock_now
-from service.timefmt import parse_rfc3339
+from service.timefmt import format_utc, parse_rfc3339
 from service.web import paging
 from service.web.deps import EngineDep, OperateDep, ReadDep, SettingsDep
 from service.web.schemas import (
@@ -138,5 +140,9 @@ def detector_health(detector_id: Annotated[str, Path(pattern=DETECTOR_ID_PATTERN
     figures = alert_store.detector_health(engine, detector_id,
                                           clock=lambda conn: clock_now(conn, settings))
     service = registry.get_detector(engine, detector_id)["service"]
+    with read_transaction(engine) as conn:
+        fit = fit_state(conn, detector_id, first_fit_days=settings.first_fit_days)
+    next_refit = fit.pop("next_refit_s")
+    fit["next_refit"] = format_utc(next_refit) if next_refit is not None else None
     return {"detector_id": detector_id, "clock": settings.clock, "service": service,
-            **{k: v for k, v in figures.items() if k != "detector_id"}}
+            **{k: v for k, v in figures.items() if k != "detector_id"}, "baseline": fit}

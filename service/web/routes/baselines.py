@@ -2,21 +2,21 @@
 
 from __future__ import annotations
 
-import time
 from datetime import date
 from typing import Annotated, Any, Literal
 
-from fastapi import APIRouter, Path, Query, Request
-from fastapi.concurrency import run_in_threadpool
+from fastapi import APIRouter, Path, Query, Request, Response
+from pydantic import BaseModel, Field
 
 from service.domain import DAY_TYPES, DETECTOR_ID_PATTERN
 from service.errors import NotFound, ValidationFailed
 from service.pipeline import baseline_day
 from service.pipeline import fit as fitting
+from service.pipeline import jobs as job_runner
 from service.timefmt import parse_rfc3339
-from service.web import metrics, paging
+from service.web import paging
 from service.web.deps import AdminDep, EngineDep, ReadDep, SettingsDep
-from service.web.schemas import BaselineDay, BaselineProfile, FitRequest, FitResult
+from service.web.schemas import BaselineDay, BaselineProfile, FitRequest
 
 router = APIRouter(prefix="/v1", tags=["baselines"])
 DetectorId = Annotated[str, Path(pattern=DETECTOR_ID_PATTERN)]
@@ -25,28 +25,38 @@ DetectorId = Annotated[str, Path(pattern=DETECTOR_ID_PATTERN)]
 FIRST_DATE, LAST_DATE = date(1990, 1, 1), date(2100, 12, 31)
 
 
-@router.post("/baselines/fit", response_model=FitResult)
-async def fit(request: Request, req: FitRequest, engine: EngineDep, settings: SettingsDep, _: AdminDep
-              ) -> dict[str, Any]:
-    """Fit baselines now (one process); `tallyward fit --workers N` is faster for networks."""
+class FitJobAccepted(BaseModel):
+    id: str = Field(description="The job id: poll GET /v1/jobs/{id}.")
+    state: Literal["queued", "done"] = Field(description="'done' at once for no detectors.")
+    total: int = Field(description="Detectors to fit.")
+    href: str = Field(description="Where to poll the job.")
+
+
+@router.post("/baselines/fit", response_model=FitJobAccepted, status_code=202)
+def fit(req: FitRequest, engine: EngineDep, settings: SettingsDep, who: AdminDep,
+        response: Response) -> dict[str, Any]:
+    """Queue baseline fits as a job (202 with its id); a worker (or the inline runner) runs it."""
     as_of = None
     if req.as_of is not None:
         try:
             as_of = parse_rfc3339(req.as_of)
         except ValueError as exc:
             raise ValidationFailed(f"as_of: {exc}") from None
+    known = fitting.all_detector_ids(engine)
     if req.detector_ids:
-        known = set(fitting.all_detector_ids(engine))
-        unknown = [d for d in req.detector_ids if d not in known]
+        known_set = set(known)
+        unknown = [d for d in req.detector_ids if d not in known_set]
         if unknown:
             raise NotFound(f"unknown detector(s): {', '.join(unknown[:10])}")
-    started = time.perf_counter()
-    results = await run_in_threadpool(fitting.fit_many, settings, engine,
-                                      detector_ids=req.detector_ids, as_of_s=as_of, workers=1)
-    metrics.observe_fits(request.app, results)
-    return {"seconds": round(time.perf_counter() - started, 2),
-            "data": [{k: r.get(k) for k in ("detector_id", "status", "reason", "baseline_id")}
-                     for r in results]}
+        ids = list(dict.fromkeys(req.detector_ids))
+    else:
+        ids = known
+    job_id = job_runner.submit_fit(engine, detector_ids=ids, as_of_s=as_of,
+                                   created_by=getattr(who, "name", None))
+    href = f"/v1/jobs/{job_id}"
+    response.headers["Location"] = href
+    return {"id": job_id, "state": "queued" if ids else "done", "total": len(ids),
+            "href": href}
 
 
 def _baseline_date(text: str) -> date:
