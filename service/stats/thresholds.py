@@ -78,12 +78,7 @@ def log_repeat_p(mu: Any, alpha: Any) -> np.ndarray:
     shape = m.shape
     m, a = np.maximum(m.ravel(), 1e-12), np.maximum(a.ravel(), 0.0)
     sd = np.sqrt(m + a * m * m)
-    # Beyond the grid: the collision integral of the moment-matched gamma density, shape
-    # k = m^2 / sd^2 and scale sd^2 / m: Gamma(2k - 1) / (Gamma(k)^2 2^(2k - 1) scale),
-    # whose limit for large k is the normal 1 / (2 sqrt(pi) sd).
-    k = np.maximum(m * m / (sd * sd), 0.75)
-    out = (special.gammaln(2.0 * k - 1.0) - 2.0 * special.gammaln(k)
-           - (2.0 * k - 1.0) * math.log(2.0) - np.log(sd * sd / m))
+    out = _log_repeat_gamma(m, sd)
     small = np.flatnonzero(sd <= REPEAT_GRID_SD)
     width = int(math.ceil(24.0 * REPEAT_GRID_SD)) + 12
     for chunk in np.array_split(small, max(1, small.size * width // 2_000_000)):
@@ -101,6 +96,15 @@ def log_repeat_p(mu: Any, alpha: Any) -> np.ndarray:
         log_p0 = log_pmf_flat(np.zeros(chunk.size), mc, ac)
         out[chunk] = log_sum - np.log(-np.expm1(log_p0))
     return np.minimum(out, 0.0).reshape(shape)
+
+
+def _log_repeat_gamma(m, sd):
+    """Log collision integral of the moment-matched gamma density (shape k = m^2 / sd^2, scale
+    sd^2 / m): Gamma(2k - 1) / (Gamma(k)^2 2^(2k - 1) scale); for large k the normal limit
+    1 / (2 sqrt(pi) sd)."""
+    k = np.maximum(m * m / (sd * sd), 0.75)
+    return (special.gammaln(2.0 * k - 1.0) - 2.0 * special.gammaln(k)
+            - (2.0 * k - 1.0) * math.log(2.0) - np.log(sd * sd / m))
 
 
 def window_intervals(level_memory_s: float, interval_s: int) -> int:
@@ -208,15 +212,21 @@ def _expected_zero_runs(mu, alpha, level_var, ia, sig2, log_a):
 def _expected_repeats(mu, alpha, log_a, min_repeat):
     """Expected repeated-value alerts per week: a run of ``k`` equal nonzero counts is flagged
     once ``(k - 1) log_repeat_p`` falls below ``log_a``; its chance at a run start is
-    ``sum_v P(y_{s-1} != v) P(y_s = v)^k``, each bin's predictive held over the run."""
+    ``sum_v P(y_{s-1} != v) P(y_s = v)^k``, each bin's predictive held over the run. The
+    repeat probability comes from the same pmf grid (as ``log_repeat_p`` computes it)."""
     total = 0.0
-    lr = np.minimum(log_repeat_p(mu, alpha), -1e-300)
-    k_all = np.maximum(min_repeat, 1 + np.ceil(log_a / lr))
+    sd_all = np.sqrt(mu + alpha * mu * mu)
     for chunk in np.array_split(np.arange(mu.size), max(1, mu.size // 512)):
-        m, a, k = mu[chunk], alpha[chunk], k_all[chunk][:, None]
-        vmax = int(np.max(m + 12.0 * np.sqrt(m + a * m * m) + 10.0))
+        m, a, sd = mu[chunk], alpha[chunk], sd_all[chunk]
+        vmax = int(np.max(m + 12.0 * sd + 10.0))
         v = np.arange(1, vmax + 1, dtype=float)[None, :]
         lp = log_pmf(v, m[:, None], a[:, None])
+        top = np.max(lp, axis=1)
+        grid = 2.0 * top + np.log(np.sum(np.exp(2.0 * (lp - top[:, None])), axis=1))
+        grid -= np.log(-np.expm1(log_pmf(0.0, m, a)))
+        lr = np.where(sd <= REPEAT_GRID_SD, grid, _log_repeat_gamma(m, np.maximum(sd, 1e-12)))
+        lr = np.minimum(lr, -1e-300)
+        k = np.maximum(min_repeat, 1 + np.ceil(log_a / lr))[:, None]
         total += float(np.sum((1.0 - np.exp(lp)) * np.exp(lp * k)))
     return total
 

@@ -54,3 +54,43 @@ def test_missing_rate_counts_trimmed_and_pooled_days_in_its_schedule(days, wild_
     # 4,000-8,000 scheduled intervals at 1 %: binomial SD at most 0.16 points; the bounds
     # 0.5-1.5 % are 3 SD or more away (chance of a failure below 0.3 %).
     assert 0.005 <= rate <= 0.015
+
+
+def test_pool_alphas_weighs_estimates_by_information_and_inflates_for_uncertainty():
+    """Partial pooling: the pooled value is the information-weighted mean; each estimate moves
+    toward it by prior_dof / (own information + prior_dof); the result is scaled by
+    nu / (nu - 2) (Student-t predictive variance, BDA 3rd ed. sec. 3.2); never below floor."""
+    big = 1e12  # counts so large that count noise takes no information away
+    pooled, shrunk = bl.pool_alphas([0.03, 0.0], [39.0, 7.0], [big, big], prior_dof=10.0,
+                                    floor=0.0025)
+    assert pooled == pytest.approx((39 * 0.03 + 7 * 0.0) / 46)
+    nu_wd, nu_we = 49.0, 17.0
+    assert shrunk[0] == pytest.approx((39 * 0.03 + 10 * pooled) / nu_wd * nu_wd / (nu_wd - 2))
+    assert shrunk[1] == pytest.approx((10 * pooled) / nu_we * nu_we / (nu_we - 2))
+    # quiet counts (mean 50 per day) carry less information about alpha: more shrinkage
+    _, quiet = bl.pool_alphas([0.03, 0.0], [39.0, 7.0], [50.0, 50.0], prior_dof=10.0)
+    assert quiet[1] > shrunk[1]
+    assert bl.pool_alphas([0.0, 0.0], [39.0, 7.0], [big, big], prior_dof=10.0,
+                          floor=0.0025)[1] == [0.0025, 0.0025]
+
+
+def test_weekend_day_alpha_is_never_zeroed_and_shrinks_toward_the_weekdays():
+    """Twelve quiet detectors with a true day-level alpha of 0.02 on every day type, 8 weeks:
+    every weekend profile's day_alpha lies within 0.004-0.06 (a pre-test zeroed some of them,
+    and 8 days alone scatter it over 0-0.07). Chance of failure: each shrunk estimate has a
+    relative SD of about 35 %, so a value outside 0.2-3 times the truth is a 2.3-SD or larger
+    event on the low side (about 1 % for each of 24, but the shared pooled part makes them
+    move together; seeded)."""
+    rng = np.random.default_rng(11)
+    days = 56
+    alphas = []
+    for _ in range(12):
+        hours = (np.arange(PER_DAY) + 0.5) * STEP / 3600
+        rhythm = 0.2 + 4 * np.exp(-0.5 * ((hours - 12) / 3) ** 2)
+        g = rng.gamma(50.0, 1 / 50.0, days)
+        t = MONDAY + np.arange(days * PER_DAY) * STEP
+        counts = rng.poisson(np.tile(rhythm, days) * np.repeat(g, PER_DAY))
+        base = bl.fit_baseline(t, counts, interval_s=STEP, timezone="UTC",
+                               as_of_s=int(t[-1] + STEP), window_days=days).baseline
+        alphas += [base.profiles[n].day_alpha for n in ("saturday", "sunday_holiday")]
+    assert min(alphas) >= 0.004 and max(alphas) <= 0.06, alphas
