@@ -268,7 +268,29 @@ def cusum_limit(arl0: float, *, rho: float, mu: Any, alpha: Any = 0.0, states: i
     lo = 1e-3
     if gap(lo) <= 0:
         return lo
-    hi = max(1.0, -target)
+    # log rate is close to linear in h (ARL grows about like e^h), so a secant from two
+    # points near Lorden's h = log(ARL0) usually lands within 1e-3 in three or four chain
+    # evaluations; a bracket and Brent's method take over otherwise.
+    h0, h1 = max(2e-3, 0.85 * -target), max(4e-3, -target)
+    g0, g1 = gap(h0), gap(h1)
+    known = {h0: g0, h1: g1}
+    for _ in range(6):
+        if g1 == g0:
+            break
+        h2 = h1 - g1 * (h1 - h0) / (g1 - g0)
+        if not lo < h2 < 4.0 * max(1.0, -target) or abs(h2 - h1) < 1e-3:
+            break
+        h0, g0, h1, g1 = h1, g1, h2, gap(h2)
+        known[h1] = g1
+    else:
+        h2 = h1
+    if abs(h2 - h1) < 1e-3 and g1 <= 0 and any(h < h1 and g > 0 for h, g in known.items()):
+        # the root lies within 1e-3 below h1 (the rate at h1 is within budget)
+        return float(h1)
+    below = [h for h, g in known.items() if g > 0] + [lo]
+    above = [h for h, g in known.items() if g <= 0]
+    lo = max(below)
+    hi = min(above) if above else max(1.0, -target, lo)
     while gap(hi) > 0:
         lo, hi = hi, 1.5 * hi
     # The rate is a step function of h for lattice increments (busy Poisson detectors), so the
