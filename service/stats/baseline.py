@@ -366,6 +366,7 @@ class _GroupFit:
     cell_keep: np.ndarray  # (D, n) bool, observed cells that entered the final fit
     d_eff: float
     smoothing: dict
+    hour_alpha: float = 0.0  # relative variance of hourly totals beyond interval_alpha
     day_info: float = 0.0  # effective days of information about day_alpha
     interval_info: float = 0.0  # effective intervals of information about interval_alpha
 
@@ -567,7 +568,35 @@ def _fit_group(Y, X, weights, groups, scheduled, *, min_completeness, start=None
 
     wg = (weights * g_fit)[:, None] * (X * keep)
     test_int, test_day = _overdispersion_tests(prof, log_var, mu, X, keep, wg, exposures, disp)
-    return _group_result(prof, beta, log_var, edf, nu, disp, test_int, test_day, weights)
+    fit = _group_result(prof, beta, log_var, edf, nu, disp, test_int, test_day, weights)
+    hour_alpha = _hour_excess(Y, X, mu, disp)
+    smoothing = dict(fit.smoothing, hour_alpha=hour_alpha)
+    return dataclasses.replace(fit, hour_alpha=hour_alpha, smoothing=smoothing)
+
+
+def _hour_excess(Y, X, mu, disp: _RoundDispersion) -> float:
+    """Relative variance of hourly totals given the day's level, beyond the interval-level
+    excess: hour-to-hour swings shared by the intervals of an hour (moment estimate, NB2 form
+    ``sum((y - m)^2 - m) / sum(m^2)`` over day-hours, less ``interval_alpha / k`` for the
+    ``k`` intervals of an hour). The profile is an average over days of exactly these swings,
+    so its error is this over the effective number of days; the Hessian of the fit, which
+    takes intervals as independent, does not see it."""
+    D, n = Y.shape
+    if n % 24 or not disp.rows.any():
+        return 0.0
+    k = n // 24
+    rows = disp.rows
+    keep = disp.sel[rows]
+    y = (Y[rows] * keep).reshape(-1, 24, k).sum(axis=2)
+    g = np.where(disp.day_exp[rows] > 0, (Y[rows] * keep).sum(axis=1)
+                 / np.maximum(disp.day_exp[rows], 1e-300), 1.0)
+    m = ((mu[None, :] * X[rows] * keep).reshape(-1, 24, k).sum(axis=2)) * g[:, None]
+    m2 = float(np.sum(m * m))
+    if m2 <= 0:
+        return 0.0
+    # degrees of freedom: one day factor per day is fitted from the same 24 hours
+    alpha_hour = float(np.sum((y - m) ** 2 - m)) / m2 * 24.0 / 23.0
+    return max(0.0, alpha_hour - disp.interval_alpha / k)
 
 
 def _group_result(prof: ProfileFit, beta, log_var, edf, nu, disp: _RoundDispersion,
@@ -970,7 +999,7 @@ def _profile_of(name: str, fit: _GroupFit, *, fitted_from: str, expected, log_va
 def _own_profile(name: str, fit: _GroupFit) -> DayTypeProfile:
     """A day type's profile from its own fit."""
     return _profile_of(name, fit, fitted_from=name, expected=np.exp(fit.beta),
-                       log_var=fit.log_var + fit.day_alpha / fit.d_eff,
+                       log_var=fit.log_var + (fit.day_alpha + fit.hour_alpha) / fit.d_eff,
                        days_used=int(fit.day_keep.sum()), smoothing=dict(fit.smoothing))
 
 
@@ -994,7 +1023,8 @@ def _pooled_profile(name: str, pooled: _GroupFit, m: _DayMatrices, members, reas
     smoothing.update({"pooled_days": int(pooled.day_keep.sum()), "level": level,
                       "fallback_reason": reason})
     return _profile_of(name, pooled, fitted_from="pooled", expected=mu * level,
-                       log_var=pooled.log_var + pooled.day_alpha / pooled.d_eff + level_var,
+                       log_var=pooled.log_var + (pooled.day_alpha + pooled.hour_alpha)
+                       / pooled.d_eff + level_var,
                        days_used=int(mine.sum()), smoothing=smoothing)
 
 

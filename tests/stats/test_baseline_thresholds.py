@@ -94,3 +94,28 @@ def test_weekend_day_alpha_is_never_zeroed_and_shrinks_toward_the_weekdays():
                                as_of_s=int(t[-1] + STEP), window_days=days).baseline
         alphas += [base.profiles[n].day_alpha for n in ("saturday", "sunday_holiday")]
     assert min(alphas) >= 0.004 and max(alphas) <= 0.06, alphas
+
+
+def test_thresholds_hold_back_an_estimation_allowance_that_shrinks_with_history():
+    """The calibration spends F D / (D + 10) of the budget F (D days of history) and the
+    thresholds still say they were made for F (so stored ones are recognised)."""
+    from service.stats.baseline_thresholds import (
+        ESTIMATION_ALLOWANCE_DAYS,
+        budget_spent,
+        thresholds_for_baseline,
+    )
+
+    assert budget_spent(0.05, 21) == pytest.approx(0.05 * 21 / (21 + ESTIMATION_ALLOWANCE_DAYS))
+    assert budget_spent(0.05, 56) > budget_spent(0.05, 21)
+    rng = np.random.default_rng(3)
+    short, long_ = (_history(rng, days=d, missing=0.01) for d in (21, 56))
+    spent = []
+    for (t, counts, end), days in ((short, 21), (long_, 56)):
+        base = bl.fit_baseline(t, counts, interval_s=STEP, timezone="UTC", as_of_s=end,
+                               window_days=days).baseline
+        th = thresholds_for_baseline(base, interval_s=STEP, false_alerts_per_week=0.05)
+        assert th.false_alerts_per_week == 0.05
+        spent.append(sum(th.expected_per_week.values()))
+    # expected false alerts under the model add up to the spent part, not to F
+    assert spent[0] == pytest.approx(budget_spent(0.05, 21), rel=0.05)
+    assert spent[1] == pytest.approx(budget_spent(0.05, 56), rel=0.05)
