@@ -37,10 +37,15 @@ def typical_week(base: bl.Baseline) -> TypicalWeek:
 
 
 def missing_rate(base: bl.Baseline) -> float:
-    """Share of scheduled intervals that went unreported on the days the fit used."""
-    own_days = [p.days_used for name, p in base.profiles.items() if p.fitted_from == name]
-    scheduled = max(1, (sum(own_days) or max(p.days_used for p in base.profiles.values()))
-                    * base.bins_per_day)
+    """Share of scheduled intervals that went unreported on the usable days of the fit.
+
+    The observed intervals of those days are the used plus the trimmed ones (a trimmed day's
+    intervals count as trimmed), so the schedule they are divided by covers the same days:
+    every kept day of every day type (a pooled day type's ``days_used`` counts its own kept
+    days) plus the days the robust fit trimmed. Days dropped for low completeness are in
+    neither (about 24 intervals per DST day are ignored: a day counts ``bins_per_day``)."""
+    kept_days = sum(p.days_used for p in base.profiles.values())
+    scheduled = max(1, (kept_days + base.days_trimmed) * base.bins_per_day)
     return float(np.clip(1.0 - (base.intervals_used + base.intervals_trimmed) / scheduled,
                          *MISSING_RATE_BOUNDS))
 

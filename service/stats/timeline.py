@@ -46,8 +46,10 @@ Tests and their families
     (by Ville's inequality a likelihood ratio started at a fixed time exceeds ``e^S`` with
     probability at most ``e^-S``).
 ``repeated_value``
-    the same nonzero count ``k`` times in a row; ``log_p`` is the predictive probability that the
-    next ``k - 1`` present intervals repeat the first one's value exactly.
+    the same nonzero count ``k`` times in a row; ``log_p`` is the sum over the ``k - 1`` repeats
+    of the log probability that an interval repeats the nonzero count before it, whatever the
+    value (``thresholds.log_repeat_p``): a repetition is the evidence, not an unlikely value
+    (a level shift makes values unlikely, not repeated).
 ``over_capacity``
     a count above the physical cap (``capacity.capacity_cap``), whatever the baseline says.
 ``no_reports``
@@ -74,7 +76,7 @@ from service.domain import KINDS
 from service.stats.cusum import CUSUM_CEILING, CUSUM_RELEASE, held_cusum, increment_terms
 from service.stats.fixedpoint import FIX_SCALE, segment_sums, to_fixed
 from service.stats.tails import log_pmf_flat, log_tails_flat, zero_run_log_p
-from service.stats.thresholds import Thresholds, window_intervals
+from service.stats.thresholds import Thresholds, log_repeat_p, window_intervals
 
 __all__ = ["KINDS", "Evidence", "WarmState", "score_timeline"]
 
@@ -415,7 +417,9 @@ class _Timeline:
         s_high, alarm_high = self._side(sh * yp + oh, "s_high", i0, th.h_high)
         # repeated values
         rfirst = self.rep_first_p[p0:p1]
-        contrib = np.where(rfirst, 0, to_fixed(lpmf))
+        rep_lp = np.zeros(yp.size)  # each repeat adds log P(a repetition), whatever the value
+        rep_lp[~rfirst] = log_repeat_p(mp[~rfirst], ap[~rfirst])
+        contrib = np.where(rfirst, 0, to_fixed(rep_lp))
         rep_sum = segment_sums(contrib, rfirst, int(self._before("rep_sum", i0,
                                                                  self.warm.repeat_sum)))
         rep_len = self.rep_len_p[p0:p1]
