@@ -145,18 +145,128 @@ def _group_run(times: list[int], at: dict[int, dict[str, FlaggedInterval]]) -> G
     return times[0], times[-1], dets, expected, log_p
 
 
+# ----------------------------------------------------------------------------- shared shifts
+
+SHIFT_JOIN_S = 2 * 3600  # a group's shift episodes closer than this are one traffic event
+HIGH_KINDS = frozenset({"high_volume"})  # kinds that say extra traffic arrived
+
+
+class MemberAlert(Protocol):
+    """A live volume alert of one group member, as the alerts table stores it."""
+
+    @property
+    def detector_id(self) -> str | None: ...
+    @property
+    def kind(self) -> str: ...
+    @property
+    def start_s(self) -> int: ...
+    @property
+    def end_s(self) -> int: ...
+
+
+@dataclass(frozen=True)
+class SharedShift:
+    """A stretch where most of a group's detectors deviated the same way at once: one traffic
+    event for the group (never a detector or controller fault)."""
+
+    direction: str  # "low_volume" (traffic went missing) or "high_volume"
+    start_s: int  # start of the first member alert taking part
+    end_s: int  # start of the last anomalous interval of the last member alert
+    detectors: tuple[str, ...]  # the members that deviated
+
+    def covers(self, alert: MemberAlert) -> bool:
+        """True when ``alert`` deviates this way and overlaps the shift."""
+        return (shift_direction(alert.kind) == self.direction
+                and alert.start_s <= self.end_s and alert.end_s >= self.start_s)
+
+
+def shift_direction(kind: str) -> str | None:
+    """``low_volume`` for kinds saying traffic went missing, ``high_volume`` for extra
+    traffic, None for kinds that say nothing about traffic (frozen values, missing reports,
+    counts beyond capacity)."""
+    if kind in LOW_KINDS:
+        return "low_volume"
+    if kind in HIGH_KINDS:
+        return "high_volume"
+    return None
+
+
+def shared_shifts(alerts: Sequence[MemberAlert], *, n_members: int, step: int,
+                  join_s: int = SHIFT_JOIN_S) -> list[SharedShift]:
+    """Stretches where at least half of a group's ``n_members`` detectors (and at least two)
+    have live alerts of the same direction at once.
+
+    Several detectors of a group moving together point to traffic (an unlisted holiday,
+    weather, an event), not to each detector. Each member alert spans ``[start_s, end_s +
+    step)``; stretches of the same direction closer than ``join_s`` are one event, which then
+    reaches from the first to the last member alert taking part. ``step`` is the group's
+    shortest interval (seconds)."""
+    need = max(2, math.ceil(n_members / 2))
+    out: list[SharedShift] = []
+    for direction in ("low_volume", "high_volume"):
+        mine = [a for a in alerts if a.detector_id is not None
+                and shift_direction(a.kind) == direction]
+        # sweep: +1 at each alert's start, -1 after its end, per member (overlaps merged)
+        spans: dict[str, list[tuple[int, int]]] = {}
+        for a in sorted(mine, key=lambda a: a.start_s):
+            assert a.detector_id is not None
+            own = spans.setdefault(a.detector_id, [])
+            if own and a.start_s <= own[-1][1]:
+                own[-1] = (own[-1][0], max(own[-1][1], a.end_s + step))
+            else:
+                own.append((a.start_s, a.end_s + step))
+        events = sorted((t, d) for sp in spans.values() for lo, hi in sp
+                        for t, d in ((lo, 1), (hi, -1)))
+        active, opened = 0, None
+        together: list[tuple[int, int]] = []
+        for t, d in events:
+            active += d
+            if active >= need and opened is None:
+                opened = t
+            elif active < need and opened is not None:
+                together.append((opened, t))
+                opened = None
+        joined: list[list[int]] = []
+        for lo, hi in together:
+            if joined and lo - joined[-1][1] < join_s:
+                joined[-1][1] = max(joined[-1][1], hi)
+            else:
+                joined.append([lo, hi])
+        for lo, hi in joined:
+            part = [a for a in mine if a.start_s < hi and a.end_s + step > lo]
+            out.append(SharedShift(
+                direction=direction, start_s=min(a.start_s for a in part),
+                end_s=max(a.end_s for a in part),
+                detectors=tuple(sorted({a.detector_id for a in part
+                                        if a.detector_id is not None}))))
+    # events grown to their member alerts may now overlap: merge those of one direction
+    merged: list[SharedShift] = []
+    for sh in sorted(out, key=lambda s: (s.direction, s.start_s)):
+        last = merged[-1] if merged else None
+        if last is not None and last.direction == sh.direction and sh.start_s <= last.end_s:
+            merged[-1] = SharedShift(last.direction, last.start_s, max(last.end_s, sh.end_s),
+                                     tuple(sorted(set(last.detectors) | set(sh.detectors))))
+        else:
+            merged.append(sh)
+    return merged
+
+
 # ----------------------------------------------------------------------------- causes
 
 
-def cause_for(kind: str, *, others: Sequence[str], neighbor_kinds: dict[str, set[str]]) -> str:
+def cause_for(kind: str, *, others: Sequence[str], neighbor_kinds: dict[str, set[str]],
+              in_shared_shift: bool = False) -> str:
     """Likely cause of an episode from what the detector's group neighbors show meanwhile.
 
-    ``traffic``: at least one neighbor deviates the same way at the same time (several
-    detectors of one group together point to traffic). ``detector``: the neighbors look
-    normal. ``communications``: missing data, or values frozen on several detectors at once
-    (a stuck controller or polling fault). ``unknown``: no neighbors to compare."""
+    ``traffic``: the episode is part of a shift most of the group shows (``in_shared_shift``,
+    see ``shared_shifts``), or at least one neighbor deviates the same way at the same time
+    (several detectors of one group together point to traffic). ``detector``: the neighbors
+    look normal. ``communications``: missing data, or values frozen on several detectors at
+    once (a stuck controller or polling fault). ``unknown``: no neighbors to compare."""
     if kind == "no_reports":
         return "communications"
+    if in_shared_shift and shift_direction(kind) is not None:
+        return "traffic"
     if not others:
         return "unknown"
     if kind == "repeated_value":  # frozen together: the controller or its polling, not a loop
