@@ -271,7 +271,7 @@ def _measure(engine: Engine, sim: Simulated, *, budget: float
     weeks = (sim.end_s - sim.scored_start_s) / WEEK_S
     names = list(dict.fromkeys(sim.classes.values()))
     per = {n: ClassFigures(n, 0, 0.0, 0) for n in names}
-    for det, name in sim.classes.items():
+    for name in sim.classes.values():
         per[name].detectors += 1
         per[name].detector_weeks += weeks
     for r in alerts:
