@@ -11,7 +11,9 @@ new ``seq`` so pollers see it), never a second row.
 from __future__ import annotations
 
 from collections.abc import Sequence
+from datetime import datetime, timedelta
 from typing import Any
+from zoneinfo import ZoneInfo
 
 import orjson
 from sqlalchemy import Connection
@@ -101,17 +103,18 @@ def _write_shift_alerts(conn: Connection, writer: AlertWriter, group: str,
     The window reaches back until no shift starts before it, so a shift is always rebuilt
     from all its member alerts (its key, the start, never depends on where a pass began)."""
     subject = f"group:{group}"
+    timezone = next(iter(infos.values())).timezone
     pad = 2 * SHIFT_JOIN_S
     while True:
         rows = store.group_detector_alerts(conn, group, lo, hi + pad)
-        shifts = shared_shifts(rows, n_members=len(members), step=step)
-        first = min((sh.start_s for sh in shifts), default=lo)
+        shifts = shared_shifts(rows, n_members=len(members), step=step,
+                               day_bounds=lambda t: local_day_bounds(t, timezone))
+        first = min((min(sh.start_s, sh.day_lo_s) for sh in shifts), default=lo)
         if first >= lo:
             break
         lo = first - SHIFT_JOIN_S
     stored = {(r.kind, r.start_s): r for kind in ("low_volume", "high_volume")
               for r in store.alerts_from(conn, subject, lo, kind=kind)}
-    timezone = next(iter(infos.values())).timezone
     out: list[tuple[SharedShift, int]] = []
     for sh in shifts:
         values = _shift_values(sh, rows, group, step=step, hi=hi, timezone=timezone)
@@ -120,6 +123,15 @@ def _write_shift_alerts(conn: Connection, writer: AlertWriter, group: str,
         if not old.withdrawn:
             writer.withdraw(old, NOT_SHARED)
     return out
+
+
+def local_day_bounds(t: int, timezone: str) -> tuple[int, int]:
+    """The local day ``[midnight, next midnight)`` containing ``t`` (epoch seconds)."""
+    zone = ZoneInfo(timezone)
+    day = datetime.fromtimestamp(t, zone).date()
+    nxt = day + timedelta(days=1)
+    return (int(datetime(day.year, day.month, day.day, tzinfo=zone).timestamp()),
+            int(datetime(nxt.year, nxt.month, nxt.day, tzinfo=zone).timestamp()))
 
 
 def _shift_values(sh: SharedShift, rows: Sequence[Any], group: str, *, step: int, hi: int,
