@@ -21,6 +21,7 @@ from service.stats.tails import log1p_ratio, log_pmf
 
 __all__ = [
     "CUSUM_CEILING",
+    "CUSUM_HOLD_VEHICLES",
     "CUSUM_RELEASE",
     "cusum_alarm_rate",
     "cusum_arl",
@@ -35,6 +36,9 @@ __all__ = [
 # on a busy detector, about an hour on one seeing 2 vehicles per 5 min).
 CUSUM_CEILING = 1.25
 CUSUM_RELEASE = 0.5
+# An alarm is held for at most this many expected vehicles (then the CUSUM restarts from 0):
+# one or two intervals on a busy freeway lane, five hours on a road seeing 1 vehicle per 5 min.
+CUSUM_HOLD_VEHICLES = 60.0
 
 
 def increment_terms(mean, alpha, rho):
@@ -299,31 +303,40 @@ def cusum_limit(arl0: float, *, rho: float, mu: Any, alpha: Any = 0.0, states: i
 
 
 
-def held_cusum(z: np.ndarray, s0: int, limit: int, ceiling: int, release: int
-               ) -> tuple[np.ndarray, np.ndarray]:
+def held_cusum(z: np.ndarray, s0: int, limit: int, ceiling: int, release: int,
+               expected: np.ndarray | None = None, held0: int = 0, hold_cap: int | None = None
+               ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Integer CUSUM that holds its alarm: S = max(0, S + z) below ``limit``; once S reaches
     ``limit`` it stays in alarm, with S = min(ceiling, S + z), until it falls below
-    ``release``; then it restarts from 0.
+    ``release`` or the hold has lasted more than ``hold_cap`` expected vehicles (``expected``
+    per step, ``held0`` already held before the first step); then it restarts from 0.
 
     Holding keeps every interval of a lasting shift flagged (so the level posterior, which
-    leaves flagged intervals out, does not learn the fault as "today's level"), the release
-    level below the limit stops one noisy interval inside a fault from ending the alarm, the
-    ceiling bounds how long the alarm outlasts the shift, and restarting from 0 makes alarms a
-    renewal process with the Markov-chain ARL between them. Each regime is a Lindley recursion
-    (reflected at 0 below, at ``ceiling`` above) run vectorised between switches over stretches
-    that grow geometrically.
+    down-weights flagged intervals, does not learn the fault as "today's level" at once), the
+    release level below the limit stops one noisy interval inside a fault from ending the
+    alarm, the ceiling bounds how long the alarm outlasts the shift, the cap in expected
+    vehicles bounds how long one alarm can be held at all (a lasting fault alarms again at
+    once after the restart on a busy detector; a false alarm on a quiet one no longer lasts
+    the day), and restarting from 0 makes alarms a renewal process with the Markov-chain ARL
+    between them. Each regime is a Lindley recursion (reflected at 0 below, at ``ceiling``
+    above) run vectorised between switches over stretches that grow geometrically.
 
     Returns
     -------
-    (S, in_alarm) arrays.
+    (S, in_alarm, held) arrays; ``held`` is the expected vehicles held so far in the alarm
+    under way (0 outside an alarm).
     """
     n = z.size
     out = np.empty(n, dtype=np.int64)
     alarm = np.zeros(n, dtype=bool)
+    held = np.zeros(n, dtype=np.int64)
+    ex = np.zeros(n, dtype=np.int64) if expected is None else expected
+    cap = np.iinfo(np.int64).max if hold_cap is None else int(hold_cap)
     # s0 >= release with s0 < limit can only be a held alarm (searching states below limit
     # that reach release are not distinguishable otherwise): a negative s0 encodes it.
     holding = s0 < 0
     pos, s, step = 0, abs(int(s0)), 64
+    h_so_far = int(held0) if holding else 0
     while pos < n:
         hi = min(n, pos + step)
         w = np.cumsum(z[pos:hi])
@@ -333,21 +346,29 @@ def held_cusum(z: np.ndarray, s0: int, limit: int, ceiling: int, release: int
         else:  # in alarm: the gap U = ceiling - S is a Lindley recursion on -z
             gap = -w - np.minimum(np.minimum.accumulate(-w), -(ceiling - s))
             st = ceiling - gap
-            switch = np.flatnonzero(st < release)
+            so_far = h_so_far + np.cumsum(ex[pos:hi])
+            switch = np.flatnonzero((st < release) | (so_far > cap))
         if switch.size:
             a = int(switch[0])
             out[pos:pos + a + 1] = st[:a + 1]
             if holding:  # the alarm ends here: restart from zero
                 alarm[pos:pos + a] = True
+                held[pos:pos + a] = so_far[:a]
                 out[pos + a] = 0
                 holding = False
+                h_so_far = 0
             else:
                 alarm[pos + a] = True
+                held[pos + a] = ex[pos + a]
+                h_so_far = int(ex[pos + a])
                 holding = True
             s = int(out[pos + a])
             pos, step = pos + a + 1, 64
         else:
             out[pos:hi] = st
             alarm[pos:hi] = holding
+            if holding:
+                held[pos:hi] = so_far
+                h_so_far = int(so_far[-1])
             pos, s, step = hi, int(st[-1]), step * 2
-    return out, alarm
+    return out, alarm, held

@@ -174,3 +174,8 @@ def _pydantic_message(exc: ValidationError) -> str:
         where = ".".join(str(p) for p in err["loc"])
         parts.append(f"{where}: {err['msg']}" if where else err["msg"])
     return "; ".join(parts)
+
+
+def detector_count(conn: Connection) -> int:
+    """Registered detectors (the network size a network-wide false-alert cap is shared by)."""
+    return int(conn.execute(select(func.count()).select_from(models.detectors)).scalar_one())
