@@ -42,6 +42,13 @@ class Settings(BaseSettings):
     false_alerts_per_week: float = Field(
         0.05, gt=0, le=50, description="Expected false alerts per detector per week under normal traffic."
     )
+    network_false_alerts_per_day: float | None = Field(
+        None, gt=0, le=10_000,
+        description="Optional cap on expected false alerts per day across the whole network. "
+        "Unset: every detector spends false_alerts_per_week. Set: each detector's weekly budget "
+        "becomes min(false_alerts_per_week, 7 x cap / N), N the registered detectors rounded "
+        "up to a power of two (thresholds change only when the network doubles).",
+    )
     missing_grace_s: int = Field(
         600, ge=0, description="How long after an interval ends before it counts as missing (seconds)."
     )

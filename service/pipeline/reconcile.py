@@ -21,7 +21,9 @@ fewer than ``close_after`` intervals do not split an outage.
 from __future__ import annotations
 
 from collections.abc import Sequence
+from datetime import datetime, timedelta
 from typing import Any
+from zoneinfo import ZoneInfo
 
 import orjson
 from sqlalchemy import Connection
@@ -29,12 +31,15 @@ from sqlalchemy import Connection
 from service.stats.capacity import capacity_cap
 from service.stats.episodes import (
     NO_REPORTS_REOPEN_S,
+    SHIFT_JOIN_S,
     Episode,
     GroupRun,
+    SharedShift,
     cause_for,
     common_site,
     communications_runs,
     episodes_from_rows,
+    shared_shifts,
     summary_sentence,
 )
 from service.store import scoring as store
@@ -43,6 +48,7 @@ from service.store.scoring import AlertWriter, DetectorInfo
 
 NOT_SUPPORTED = "Withdrawn: later data no longer supports this alert."
 NOT_TOGETHER = "Withdrawn: later data shows the group was not offline together."
+NOT_SHARED = "Withdrawn: later data shows most of the group did not deviate together."
 
 
 def reconcile_detector(conn: Connection, writer: AlertWriter, info: DetectorInfo, *,
@@ -110,9 +116,12 @@ def refresh_group(conn: Connection, writer: AlertWriter, group: str, lo: int, hi
     in_service = [m for m in members if states[m].state == "in_service"]
     group_ids = _write_communications_alerts(conn, writer, group, in_service, states, infos,
                                              lo - pad, hi, step=step, close_after=close_after)
+    shift_ids = _write_shift_alerts(conn, writer, group, in_service, infos, lo - pad, hi,
+                                    step=step)
     for row in store.group_detector_alerts(conn, group, lo - pad, hi + pad):
         _refresh_detector_alert(conn, writer, row, infos[row.detector_id], members=members,
-                                group=group, group_ids=group_ids, slack_s=close_after * step)
+                                group=group, group_ids=group_ids, slack_s=close_after * step,
+                                shift_ids=shift_ids)
 
 
 GroupAlert = tuple[int, int, int, bool, frozenset[str]]  # start, last start, id, open, members
@@ -138,6 +147,72 @@ def _merge_runs(runs: Sequence[GroupRun], *, step: int, close_after: int) -> lis
         else:
             merged.append(run)
     return merged
+
+
+def _write_shift_alerts(conn: Connection, writer: AlertWriter, group: str,
+                        members: Sequence[str], infos: dict[str, DetectorInfo], lo: int,
+                        hi: int, *, step: int) -> list[tuple[SharedShift, int]]:
+    """The group's traffic alerts: one per shift most of its members show together (see
+    ``shared_shifts``), over member alerts ending at ``lo`` or later; each with its alert id.
+
+    The window reaches back until no shift starts before it, so a shift is always rebuilt
+    from all its member alerts (its key, the start, never depends on where a pass began)."""
+    subject = f"group:{group}"
+    timezone = next(iter(infos.values())).timezone
+    pad = 2 * SHIFT_JOIN_S
+    while True:
+        rows = store.group_detector_alerts(conn, group, lo, hi + pad)
+        shifts = shared_shifts(rows, n_members=len(members), step=step,
+                               day_bounds=lambda t: local_day_bounds(t, timezone))
+        first = min((min(sh.start_s, sh.day_lo_s) for sh in shifts), default=lo)
+        if first >= lo:
+            break
+        lo = first - SHIFT_JOIN_S
+    site = common_site([infos[m].label for m in members if m in infos])
+    stored = {(r.kind, r.start_s): r for kind in ("low_volume", "high_volume")
+              for r in store.alerts_from(conn, subject, lo, kind=kind)}
+    out: list[tuple[SharedShift, int]] = []
+    for sh in shifts:
+        values = _shift_values(sh, rows, group, step=step, hi=hi, timezone=timezone,
+                               site=site, group_size=len(members))
+        out.append((sh, writer.upsert(stored.pop((sh.direction, sh.start_s), None), values)))
+    for old in stored.values():
+        if not old.withdrawn:
+            writer.withdraw(old, NOT_SHARED)
+    return out
+
+
+def local_day_bounds(t: int, timezone: str) -> tuple[int, int]:
+    """The local day ``[midnight, next midnight)`` containing ``t`` (epoch seconds)."""
+    zone = ZoneInfo(timezone)
+    day = datetime.fromtimestamp(t, zone).date()
+    nxt = day + timedelta(days=1)
+    return (int(datetime(day.year, day.month, day.day, tzinfo=zone).timestamp()),
+            int(datetime(nxt.year, nxt.month, nxt.day, tzinfo=zone).timestamp()))
+
+
+def _shift_values(sh: SharedShift, rows: Sequence[Any], group: str, *, step: int, hi: int,
+                  timezone: str, site: str | None, group_size: int) -> dict[str, Any]:
+    subject = f"group:{group}"
+    part = [r for r in rows if sh.covers(r)]
+    closed = all(r.closed_s is not None for r in part)
+    observed = sum(r.observed or 0.0 for r in part)
+    expected = float(sum(r.expected or 0.0 for r in part))
+    log_p = float(min((r.log_p for r in part if r.log_p is not None), default=0.0))
+    ep = Episode(subject=subject, detector_id=None, kind=sh.direction, start_s=sh.start_s,
+                 end_s=sh.end_s, closed_s=max(r.closed_s for r in part) if closed else None,
+                 n_intervals=(sh.end_s - sh.start_s) // step + 1, observed=observed,
+                 expected=expected, log_p=log_p)
+    return {
+        "subject": subject, "detector_id": None, "group_id": group, "kind": sh.direction,
+        "cause": "traffic", "status": ep.status, "start_s": sh.start_s, "end_s": sh.end_s,
+        "closed_s": ep.closed_s, "observed": observed, "expected": expected, "log_p": log_p,
+        "n_intervals": ep.n_intervals, "baseline_id": None,
+        "detectors": orjson.dumps(list(sh.detectors)).decode(), "part_of": None,
+        "summary": summary_sentence(ep, "traffic", interval_s=step, timezone=timezone,
+                                    group=group, members=sh.detectors, group_size=group_size,
+                                    site=site),
+    }
 
 
 def _write_communications_alerts(conn: Connection, writer: AlertWriter, group: str,
@@ -190,16 +265,20 @@ def _group_values(run: GroupRun, group: str, *, step: int, closed: bool, timezon
 
 def _refresh_detector_alert(conn: Connection, writer: AlertWriter, row: Any,
                             info: DetectorInfo, *, members: Sequence[str], group: str,
-                            group_ids: Sequence[GroupAlert], slack_s: int) -> None:
+                            group_ids: Sequence[GroupAlert], slack_s: int,
+                            shift_ids: Sequence[tuple[SharedShift, int]] = ()) -> None:
     """A member's alert: its cause from the neighbors, its summary and the group alert it is
-    part of. A member's missing-data alert is hidden as part of a group outage it belongs to
-    while that outage is open, or when it closed having ended within ``slack_s`` of the
-    outage's end; one still open, or ended later, once the outage closed is shown on its own (the list and the detector's health agree)."""
+    part of: the traffic alert of a shift most of the group shows, or, for missing data, a
+    group outage it belongs to while that outage is open, or when it closed having ended
+    within ``slack_s`` of the outage's end; one still open, or ended later, once the outage
+    closed is shown on its own (the list and the detector's health agree)."""
     others = [m for m in members if m != row.detector_id]
     window_lo, window_hi = row.start_s - 2 * info.interval_s, row.end_s + 3 * info.interval_s
+    shift_id = next((alert_id for sh, alert_id in shift_ids if sh.covers(row)), None)
     cause = cause_for(row.kind, others=others,
-                      neighbor_kinds=store.neighbor_kinds(conn, others, window_lo, window_hi))
-    part_of = None
+                      neighbor_kinds=store.neighbor_kinds(conn, others, window_lo, window_hi),
+                      in_shared_shift=shift_id is not None)
+    part_of = shift_id
     if row.kind == "no_reports":
         part_of = next((alert_id for start, last, alert_id, is_open, dets in group_ids
                         if row.detector_id in dets and row.start_s <= last

@@ -32,6 +32,7 @@ from __future__ import annotations
 
 import dataclasses
 import logging
+import math
 import threading
 import time
 from collections.abc import Sequence
@@ -54,14 +55,14 @@ from service.stats.thresholds import Thresholds
 from service.stats.timeline import WarmState, score_timeline
 from service.store import scoring as store
 from service.store.baselines import BaselineCache, save_thresholds
-from service.store.detectors import return_due
+from service.store.detectors import detector_count, return_due
 from service.store.engine import read_transaction, write_transaction
 from service.store.scoring import Claim, DetectorInfo, mark_dirty
 from service.timefmt import LocalOffsets
 
 __all__ = [  # mark_dirty is the ingest hook (``after_store``) that feeds this loop
     "BLOCK_S", "WARMUP_S", "DetectorInfo", "Scored", "Scorer", "ScoringCache", "align_down",
-    "evaluate_piece", "mark_dirty", "plan_segments", "score_claims", "score_pass",
+    "detector_budget", "evaluate_piece", "mark_dirty", "plan_segments", "score_claims", "score_pass",
     "score_until_idle", "thresholds_for", "write_scored",
 ]
 
@@ -88,6 +89,21 @@ class ScoringCache:
 def align_down(t: int, interval_s: int, tz: str, offsets: LocalOffsets) -> int:
     """The start of the detector's interval (local grid) containing ``t``."""
     return t - (t + offsets.offset(tz, t)) % interval_s
+
+
+def detector_budget(settings: Settings, n_detectors: int) -> float:
+    """Each detector's weekly false-alert budget.
+
+    Without a network cap, ``false_alerts_per_week``. With ``network_false_alerts_per_day``
+    = C, at most ``7 C / N`` for N detectors (Bonferroni across detectors: the expected false
+    alerts of the network add up to at most C a day whatever N is). N is rounded up to a
+    power of two so thresholds are derived again only when the network doubles."""
+    budget = settings.false_alerts_per_week
+    cap = settings.network_false_alerts_per_day
+    if cap is None or n_detectors <= 0:
+        return budget
+    bucket = 1 << max(0, math.ceil(math.log2(n_detectors)))
+    return min(budget, 7.0 * cap / bucket)
 
 
 def thresholds_for(base: bl.Baseline, info: DetectorInfo, settings: Settings
@@ -154,6 +170,9 @@ def score_claims(conn: Connection, claims: Sequence[Claim], clock: float, settin
     exception): one detector's bad data or baseline never costs the others their pass. A
     database error is raised instead, as it may have spoiled the transaction for every claim."""
     infos = store.load_infos(conn, [c.detector_id for c in claims])
+    if settings.network_false_alerts_per_day is not None:
+        budget = detector_budget(settings, detector_count(conn))
+        settings = settings.model_copy(update={"false_alerts_per_week": budget})
     plans: list[tuple[Claim, DetectorInfo, list[Piece]]] = []
     failed: list[tuple[str, Exception]] = []
     for claim in claims:

@@ -41,6 +41,7 @@ Uncertainty
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from dataclasses import dataclass, field
 from typing import Any, NamedTuple
@@ -76,6 +77,7 @@ __all__ = [
     "FitResult",
     "daily_profile_summary",
     "fit_baseline",
+    "pool_alphas",
 ]
 
 OVERDISPERSION_LEVEL = 0.001  # combined p-value below which the profile is negative binomial
@@ -86,6 +88,17 @@ DAY_RATIO_FLOOR = math.log(1.5)  # ... and never closer than a factor 1.5 to the
 ROBUST_ROUNDS = 2  # trim-and-refit rounds before the final fit
 MIN_USABLE_DAYS = 3  # fewer usable days overall -> insufficient_history
 NO_LEVEL_LOG_VAR = 0.2**2  # own rule of thumb: level variance of a day type seen on no usable day
+# Floor on the day-level variance (day_alpha): a day-to-day coefficient of variation of 5 %.
+# Own rule of thumb (no source read): daily volumes of a road vary by more than this from one
+# like day to the next (weather, incidents, events), and an estimate of 0 from a few quiet
+# days would freeze today's level at the profile's.
+LEVEL_VAR_FLOOR = 0.05**2
+# Prior strength of the partial pooling of dispersion across day types, in days (day level)
+# and in intervals (interval level): a day type's own estimate and the pooled one weigh the
+# same when it has this much information of its own. Own choice: weekdays (about 40 days in
+# 8 weeks) keep mostly their own value, a weekend type (8 days) moves about halfway.
+DAY_ALPHA_PRIOR_DAYS = 10.0
+INTERVAL_ALPHA_PRIOR_CELLS = 500.0
 # ---------------------------------------------------------------------------------------------
 # Results
 # ---------------------------------------------------------------------------------------------
@@ -353,6 +366,9 @@ class _GroupFit:
     cell_keep: np.ndarray  # (D, n) bool, observed cells that entered the final fit
     d_eff: float
     smoothing: dict
+    hour_alpha: float = 0.0  # relative variance of hourly totals beyond interval_alpha
+    day_info: float = 0.0  # effective days of information about day_alpha
+    interval_info: float = 0.0  # effective intervals of information about interval_alpha
 
 
 def _zero_run_flags(Y, X, m, alpha):
@@ -552,20 +568,48 @@ def _fit_group(Y, X, weights, groups, scheduled, *, min_completeness, start=None
 
     wg = (weights * g_fit)[:, None] * (X * keep)
     test_int, test_day = _overdispersion_tests(prof, log_var, mu, X, keep, wg, exposures, disp)
-    return _group_result(prof, beta, log_var, edf, nu, disp, test_int, test_day, weights)
+    fit = _group_result(prof, beta, log_var, edf, nu, disp, test_int, test_day, weights)
+    hour_alpha = _hour_excess(Y, X, mu, disp)
+    smoothing = dict(fit.smoothing, hour_alpha=hour_alpha)
+    return dataclasses.replace(fit, hour_alpha=hour_alpha, smoothing=smoothing)
+
+
+def _hour_excess(Y, X, mu, disp: _RoundDispersion) -> float:
+    """Relative variance of hourly totals given the day's level, beyond the interval-level
+    excess: hour-to-hour swings shared by the intervals of an hour (moment estimate, NB2 form
+    ``sum((y - m)^2 - m) / sum(m^2)`` over day-hours, less ``interval_alpha / k`` for the
+    ``k`` intervals of an hour). The profile is an average over days of exactly these swings,
+    so its error is this over the effective number of days; the Hessian of the fit, which
+    takes intervals as independent, does not see it."""
+    D, n = Y.shape
+    if n % 24 or not disp.rows.any():
+        return 0.0
+    k = n // 24
+    rows = disp.rows
+    keep = disp.sel[rows]
+    y = (Y[rows] * keep).reshape(-1, 24, k).sum(axis=2)
+    g = np.where(disp.day_exp[rows] > 0, (Y[rows] * keep).sum(axis=1)
+                 / np.maximum(disp.day_exp[rows], 1e-300), 1.0)
+    m = ((mu[None, :] * X[rows] * keep).reshape(-1, 24, k).sum(axis=2)) * g[:, None]
+    m2 = float(np.sum(m * m))
+    if m2 <= 0:
+        return 0.0
+    # degrees of freedom: one day factor per day is fitted from the same 24 hours
+    alpha_hour = float(np.sum((y - m) ** 2 - m)) / m2 * 24.0 / 23.0
+    return max(0.0, alpha_hour - disp.interval_alpha / k)
 
 
 def _group_result(prof: ProfileFit, beta, log_var, edf, nu, disp: _RoundDispersion,
                   test_int, test_day, weights) -> _GroupFit:
-    """The group's fit with its distribution decided: an alpha whose own test is not
-    significant (at half the level) is 0; Bonferroni-combined p-value against the level."""
+    """The group's fit with its own dispersion estimates (never set to 0 by a pre-test: the
+    tests only label the distribution) and the information each estimate carries."""
     alpha_day, alpha_int = disp.day_alpha, disp.interval_alpha
     p_value = min(1.0, 2.0 * min(test_int.p_value, test_day.p_value))
-    keep_day = test_day.p_value < OVERDISPERSION_LEVEL / 2.0
-    keep_int = test_int.p_value < OVERDISPERSION_LEVEL / 2.0
     distribution = "negative_binomial" if p_value < OVERDISPERSION_LEVEL else "poisson"
     w_kept = weights[disp.rows]
     d_eff = float(w_kept.sum() ** 2 / np.sum(w_kept**2))
+    day_mean = float(np.mean(disp.m_day)) * disp.level if disp.m_day.size else 0.0
+    cell_mean = float(np.mean(disp.m_cells)) if disp.m_cells.size else 0.0
     smoothing = {
         "method": "per-bin log rates, cyclic second-difference Student-t prior",
         "prior_df": nu,
@@ -580,12 +624,14 @@ def _group_result(prof: ProfileFit, beta, log_var, edf, nu, disp: _RoundDispersi
         "day_alpha_estimate": alpha_day,
         "interval_alpha_estimate": alpha_int,
         "effective_days": d_eff,
+        "mean_day_expected": day_mean,
+        "mean_interval_expected": cell_mean,
     }
     return _GroupFit(
         beta=beta,
         log_var=log_var,
-        day_alpha=alpha_day if keep_day else 0.0,
-        interval_alpha=alpha_int if keep_int else 0.0,
+        day_alpha=alpha_day,
+        interval_alpha=alpha_int,
         distribution=distribution,
         p_value=p_value,
         p_day=test_day.p_value,
@@ -594,7 +640,72 @@ def _group_result(prof: ProfileFit, beta, log_var, edf, nu, disp: _RoundDispersi
         cell_keep=disp.sel,
         d_eff=d_eff,
         smoothing=smoothing,
+        day_info=max(d_eff - 1.0, 0.0),
+        interval_info=float(disp.y_cells.size),
     )
+
+
+def _information(dof: float, pooled: float, mean_count: float) -> float:
+    """Effective degrees of freedom of an NB2 alpha estimate from ``dof`` counts of mean
+    ``mean_count``: Var(alpha_hat) is about ``2 (alpha + 1/mean)^2 / dof`` (the squared
+    coefficient of variation of a count's excess), so in units of a noise-free estimate's
+    ``2 alpha^2 / dof`` the count noise ``1/mean`` discounts the information."""
+    if dof <= 0 or mean_count <= 0:
+        return 0.0
+    ratio = pooled / (pooled + 1.0 / mean_count) if pooled > 0 else 0.0
+    return dof * ratio * ratio
+
+
+def pool_alphas(estimates, dofs, means, *, prior_dof: float, floor: float = 0.0
+                ) -> tuple[float, list[float]]:
+    """Partial pooling of NB2 alpha estimates (empirical Bayes, information-weighted).
+
+    The pooled value is the mean of the estimates weighted by their information
+    (:func:`_information`); each estimate then moves toward it as the posterior mean under a
+    scaled inverse chi-square prior of ``prior_dof`` degrees of freedom centered on it
+    (Gelman et al., *Bayesian Data Analysis*, 3rd ed., sec. 3.3: the posterior scale is the
+    dof-weighted mean of prior and sample scales), and the result is inflated by
+    ``nu / (nu - 2)``, ``nu`` the posterior dof: the variance of the Student-t predictive
+    that an uncertain variance gives (BDA sec. 3.2), so a short history carries its
+    parameter uncertainty into the predictive distribution.
+
+    Parameters
+    ----------
+    estimates : sequence of float
+        Alpha estimates (>= 0).
+    dofs : sequence of float
+        Degrees of freedom of each (days - 1 for day level, intervals for interval level).
+    means : sequence of float
+        Mean count each estimate was made from (vehicles per day or per interval).
+    prior_dof : float
+        Strength of the pooled value as a prior, in the same units as ``dofs``.
+    floor : float
+        Lower bound of every result (and of the pooled value).
+
+    Returns
+    -------
+    pooled : float
+    shrunk : list of float
+        Each estimate's posterior value, in order.
+    """
+    est = [max(float(e), 0.0) for e in estimates]
+    if not est:
+        return floor, []
+    raw = [float(d) for d in dofs]
+    total = sum(raw)
+    pooled = sum(e * d for e, d in zip(est, raw, strict=True)) / total if total > 0 else 0.0
+    for _ in range(2):  # weights depend on the pooled value through the count noise
+        info = [_information(d, pooled, m) for d, m in zip(raw, means, strict=True)]
+        if sum(info) > 0:
+            pooled = sum(e * w for e, w in zip(est, info, strict=True)) / sum(info)
+    pooled = max(pooled, floor)
+    info = [_information(d, pooled, m) for d, m in zip(raw, means, strict=True)]
+    shrunk = []
+    for e, w in zip(est, info, strict=True):
+        nu = w + prior_dof
+        value = (w * e + prior_dof * pooled) / nu
+        shrunk.append(max(value * nu / max(nu - 2.0, 1.0), floor))
+    return pooled, shrunk
 
 
 def _wild_days(ratio, groups, candidates):
@@ -888,7 +999,7 @@ def _profile_of(name: str, fit: _GroupFit, *, fitted_from: str, expected, log_va
 def _own_profile(name: str, fit: _GroupFit) -> DayTypeProfile:
     """A day type's profile from its own fit."""
     return _profile_of(name, fit, fitted_from=name, expected=np.exp(fit.beta),
-                       log_var=fit.log_var + fit.day_alpha / fit.d_eff,
+                       log_var=fit.log_var + (fit.day_alpha + fit.hour_alpha) / fit.d_eff,
                        days_used=int(fit.day_keep.sum()), smoothing=dict(fit.smoothing))
 
 
@@ -912,8 +1023,42 @@ def _pooled_profile(name: str, pooled: _GroupFit, m: _DayMatrices, members, reas
     smoothing.update({"pooled_days": int(pooled.day_keep.sum()), "level": level,
                       "fallback_reason": reason})
     return _profile_of(name, pooled, fitted_from="pooled", expected=mu * level,
-                       log_var=pooled.log_var + pooled.day_alpha / pooled.d_eff + level_var,
+                       log_var=pooled.log_var + (pooled.day_alpha + pooled.hour_alpha)
+                       / pooled.d_eff + level_var,
                        days_used=int(mine.sum()), smoothing=smoothing)
+
+
+def _pooled_dispersion(fits: dict[int, _GroupFit], pooled: _GroupFit | None
+                       ) -> tuple[dict[int, _GroupFit], _GroupFit | None]:
+    """Day- and interval-level alphas pooled partially across the day types' own fits
+    (:func:`pool_alphas`); a day type on the pooled profile takes the pooled values. The
+    day level never falls below :data:`LEVEL_VAR_FLOOR`."""
+    groups = list(fits.values()) or ([pooled] if pooled is not None else [])
+    if not groups:
+        return fits, pooled
+    day_pool, day_alphas = pool_alphas(
+        [g.day_alpha for g in groups], [g.day_info for g in groups],
+        [g.smoothing.get("mean_day_expected", 0.0) for g in groups],
+        prior_dof=DAY_ALPHA_PRIOR_DAYS, floor=LEVEL_VAR_FLOOR)
+    int_pool, int_alphas = pool_alphas(
+        [g.interval_alpha for g in groups], [g.interval_info for g in groups],
+        [g.smoothing.get("mean_interval_expected", 0.0) for g in groups],
+        prior_dof=INTERVAL_ALPHA_PRIOR_CELLS)
+
+    def shrunk(g: _GroupFit, day: float, interval: float) -> _GroupFit:
+        smoothing = dict(g.smoothing, day_alpha_pooled=day_pool, interval_alpha_pooled=int_pool)
+        return dataclasses.replace(g, day_alpha=day, interval_alpha=interval,
+                                   smoothing=smoothing)
+
+    if fits:
+        fits = {code: shrunk(g, d, i) for (code, g), d, i
+                in zip(fits.items(), day_alphas, int_alphas, strict=True)}
+        if pooled is not None:
+            # the pooled fit's own day alpha also holds the day types' level differences
+            pooled = shrunk(pooled, max(day_pool, LEVEL_VAR_FLOOR), int_pool)
+    elif pooled is not None:
+        pooled = shrunk(pooled, day_alphas[0], int_alphas[0])
+    return fits, pooled
 
 
 def _assemble(m: _DayMatrices, *, interval_s, bins_per_day, min_days_per_type, min_completeness,
@@ -929,6 +1074,7 @@ def _assemble(m: _DayMatrices, *, interval_s, bins_per_day, min_days_per_type, m
             return _insufficient(
                 f"{int(pooled.day_keep.sum())} days left after trimming (need {need_days})")
 
+    fits, pooled = _pooled_dispersion(fits, pooled)
     profiles: dict[str, DayTypeProfile] = {}
     used = trimmed = days_trimmed = 0
     for code, name in enumerate(DAY_TYPES):

@@ -15,11 +15,13 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
+from scipy import linalg
 
 from service.stats.tails import log1p_ratio, log_pmf
 
 __all__ = [
     "CUSUM_CEILING",
+    "CUSUM_HOLD_VEHICLES",
     "CUSUM_RELEASE",
     "cusum_alarm_rate",
     "cusum_arl",
@@ -34,6 +36,9 @@ __all__ = [
 # on a busy detector, about an hour on one seeing 2 vehicles per 5 min).
 CUSUM_CEILING = 1.25
 CUSUM_RELEASE = 0.5
+# An alarm is held for at most this many expected vehicles (then the CUSUM restarts from 0):
+# one or two intervals on a busy freeway lane, five hours on a road seeing 1 vehicle per 5 min.
+CUSUM_HOLD_VEHICLES = 60.0
 
 
 def increment_terms(mean, alpha, rho):
@@ -139,15 +144,27 @@ def _arls(h: float, laws: _StepLaws, states: int) -> np.ndarray:
                                 minlength=k * (2 * t + 1))
     g += np.bincount(rows + hi.ravel(), weights=(pmf * frac).ravel(), minlength=k * (2 * t + 1))
     g = g.reshape(k, 2 * t + 1)  # g[:, t + d]: probability of moving d grid steps
-    below = np.cumsum(g, axis=1)
-    d = np.arange(t)[None, :] - np.arange(t)[:, None]
-    r = g[:, d + t]
-    r[:, :, 0] = below[:, t - np.arange(t)]  # at or below zero: back to S = 0
     # A whisker of extra absorption keeps I - R invertible when the mean is so small that the
     # chain almost never moves (ARL is then capped near 1e13 intervals, far beyond any budget).
-    r *= 1.0 - 1e-13
-    arl = np.linalg.solve(np.eye(t)[None, :, :] - r, np.ones((k, t, 1)))
-    return arl[:, 0, 0]
+    g *= 1.0 - 1e-13
+    below = np.cumsum(g, axis=1)
+    # R[i, j] = g[t + j - i] is Toeplitz except column 0 (at or below zero: back to S = 0),
+    # R = T + u e0': with (I - T) a = 1 and (I - T) b = u, Sherman-Morrison gives
+    # ARL = [(I - R)^-1 1]_0 = a_0 / (1 - b_0). Levinson recursion (scipy.linalg.solve_toeplitz)
+    # costs O(t^2) per chain instead of O(t^3); I - T is a nonsingular M-matrix (T is
+    # substochastic), so its leading minors are positive and the recursion does not break down.
+    idx = np.arange(t)
+    out = np.empty(k)
+    for j in range(k):
+        column = -g[j, t - idx]
+        column[0] += 1.0
+        row = -g[j, t + idx]
+        row[0] += 1.0
+        u = below[j, t - idx] - g[j, t - idx]
+        ab = linalg.solve_toeplitz((column, row), np.stack([np.ones(t), u], axis=1),
+                                   check_finite=False)
+        out[j] = ab[0, 0] / (1.0 - ab[0, 1])
+    return out
 
 
 def cusum_arl(h: float, *, rho: float, mu: Any, alpha: Any = 0.0, states: int = 400) -> np.ndarray:
@@ -255,7 +272,29 @@ def cusum_limit(arl0: float, *, rho: float, mu: Any, alpha: Any = 0.0, states: i
     lo = 1e-3
     if gap(lo) <= 0:
         return lo
-    hi = max(1.0, -target)
+    # log rate is close to linear in h (ARL grows about like e^h), so a secant from two
+    # points near Lorden's h = log(ARL0) usually lands within 1e-3 in three or four chain
+    # evaluations; a bracket and Brent's method take over otherwise.
+    h0, h1 = max(2e-3, 0.85 * -target), max(4e-3, -target)
+    g0, g1 = gap(h0), gap(h1)
+    known = {h0: g0, h1: g1}
+    for _ in range(6):
+        if g1 == g0:
+            break
+        h2 = h1 - g1 * (h1 - h0) / (g1 - g0)
+        if not lo < h2 < 4.0 * max(1.0, -target) or abs(h2 - h1) < 1e-3:
+            break
+        h0, g0, h1, g1 = h1, g1, h2, gap(h2)
+        known[h1] = g1
+    else:
+        h2 = h1
+    if abs(h2 - h1) < 1e-3 and g1 <= 0 and any(h < h1 and g > 0 for h, g in known.items()):
+        # the root lies within 1e-3 below h1 (the rate at h1 is within budget)
+        return float(h1)
+    below = [h for h, g in known.items() if g > 0] + [lo]
+    above = [h for h, g in known.items() if g <= 0]
+    lo = max(below)
+    hi = min(above) if above else max(1.0, -target, lo)
     while gap(hi) > 0:
         lo, hi = hi, 1.5 * hi
     # The rate is a step function of h for lattice increments (busy Poisson detectors), so the
@@ -264,31 +303,40 @@ def cusum_limit(arl0: float, *, rho: float, mu: Any, alpha: Any = 0.0, states: i
 
 
 
-def held_cusum(z: np.ndarray, s0: int, limit: int, ceiling: int, release: int
-               ) -> tuple[np.ndarray, np.ndarray]:
+def held_cusum(z: np.ndarray, s0: int, limit: int, ceiling: int, release: int,
+               expected: np.ndarray | None = None, held0: int = 0, hold_cap: int | None = None
+               ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Integer CUSUM that holds its alarm: S = max(0, S + z) below ``limit``; once S reaches
     ``limit`` it stays in alarm, with S = min(ceiling, S + z), until it falls below
-    ``release``; then it restarts from 0.
+    ``release`` or the hold has lasted more than ``hold_cap`` expected vehicles (``expected``
+    per step, ``held0`` already held before the first step); then it restarts from 0.
 
     Holding keeps every interval of a lasting shift flagged (so the level posterior, which
-    leaves flagged intervals out, does not learn the fault as "today's level"), the release
-    level below the limit stops one noisy interval inside a fault from ending the alarm, the
-    ceiling bounds how long the alarm outlasts the shift, and restarting from 0 makes alarms a
-    renewal process with the Markov-chain ARL between them. Each regime is a Lindley recursion
-    (reflected at 0 below, at ``ceiling`` above) run vectorised between switches over stretches
-    that grow geometrically.
+    down-weights flagged intervals, does not learn the fault as "today's level" at once), the
+    release level below the limit stops one noisy interval inside a fault from ending the
+    alarm, the ceiling bounds how long the alarm outlasts the shift, the cap in expected
+    vehicles bounds how long one alarm can be held at all (a lasting fault alarms again at
+    once after the restart on a busy detector; a false alarm on a quiet one no longer lasts
+    the day), and restarting from 0 makes alarms a renewal process with the Markov-chain ARL
+    between them. Each regime is a Lindley recursion (reflected at 0 below, at ``ceiling``
+    above) run vectorised between switches over stretches that grow geometrically.
 
     Returns
     -------
-    (S, in_alarm) arrays.
+    (S, in_alarm, held) arrays; ``held`` is the expected vehicles held so far in the alarm
+    under way (0 outside an alarm).
     """
     n = z.size
     out = np.empty(n, dtype=np.int64)
     alarm = np.zeros(n, dtype=bool)
+    held = np.zeros(n, dtype=np.int64)
+    ex = np.zeros(n, dtype=np.int64) if expected is None else expected
+    cap = np.iinfo(np.int64).max if hold_cap is None else int(hold_cap)
     # s0 >= release with s0 < limit can only be a held alarm (searching states below limit
     # that reach release are not distinguishable otherwise): a negative s0 encodes it.
     holding = s0 < 0
     pos, s, step = 0, abs(int(s0)), 64
+    h_so_far = int(held0) if holding else 0
     while pos < n:
         hi = min(n, pos + step)
         w = np.cumsum(z[pos:hi])
@@ -298,21 +346,29 @@ def held_cusum(z: np.ndarray, s0: int, limit: int, ceiling: int, release: int
         else:  # in alarm: the gap U = ceiling - S is a Lindley recursion on -z
             gap = -w - np.minimum(np.minimum.accumulate(-w), -(ceiling - s))
             st = ceiling - gap
-            switch = np.flatnonzero(st < release)
+            so_far = h_so_far + np.cumsum(ex[pos:hi])
+            switch = np.flatnonzero((st < release) | (so_far > cap))
         if switch.size:
             a = int(switch[0])
             out[pos:pos + a + 1] = st[:a + 1]
             if holding:  # the alarm ends here: restart from zero
                 alarm[pos:pos + a] = True
+                held[pos:pos + a] = so_far[:a]
                 out[pos + a] = 0
                 holding = False
+                h_so_far = 0
             else:
                 alarm[pos + a] = True
+                held[pos + a] = ex[pos + a]
+                h_so_far = int(ex[pos + a])
                 holding = True
             s = int(out[pos + a])
             pos, step = pos + a + 1, 64
         else:
             out[pos:hi] = st
             alarm[pos:hi] = holding
+            if holding:
+                held[pos:hi] = so_far
+                h_so_far = int(so_far[-1])
             pos, s, step = hi, int(st[-1]), step * 2
-    return out, alarm
+    return out, alarm, held

@@ -11,10 +11,12 @@ Overdispersion
     first two moments are those of NB2). The interval level is tested against Poisson by the
     Dean (1992) score statistic ``sum((y - m)^2 - y) / sqrt(2 sum m^2)`` with the Dean & Lawless
     (1989) leverage correction, the day level by the Pearson chi-square of the (rescaled) daily
-    totals, whose reference suits a few large counts. The distribution is "negative_binomial"
-    when the Bonferroni combination of the two one-sided p-values is below
-    :data:`service.stats.baseline.OVERDISPERSION_LEVEL`, otherwise "poisson" with both alphas
-    0; a component whose own test is not significant (at half that level) gets alpha 0.
+    totals, whose reference suits a few large counts. The tests only label the distribution
+    ("negative_binomial" when the Bonferroni combination of the two one-sided p-values is
+    below :data:`service.stats.baseline.OVERDISPERSION_LEVEL`, otherwise "poisson"): no alpha
+    is set to 0 for want of significance. The estimates are pooled partially across day
+    types (``service.stats.baseline.pool_alphas``) and the day level is floored at
+    :data:`service.stats.baseline.LEVEL_VAR_FLOOR`.
 """
 
 from __future__ import annotations

@@ -10,7 +10,7 @@ starts on the detector's grid; counts are vehicles per interval.
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from datetime import datetime
 from typing import Protocol
@@ -145,18 +145,155 @@ def _group_run(times: list[int], at: dict[int, dict[str, FlaggedInterval]]) -> G
     return times[0], times[-1], dets, expected, log_p
 
 
+# ----------------------------------------------------------------------------- shared shifts
+
+SHIFT_JOIN_S = 2 * 3600  # a group's shift episodes closer than this are one traffic event
+HIGH_KINDS = frozenset({"high_volume"})  # kinds that say extra traffic arrived
+VOLUME_KINDS = frozenset({"low_volume", "high_volume"})  # a day-long shift's on-and-off alerts
+
+
+class MemberAlert(Protocol):
+    """A live volume alert of one group member, as the alerts table stores it."""
+
+    @property
+    def detector_id(self) -> str | None: ...
+    @property
+    def kind(self) -> str: ...
+    @property
+    def start_s(self) -> int: ...
+    @property
+    def end_s(self) -> int: ...
+
+
+@dataclass(frozen=True)
+class SharedShift:
+    """A stretch where most of a group's detectors deviated the same way at once: one traffic
+    event for the group (never a detector or controller fault)."""
+
+    direction: str  # "low_volume" (traffic went missing) or "high_volume"
+    start_s: int  # start of the first member alert taking part
+    end_s: int  # start of the last anomalous interval of the last member alert
+    detectors: tuple[str, ...]  # the members that deviated
+    day_lo_s: int = 0  # the group's local day of the shift: volume alerts of the same
+    day_hi_s: int = 0  # direction that day belong to it (empty span: none)
+    together: tuple[tuple[int, int], ...] = ()  # [lo, hi) where most members deviated at once
+
+    def covers(self, alert: MemberAlert) -> bool:
+        """True when ``alert`` deviates this way and overlaps a stretch where most members
+        deviated at once, or is a volume alert (not a run of zeros) of the same direction
+        overlapping the shift or on its local day."""
+        if shift_direction(alert.kind) != self.direction:
+            return False
+        if any(alert.start_s < hi and alert.end_s >= lo for lo, hi in self.together):
+            return True
+        if alert.kind not in VOLUME_KINDS:
+            return False
+        return (alert.start_s <= self.end_s and alert.end_s >= self.start_s) \
+            or self.day_lo_s <= alert.start_s < self.day_hi_s
+
+
+def shift_direction(kind: str) -> str | None:
+    """``low_volume`` for kinds saying traffic went missing, ``high_volume`` for extra
+    traffic, None for kinds that say nothing about traffic (frozen values, missing reports,
+    counts beyond capacity)."""
+    if kind in LOW_KINDS:
+        return "low_volume"
+    if kind in HIGH_KINDS:
+        return "high_volume"
+    return None
+
+
+def _member_spans(alerts: Sequence[MemberAlert], step: int) -> list[tuple[int, int]]:
+    """Sweep events (+1 at a member's start, -1 after its end), a member's overlaps merged."""
+    spans: dict[str, list[tuple[int, int]]] = {}
+    for a in sorted(alerts, key=lambda a: a.start_s):
+        own = spans.setdefault(str(a.detector_id), [])
+        if own and a.start_s <= own[-1][1]:
+            own[-1] = (own[-1][0], max(own[-1][1], a.end_s + step))
+        else:
+            own.append((a.start_s, a.end_s + step))
+    return sorted((t, d) for sp in spans.values() for lo, hi in sp for t, d in ((lo, 1), (hi, -1)))
+
+
+def shared_shifts(alerts: Sequence[MemberAlert], *, n_members: int, step: int,
+                  join_s: int = SHIFT_JOIN_S,
+                  day_bounds: Callable[[int], tuple[int, int]] | None = None
+                  ) -> list[SharedShift]:
+    """Stretches where at least half of a group's ``n_members`` detectors (and at least two)
+    have live alerts of the same direction at once.
+
+    Several detectors of a group moving together point to traffic (an unlisted holiday,
+    weather, an event), not to each detector. Each member alert spans ``[start_s, end_s +
+    step)``; stretches of the same direction closer than ``join_s`` are one event. With
+    ``day_bounds`` (epoch seconds -> the group's local day ``[lo, hi)`` containing it), the
+    stretches of one direction on one local day are one event, and the members' volume
+    alerts of that direction that day belong to it: a day-long shift (an unlisted holiday)
+    makes the members alert on and off all day as their levels catch up, and those alerts are
+    the same traffic event, not detector faults. Runs of zeros join an event only where they
+    overlap it (a dead loop during an event is still its own alert). ``step`` is the group's
+    shortest interval (seconds)."""
+    need = max(2, math.ceil(n_members / 2))
+    out: list[SharedShift] = []
+    for direction in ("low_volume", "high_volume"):
+        mine = [a for a in alerts if a.detector_id is not None
+                and shift_direction(a.kind) == direction]
+        active, opened = 0, None
+        together: list[list[int]] = []
+        for t, d in _member_spans(mine, step):
+            active += d
+            if active >= need and opened is None:
+                opened = t
+            elif active < need and opened is not None:
+                if together and opened - together[-1][1] < join_s:
+                    together[-1][1] = t
+                else:
+                    together.append([opened, t])
+                opened = None
+        days: dict[tuple[int, int], list[list[int]]] = {}
+        for lo, hi in together:
+            day = day_bounds(lo) if day_bounds is not None else (lo, lo)
+            days.setdefault(day, []).append([lo, hi])
+        for (day_lo, day_hi), runs in days.items():
+            part = [a for a in mine if any(a.start_s < hi and a.end_s + step > lo
+                                           for lo, hi in runs)
+                    or (a.kind in VOLUME_KINDS and day_lo <= a.start_s < day_hi)]
+            out.append(SharedShift(
+                direction=direction, start_s=min(a.start_s for a in part),
+                end_s=max(a.end_s for a in part),
+                detectors=tuple(sorted({str(a.detector_id) for a in part})),
+                day_lo_s=day_lo, day_hi_s=day_hi,
+                together=tuple((lo, hi) for lo, hi in runs)))
+    # events grown to their member alerts may now overlap: merge those of one direction
+    merged: list[SharedShift] = []
+    for sh in sorted(out, key=lambda s: (s.direction, s.start_s)):
+        last = merged[-1] if merged else None
+        if last is not None and last.direction == sh.direction and sh.start_s <= last.end_s:
+            merged[-1] = SharedShift(last.direction, last.start_s, max(last.end_s, sh.end_s),
+                                     tuple(sorted(set(last.detectors) | set(sh.detectors))),
+                                     min(last.day_lo_s, sh.day_lo_s),
+                                     max(last.day_hi_s, sh.day_hi_s),
+                                     last.together + sh.together)
+        else:
+            merged.append(sh)
+    return merged
+
+
 # ----------------------------------------------------------------------------- causes
 
 
-def cause_for(kind: str, *, others: Sequence[str], neighbor_kinds: dict[str, set[str]]) -> str:
+def cause_for(kind: str, *, others: Sequence[str], neighbor_kinds: dict[str, set[str]],
+              in_shared_shift: bool = False) -> str:
     """Likely cause of an episode from what the detector's group neighbors show meanwhile.
 
-    ``traffic``: at least one neighbor deviates the same way at the same time (several
-    detectors of one group together point to traffic). ``detector``: the neighbors look
-    normal. ``communications``: missing data, or values frozen on several detectors at once
-    (a stuck controller or polling fault). ``unknown``: no neighbors to compare."""
+    ``traffic``: the episode is part of a shift most of the group shows (``in_shared_shift``,
+    see ``shared_shifts``), or at least one neighbor deviates the same way at the same time
+    (several detectors of one group together point to traffic). ``detector``: the neighbors
+    look normal. ``communications``: missing data, or values frozen on several detectors at
+    once (a stuck controller or polling fault). ``unknown``: no neighbors to compare."""
     if kind == "no_reports":
         return "communications"
+    if in_shared_shift and shift_direction(kind) is not None:
+        return "traffic"
     if not others:
         return "unknown"
     if kind == "repeated_value":  # frozen together: the controller or its polling, not a loop
@@ -258,11 +395,20 @@ def summary_sentence(ep: Episode, cause: str, *, interval_s: int, timezone: str,
     all, ``site`` the place they share (:func:`common_site`); ``cap_per_interval`` the count
     above which an interval is physically implausible (over-capacity alerts)."""
     span = _span(ep, interval_s, timezone)
-    if ep.detector_id is None:  # a group's communications alert
+    if ep.detector_id is None:  # a group's alert: an outage, or a shift most members show
         place = site or (f"group {group}" if group else ep.subject)
         of = f" of {group_size}" if group_size else ""
-        text = f"{place}: no reports from {len(members)}{of} detectors {span}"
-        phrase: str | None = "likely a controller or communications loss"
+        phrase: str | None
+        if ep.kind == "no_reports":
+            text = f"{place}: no reports from {len(members)}{of} detectors {span}"
+            phrase = "likely a controller or communications loss"
+        else:
+            observed, expected = ep.observed or 0.0, ep.expected
+            share = observed / expected if expected else 0.0
+            text = (f"{place}: {len(members)}{of} detectors counted {_vehicles(observed)} "
+                    f"{span}, {share:.0%} of the {expected:,.0f} expected")
+            way = "drop" if ep.kind in LOW_KINDS else "rise"
+            phrase = f"likely a traffic event: most detectors here {way} together"
     else:
         place = label or ep.detector_id
         head, tail = _observation(ep, interval_s, cap_per_interval)

@@ -16,9 +16,10 @@ conjugate posterior from the detector's recent intervals of the same local day (
 stretched back up to 6 h while it holds under 60 vehicles' worth of information), prior
 Gamma(shape ``1/day_alpha``, rate ``1/day_alpha``), each interval weighted by
 ``1 / (1 + (interval_alpha + exp(log_se**2) - 1) mu)`` (its information about ``D`` relative to a
-Poisson count; quasi-likelihood weighting), leaving out every interval already flagged and, once
-a flag is raised, the 30 minutes before it (the onset of a shift, scored before its alarm, is
-not learned as today's level). The local day bounds the window because ``D`` is a day factor;
+Poisson count; quasi-likelihood weighting), down-weighting to a quarter every interval already
+flagged and, once a flag is raised, the 30 minutes before it (the onset of a shift, scored
+before its alarm, is learned only slowly as today's level; dropped outright, a false alarm on a
+quiet detector could sustain itself all day). The local day bounds the window because ``D`` is a day factor;
 ``score_timeline`` takes the local day of each interval for that. Each interval is then judged
 against the posterior predictive negative binomial: mean
 ``mu * a/b`` and alpha ``(1 + 1/a) exp(log_se**2) (1 + interval_alpha) - 1`` (the relative
@@ -37,8 +38,9 @@ Tests and their families
     ``zero_counts``) and a one-sided CUSUM of the log-likelihood ratio for a rate ratio ``rho``
     (Lucas 1985; Poisson increment ``y ln rho - m (rho - 1)``, negative binomial increment
     ``y ln rho - (y + 1/alpha) ln((1 + alpha rho m)/(1 + alpha m))``). An alarm is held while the
-    shift lasts (statistic capped at 1.25 h, released below h/2, then restarted from zero), so
-    every interval of a lasting fault is flagged and kept out of the level. The decision limit h
+    shift lasts (statistic capped at 1.25 h, released below h/2 or after 60 expected vehicles of
+    hold, then restarted from zero), so every interval of a lasting fault is flagged and
+    down-weighted in the level. The decision limit h
     comes from the in-control alarm rate over the week's bins, each bin's average run length
     computed by the Markov chain of Brook & Evans (1972) (``cusum.cusum_alarm_rate`` explains why
     bins are not averaged into one matrix). The reported ``log_p`` is the smaller of the tail
@@ -46,8 +48,10 @@ Tests and their families
     (by Ville's inequality a likelihood ratio started at a fixed time exceeds ``e^S`` with
     probability at most ``e^-S``).
 ``repeated_value``
-    the same nonzero count ``k`` times in a row; ``log_p`` is the predictive probability that the
-    next ``k - 1`` present intervals repeat the first one's value exactly.
+    the same nonzero count ``k`` times in a row; ``log_p`` is the sum over the ``k - 1`` repeats
+    of the log probability that an interval repeats the nonzero count before it, whatever the
+    value (``thresholds.log_repeat_p``): a repetition is the evidence, not an unlikely value
+    (a level shift makes values unlikely, not repeated).
 ``over_capacity``
     a count above the physical cap (``capacity.capacity_cap``), whatever the baseline says.
 ``no_reports``
@@ -71,10 +75,16 @@ from typing import Any
 import numpy as np
 
 from service.domain import KINDS
-from service.stats.cusum import CUSUM_CEILING, CUSUM_RELEASE, held_cusum, increment_terms
+from service.stats.cusum import (
+    CUSUM_CEILING,
+    CUSUM_HOLD_VEHICLES,
+    CUSUM_RELEASE,
+    held_cusum,
+    increment_terms,
+)
 from service.stats.fixedpoint import FIX_SCALE, segment_sums, to_fixed
 from service.stats.tails import log_pmf_flat, log_tails_flat, zero_run_log_p
-from service.stats.thresholds import Thresholds, window_intervals
+from service.stats.thresholds import Thresholds, log_repeat_p, window_intervals
 
 __all__ = ["KINDS", "Evidence", "WarmState", "score_timeline"]
 
@@ -109,6 +119,8 @@ class WarmState:
     missing_len: int
     local_day: int | None = None  # local day of the last interval (None: days not given)
     day_age: int = 0  # intervals of that day seen so far
+    held_low: int = 0  # expected vehicles the lower CUSUM's alarm under way has been held
+    held_high: int = 0  # and the upper one's
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-safe dictionary of the state."""
@@ -130,6 +142,8 @@ class WarmState:
             "missing_len": self.missing_len,
             "local_day": self.local_day,
             "day_age": self.day_age,
+            "held_low": self.held_low,
+            "held_high": self.held_high,
         }
 
     @classmethod
@@ -153,6 +167,8 @@ class WarmState:
             missing_len=int(data["missing_len"]),
             local_day=None if data.get("local_day") is None else int(data["local_day"]),
             day_age=int(data.get("day_age", 0)),
+            held_low=int(data.get("held_low", 0)),
+            held_high=int(data.get("held_high", 0)),
         )
 
     @classmethod
@@ -271,8 +287,13 @@ def _missing_runs(present, warm: WarmState) -> np.ndarray:
     return miss_len
 
 
+# Flagged intervals (and the guard before a flag) count in the level at 1/4 of their weight:
+# dropping them outright let a false alarm on a quiet detector sustain itself for a day (the
+# level never learned the day's real level, so the held CUSUM never released).
+FLAG_SHIFT = 2
+
 _SCORED_KINDS = ("zero_counts", "low_volume", "high_volume", "repeated_value", "over_capacity")
-_STATE_KEYS = ("s_low", "s_high", "rep_sum", "zref", "zref_var")
+_STATE_KEYS = ("s_low", "s_high", "held_low", "held_high", "rep_sum", "zref", "zref_var")
 
 
 class _Timeline:
@@ -312,6 +333,7 @@ class _Timeline:
         self.res = {
             "m": np.zeros(n), "level": np.ones(n), "level_var": np.zeros(n),
             "s_low": np.zeros(n, np.int64), "s_high": np.zeros(n, np.int64),
+            "held_low": np.zeros(n, np.int64), "held_high": np.zeros(n, np.int64),
             "rep_sum": np.zeros(n, np.int64), "zref": np.zeros(n), "zref_var": np.zeros(n),
         }
         self.flag = {k: np.zeros(n, dtype=bool) for k in KINDS}
@@ -324,14 +346,17 @@ class _Timeline:
     def _before(self, key: str, i: int, warm_value):
         return warm_value if i == 0 else self.res[key][i - 1]
 
-    def _side(self, z, key: str, i0: int, h: float):
+    def _side(self, z, expected, key: str, held_key: str, i0: int, h: float):
         """One CUSUM side over the present intervals of a stretch; state is stored signed
-        (negative while an alarm is held)."""
+        (negative while an alarm is held), with the expected vehicles held so far."""
         s0 = self._before(key, i0, getattr(self.warm, key))
-        stat, alarm = held_cusum(to_fixed(z), int(s0), int(round(h * FIX_SCALE)),
-                                 int(round(h * CUSUM_CEILING * FIX_SCALE)),
-                                 int(round(h * CUSUM_RELEASE * FIX_SCALE)))
-        return np.where(alarm, -stat, stat), alarm
+        held0 = self._before(held_key, i0, getattr(self.warm, held_key))
+        stat, alarm, held = held_cusum(to_fixed(z), int(s0), int(round(h * FIX_SCALE)),
+                                       int(round(h * CUSUM_CEILING * FIX_SCALE)),
+                                       int(round(h * CUSUM_RELEASE * FIX_SCALE)),
+                                       to_fixed(expected), int(held0),
+                                       int(round(CUSUM_HOLD_VEHICLES * FIX_SCALE)))
+        return np.where(alarm, -stat, stat), alarm, held
 
     def _level(self, i0: int, i1: int, flags: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Level posterior mean and relative variance for intervals [i0, i1), given which
@@ -349,22 +374,27 @@ class _Timeline:
         top = i1 + hist
         qy, qm = self.qy[base:top], self.qm[base:top]
         keep = ~self._left_out(flags[base:top + g])[: top - base]
+        # left-out intervals still count, at 2**-FLAG_SHIFT of their weight (exact integers)
+        dy, dm = qy >> FLAG_SHIFT, qm >> FLAG_SHIFT
         cuy = np.concatenate([[0], np.cumsum(qy)])
         cum = np.concatenate([[0], np.cumsum(qm)])
-        csy = np.concatenate([[0], np.cumsum(np.where(keep, qy, 0))])
-        csm = np.concatenate([[0], np.cumsum(np.where(keep, qm, 0))])
+        cdy = np.concatenate([[0], np.cumsum(dy)])
+        cdm = np.concatenate([[0], np.cumsum(dm)])
+        csy = np.concatenate([[0], np.cumsum(np.where(keep, qy, dy))])
+        csm = np.concatenate([[0], np.cumsum(np.where(keep, qm, dm))])
         e = np.arange(i0, i1) + hist - base  # position of t in these cumulative arrays
         day_lo = e - np.minimum(self.day_age[i0:i1], w)
         early = max(0, base - g)  # flags this far back can still cut a recent part
         flagged_at = np.where(flags[early:top], np.arange(early - base, top - base), -g - 1)
         last_flag = np.maximum.accumulate(flagged_at)[e + base - early - 1]
-        rec_lo = np.maximum(np.maximum(e - g, last_flag + 1), day_lo)
-        rec_m = cum[e] - cum[rec_lo]
-        old_hi = np.maximum(e - g, day_lo)
+        old_hi = np.maximum(e - g, day_lo)  # the recent part is [old_hi, e)
+        rec_lo = np.maximum(old_hi, last_flag + 1)  # full weight from here on
+        rec_m = cum[e] - cum[rec_lo] + cdm[rec_lo] - cdm[old_hi]
+        rec_y = cuy[e] - cuy[rec_lo] + cdy[rec_lo] - cdy[old_hi]
         j = np.searchsorted(csm, csm[old_hi] + rec_m - self.information, side="right") - 1
         old_lo = np.clip(j, e - w, e - self.shortest)
         old_lo = np.minimum(np.maximum(old_lo, day_lo), old_hi)
-        sum_y = (cuy[e] - cuy[rec_lo] + csy[old_hi] - csy[old_lo]) / FIX_SCALE
+        sum_y = (rec_y + csy[old_hi] - csy[old_lo]) / FIX_SCALE
         sum_m = (rec_m + csm[old_hi] - csm[old_lo]) / FIX_SCALE
         prior = self.prior[i0:i1]
         has_prior = np.isfinite(prior)
@@ -411,11 +441,15 @@ class _Timeline:
         # CUSUMs on present intervals
         sl, ol = increment_terms(mp, ap, th.rho_low)
         sh, oh = increment_terms(mp, ap, th.rho_high)
-        s_low, alarm_low = self._side(sl * yp + ol, "s_low", i0, th.h_low)
-        s_high, alarm_high = self._side(sh * yp + oh, "s_high", i0, th.h_high)
+        s_low, alarm_low, held_low = self._side(sl * yp + ol, mp, "s_low", "held_low", i0,
+                                                th.h_low)
+        s_high, alarm_high, held_high = self._side(sh * yp + oh, mp, "s_high", "held_high", i0,
+                                                   th.h_high)
         # repeated values
         rfirst = self.rep_first_p[p0:p1]
-        contrib = np.where(rfirst, 0, to_fixed(lpmf))
+        rep_lp = np.zeros(yp.size)  # each repeat adds log P(a repetition), whatever the value
+        rep_lp[~rfirst] = log_repeat_p(mp[~rfirst], ap[~rfirst])
+        contrib = np.where(rfirst, 0, to_fixed(rep_lp))
         rep_sum = segment_sums(contrib, rfirst, int(self._before("rep_sum", i0,
                                                                  self.warm.repeat_sum)))
         rep_len = self.rep_len_p[p0:p1]
@@ -430,7 +464,7 @@ class _Timeline:
         over = self.over[pi]
         out = {
             "loc": loc, "m": m, "level": level, "level_var": level_var,
-            "s_low": s_low, "s_high": s_high,
+            "s_low": s_low, "s_high": s_high, "held_low": held_low, "held_high": held_high,
             "rep_sum": rep_sum, "zref": zref, "zref_var": zvar,
             "flags": {"zero_counts": f_zero, "low_volume": f_low, "high_volume": f_high,
                       "repeated_value": f_rep, "over_capacity": over},
@@ -457,6 +491,8 @@ class _Timeline:
         src = np.where(last >= 0, pos_of[np.maximum(last, 0)], -1)
         out = {}
         for key, warm_value in (("s_low", self.warm.s_low), ("s_high", self.warm.s_high),
+                                ("held_low", self.warm.held_low),
+                                ("held_high", self.warm.held_high),
                                 ("rep_sum", self.warm.repeat_sum),
                                 ("zref", self.warm.zero_level),
                                 ("zref_var", self.warm.zero_level_var)):
@@ -580,6 +616,8 @@ class _Timeline:
             missing_len=int(self.miss_len[-1]),
             local_day=None if self.local_day is None else int(self.local_day[-1]),
             day_age=int(self.day_age[-1]) + 1,
+            held_low=int(r["held_low"][-1]),
+            held_high=int(r["held_high"][-1]),
         )
 
 

@@ -325,3 +325,8 @@ def return_due(engine: Engine, *, now: float | None = None) -> list[str]:
                 service_since_s=until, service_until_s=None, updated_s=now))
             _unsuppress_open(conn, detector_id, now=now)
     return ids
+
+
+def detector_count(conn: Connection) -> int:
+    """Registered detectors (the network size a network-wide false-alert cap is shared by)."""
+    return int(conn.execute(select(func.count()).select_from(models.detectors)).scalar_one())

@@ -135,3 +135,21 @@ def test_a_group_without_shared_site_falls_back_to_its_code() -> None:
     text = summary_sentence(ep, "communications", interval_s=STEP, timezone=TZ, group="g1",
                             members=["a", "b"], group_size=5)
     assert text.startswith("group g1: no reports from 2 of 5 detectors for 20 min since ")
+
+
+@pytest.mark.parametrize(("kind", "observed", "share", "way"),
+                         [("low_volume", 480.0, "40%", "drop"), ("high_volume", 1800.0, "150%", "rise")])
+def test_group_traffic_shift_reads_as_one_event(kind: str, observed: float, share: str,
+                                                 way: str) -> None:
+    """A shift most of a group shows together (an unlisted holiday, weather) is one traffic
+    event for the place, with the members' total against their expected total."""
+    ep = Episode(subject="group:bra3-eb", detector_id=None, kind=kind, start_s=T0,
+                 end_s=T0 + 23 * STEP, closed_s=T0 + 24 * STEP, n_intervals=24,
+                 observed=observed, expected=1200.0, log_p=-12.0)
+    text = summary_sentence(ep, "traffic", interval_s=STEP, timezone=TZ, group="bra3-eb",
+                            members=["a", "b", "c"], group_size=3,
+                            site="Brannock Ave & Third St, EB approach")
+    assert text == (f"Brannock Ave & Third St, EB approach: 3 of 3 detectors counted "
+                    f"{observed:,.0f} vehicles for 2 h, Tue 17 Nov 11:10–13:10, {share} of the "
+                    f"1,200 expected; likely a traffic event: most detectors here {way} "
+                    "together.")
