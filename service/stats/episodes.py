@@ -148,6 +148,9 @@ def _group_run(times: list[int], at: dict[int, dict[str, FlaggedInterval]]) -> G
 # ----------------------------------------------------------------------------- shared shifts
 
 SHIFT_JOIN_S = 2 * 3600  # a group's shift episodes closer than this are one traffic event
+# Members of a group alert at once if their alerts lie within this of each other: on a shift
+# their CUSUMs reach the limit at different times (different volumes, different evidence).
+TOGETHER_S = 3600
 HIGH_KINDS = frozenset({"high_volume"})  # kinds that say extra traffic arrived
 VOLUME_KINDS = frozenset({"low_volume", "high_volume"})  # a day-long shift's on-and-off alerts
 
@@ -204,14 +207,16 @@ def shift_direction(kind: str) -> str | None:
 
 
 def _member_spans(alerts: Sequence[MemberAlert], step: int) -> list[tuple[int, int]]:
-    """Sweep events (+1 at a member's start, -1 after its end), a member's overlaps merged."""
+    """Sweep events (+1 at a member's start, -1 ``TOGETHER_S`` after its end), a member's
+    overlaps merged."""
     spans: dict[str, list[tuple[int, int]]] = {}
     for a in sorted(alerts, key=lambda a: a.start_s):
         own = spans.setdefault(str(a.detector_id), [])
+        end = a.end_s + step + TOGETHER_S
         if own and a.start_s <= own[-1][1]:
-            own[-1] = (own[-1][0], max(own[-1][1], a.end_s + step))
+            own[-1] = (own[-1][0], max(own[-1][1], end))
         else:
-            own.append((a.start_s, a.end_s + step))
+            own.append((a.start_s, end))
     return sorted((t, d) for sp in spans.values() for lo, hi in sp for t, d in ((lo, 1), (hi, -1)))
 
 
@@ -220,7 +225,7 @@ def shared_shifts(alerts: Sequence[MemberAlert], *, n_members: int, step: int,
                   day_bounds: Callable[[int], tuple[int, int]] | None = None
                   ) -> list[SharedShift]:
     """Stretches where at least half of a group's ``n_members`` detectors (and at least two)
-    have live alerts of the same direction at once.
+    have live alerts of the same direction at once (within ``TOGETHER_S`` of each other).
 
     Several detectors of a group moving together point to traffic (an unlisted holiday,
     weather, an event), not to each detector. Each member alert spans ``[start_s, end_s +
