@@ -8,7 +8,7 @@ import orjson
 from sqlalchemy import Engine, select
 
 from service.errors import NotFound
-from service.store import tables
+from service.store import quality, tables
 from service.store.engine import read_transaction
 from service.timefmt import format_utc
 
@@ -30,6 +30,9 @@ def counts_page_json(engine: Engine, detector_id: str, *, from_s: int | None,
     with read_transaction(engine) as conn:
         if conn.execute(select(d.c.detector_id).where(d.c.detector_id == detector_id)).first() is None:
             raise NotFound(f"unknown detector {detector_id!r}")
+        # Quality flags (service.store.quality): derived from evidence and alerts at read time.
+        lookup = quality.flag_lookup(conn, detector_id, from_s=from_s or 0,
+                                     until_s=until_s if until_s is not None else 1 << 62)
         q = select(c.c.start_s, c.c.count).where(c.c.detector_id == detector_id)
         if from_s is not None:
             q = q.where(c.c.start_s >= from_s)
@@ -39,7 +42,8 @@ def counts_page_json(engine: Engine, detector_id: str, *, from_s: int | None,
             q.order_by(c.c.start_s).limit(limit + 1))
         try:
             for start_s, count in result:
-                piece = b'{"start":"%s","count":%d},' % (format_utc(start_s).encode(), count)
+                piece = b'{"start":"%s","count":%d,"flag":"%s"},' % (
+                    format_utc(start_s).encode(), count, lookup.flag(start_s).encode())
                 if rows == limit or (rows and len(page) - data_start + len(piece) > max_bytes):
                     next_from = format_utc(start_s)
                     break

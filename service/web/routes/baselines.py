@@ -6,7 +6,7 @@ import time
 from datetime import date
 from typing import Annotated, Any, Literal
 
-from fastapi import APIRouter, Path, Query
+from fastapi import APIRouter, Path, Query, Response
 from fastapi.concurrency import run_in_threadpool
 
 from service.domain import DAY_TYPES, DETECTOR_ID_PATTERN
@@ -22,6 +22,7 @@ DetectorId = Annotated[str, Path(pattern=DETECTOR_ID_PATTERN)]
 # Dates a baseline day is served for: wide enough for any planning question, and inside what
 # time zone rules and epoch seconds handle without overflow.
 FIRST_DATE, LAST_DATE = date(1990, 1, 1), date(2100, 12, 31)
+WARNING_HEADER = "X-Baseline-Warning"  # a date far outside the fit window
 
 
 @router.post("/baselines/fit", response_model=FitResult)
@@ -62,7 +63,8 @@ def _baseline_date(text: str) -> date:
 
 @router.get("/detectors/{detector_id}/baseline", response_model=BaselineDay)
 def get_baseline(
-    detector_id: DetectorId, engine: EngineDep, _: ReadDep,
+    detector_id: DetectorId, engine: EngineDep, settings: SettingsDep, _: ReadDep,
+    response: Response,
     date_: Annotated[str | None, Query(
         alias="date", description=f"Local date YYYY-MM-DD, {FIRST_DATE}..{LAST_DATE}.")] = None,
     day_type: Annotated[Literal[DAY_TYPES] | None, Query()] = None,  # type: ignore[valid-type]
@@ -74,11 +76,13 @@ def get_baseline(
                                "day_type=weekday|saturday|sunday_holiday")
     day = _baseline_date(date_) if date_ is not None else None
     figures = baseline_day.baseline_day(engine, detector_id, day=day, day_type=day_type,
-                                        level=level)
+                                        level=level, validity_days=settings.baseline_validity_days)
+    if figures["warning"]:
+        response.headers[WARNING_HEADER] = figures["warning"]
     return {**figures, "date": date_}
 
 
 @router.get("/detectors/{detector_id}/baseline/profile", response_model=BaselineProfile)
 def get_profile(detector_id: DetectorId, engine: EngineDep, _: ReadDep) -> dict[str, Any]:
-    """Planners' figures: expected daily volume per day type, hourly volumes, peak hour, K-factor."""
+    """Expected daily volume per day type, hourly volumes and the busiest expected hour."""
     return baseline_day.profile(engine, detector_id)
