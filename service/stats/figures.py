@@ -431,6 +431,11 @@ def kth_highest(hourly_volume: Any, k: int = DESIGN_HOUR_RANK) -> np.ndarray:
     h = np.asarray(hourly_volume, dtype=float)
     if h.shape[0] < k:
         raise ValueError(f"need at least {k} hours, got {h.shape[0]}")
+    if h.ndim == 2 and h.shape[1] > 1:
+        # Only hours that can reach the top k in some column matter: those whose largest
+        # value reaches the k-th highest of the rows' smallest values.
+        floor = -np.partition(-h.min(axis=1), k - 1)[k - 1]
+        h = h[h.max(axis=1) >= floor]
     return -np.partition(-h, k - 1, axis=0)[k - 1]
 
 
@@ -577,12 +582,17 @@ class HourlyClean:
     def draws(self, n: int, rng: np.random.Generator) -> np.ndarray:
         """Joint draws of the clean hourly volumes, shape (n_hours, n): a gamma level per day
         shared by its hours, then a normal remainder per hour with the NB variance."""
-        g = rng.gamma(self.level_shape[:, None], 1.0 / self.level_rate[:, None],
-                      size=(self.level_shape.size, n))[self.day]
-        m = self.imputed_mean[:, None] * g
-        var = m + self.imputed_sq[:, None] * g * g
-        noise = rng.standard_normal(m.shape) * np.sqrt(var)
-        return self.observed[:, None] + np.maximum(m + noise, 0.0)
+        out = np.repeat(self.observed[:, None], n, axis=1)
+        rows = np.flatnonzero(self.imputed_mean > 0)  # only these vary
+        if rows.size:
+            days = self.day[rows]
+            g = rng.gamma(self.level_shape[:, None], 1.0 / self.level_rate[:, None],
+                          size=(self.level_shape.size, n))[days]
+            m = self.imputed_mean[rows, None] * g
+            var = m + self.imputed_sq[rows, None] * g * g
+            noise = rng.standard_normal(m.shape) * np.sqrt(var)
+            out[rows] += np.maximum(m + noise, 0.0)
+        return out
 
 
 def _interval(point: float, draws: np.ndarray, level: float) -> dict[str, float | None]:

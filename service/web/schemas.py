@@ -242,9 +242,9 @@ class VolumesPage(BaseModel):
 
 
 class FigureValue(BaseModel):
-    value: float | None
-    low: float | None
-    high: float | None
+    value: int | float | None = Field(description="Vehicles as whole numbers, ratios rounded.")
+    low: int | float | None
+    high: int | float | None
 
 
 class PeakHour(BaseModel):
