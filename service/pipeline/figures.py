@@ -153,3 +153,86 @@ def directional(engine: Engine, a_ids: list[str], b_ids: list[str], *, year: int
         raise ValidationFailed(f"directional distribution for {year}: {exc}") from None
     return {"year": year, "level": level, "d": _round(res["d"], 3),
             "peak_direction": res["peak_direction"], "method": METHODS["d"]}
+
+
+# ---------------------------------------------------------------------------- many detectors
+
+_worker_engine: Engine | None = None
+
+
+def _init_worker(settings_json: str) -> None:
+    global _worker_engine
+    from threadpoolctl import threadpool_limits
+
+    from service.config import Settings
+    from service.store.engine import make_worker_engine
+
+    threadpool_limits(1)  # one BLAS thread per worker process
+    _worker_engine = make_worker_engine(Settings.model_validate_json(settings_json))
+
+
+def figures_or_error(engine: Engine, detector_id: str, *, year: int) -> dict[str, Any]:
+    """The figures of one detector, or ``{"detector_id", "error"}`` saying why there are none."""
+    from service.errors import TallywardError
+
+    try:
+        return figures(engine, [detector_id], year=year)
+    except TallywardError as exc:
+        return {"subject": detector_id, "error": exc.message}
+
+
+def _chunk(detector_ids: list[str], year: int) -> list[dict[str, Any]]:
+    assert _worker_engine is not None
+    return [figures_or_error(_worker_engine, d, year=year) for d in detector_ids]
+
+
+def figures_many(settings: Any, engine: Engine, detector_ids: list[str], *, year: int,
+                 workers: int = 1, progress: Any = None) -> list[dict[str, Any]]:
+    """Figures of many detectors over ``workers`` processes, in detector order; a detector
+    without figures (no baseline, no counts that year) carries an ``error`` instead."""
+    from concurrent.futures import ProcessPoolExecutor, as_completed
+
+    check_year(year)
+    out: list[dict[str, Any]] = []
+    if workers <= 1 or len(detector_ids) < 4:
+        for det in detector_ids:
+            out.append(figures_or_error(engine, det, year=year))
+            if progress:
+                progress(1)
+    else:
+        size = max(1, min(20, len(detector_ids) // (workers * 4) or 1))
+        chunks = [detector_ids[i:i + size] for i in range(0, len(detector_ids), size)]
+        with ProcessPoolExecutor(max_workers=workers, initializer=_init_worker,
+                                 initargs=(settings.model_dump_json(),)) as pool:
+            for fut in as_completed([pool.submit(_chunk, c, year) for c in chunks]):
+                part = fut.result()
+                out.extend(part)
+                if progress:
+                    progress(len(part))
+    order = {d: i for i, d in enumerate(detector_ids)}
+    out.sort(key=lambda r: order[r["subject"]])
+    return out
+
+
+REPORT_COLUMNS = ("detector_id", "year", "aadt", "aadt_low", "aadt_high", "adt", "hv30",
+                  "k30", "k30_low", "k30_high", "imputed_share", "days_complete",
+                  "days_with_data", "meets_rule", "am_peak", "am_phf", "pm_peak", "pm_phf",
+                  "error")
+
+
+def report_row(fig: dict[str, Any]) -> dict[str, Any]:
+    """One flat CSV row of a detector's figures (weekday peaks)."""
+    if "error" in fig:
+        return {"detector_id": fig["subject"], "error": fig["error"]}
+    wk = (fig.get("peak_hours") or {}).get("weekday") or {}
+    am, pm = wk.get("am") or {}, wk.get("pm") or {}
+    return {"detector_id": fig["subject"], "year": fig["year"],
+            "aadt": fig["aadt"]["value"], "aadt_low": fig["aadt"]["low"],
+            "aadt_high": fig["aadt"]["high"], "adt": fig["adt"]["value"],
+            "hv30": fig["hv30"]["value"], "k30": fig["k30"]["value"],
+            "k30_low": fig["k30"]["low"], "k30_high": fig["k30"]["high"],
+            "imputed_share": fig["imputed_share"], "days_complete": fig["days"]["complete"],
+            "days_with_data": fig["days"]["with_data"],
+            "meets_rule": fig["sufficiency"]["meets_rule"], "am_peak": am.get("start"),
+            "am_phf": am.get("phf"), "pm_peak": pm.get("start"), "pm_phf": pm.get("phf"),
+            "error": None}
