@@ -31,8 +31,8 @@ Imputation
 
 from __future__ import annotations
 
-from dataclasses import dataclass
 from collections.abc import Sequence
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -43,6 +43,7 @@ __all__ = [
     "aashto_aadt",
     "annual_figures",
     "CleanIntervals",
+    "DayLevels",
     "bucket_totals",
     "calendar_of_days",
     "clean_intervals",
@@ -61,6 +62,7 @@ DESIGN_HOUR_RANK = 30  # the 30th highest hour of the year (common practice, US 
 LEVEL_WINDOW_DAYS = 14  # neighbors each side that set a day's prior level
 MIN_DAY_ALPHA = 0.002  # floor of the day-level variance: a Poisson fit still has some
 MIN_PRIOR_EXPECTED = 50.0  # vehicles: less expected volume nearby and the window widens
+SEASON_REL_VAR = 0.1**2  # own rule: a month far from data may sit +-10 % off the period's level
 AM_END_S = 12 * 3600  # AM peak hours end by local noon; PM ones start at or after it
 MONTHS, WEEKDAYS = 12, 7
 
@@ -103,10 +105,38 @@ def peak_hour_factor(quarter_volumes: Any) -> np.ndarray:
 # ---------------------------------------------------------------------------------------------
 
 
+@dataclass(frozen=True)
+class DayLevels:
+    """Each day's level (observed / baseline-expected volume), :func:`day_levels`.
+
+    Attributes
+    ----------
+    shape, rate : numpy.ndarray, shape (n_days,)
+        Gamma posterior of the level given its prior mean: mean ``shape / rate``.
+    shared_sd : numpy.ndarray, shape (n_days,)
+        Log-scale standard deviation of the error of the prior mean, as it reaches the day's
+        level; shared by the days of one ``block`` (they lean on the same neighbors).
+    block : numpy.ndarray of int, shape (n_days,)
+        Days whose prior means share an error: windows of neighbors, and one block for the
+        days far from any data (they share the period's level).
+    """
+
+    shape: np.ndarray
+    rate: np.ndarray
+    shared_sd: np.ndarray
+    block: np.ndarray
+
+
 def day_levels(observed: Any, expected_observed: Any, *, day_alpha: Any,
-               expected_day: Any | None = None, window_days: int = LEVEL_WINDOW_DAYS
-               ) -> tuple[np.ndarray, np.ndarray]:
-    """Posterior gamma of each day's level (observed / baseline-expected volume).
+               window_days: int = LEVEL_WINDOW_DAYS) -> DayLevels:
+    """Each day's level with its uncertainty, from its own counts and its neighbors'.
+
+    The prior mean is the ratio of observed to expected volume over the ``window_days``
+    neighbors each side (the season), or over the whole period when they expect fewer than
+    :data:`MIN_PRIOR_EXPECTED` vehicles; the day's own spread around it is ``day_alpha`` (plus
+    :data:`SEASON_REL_VAR`, shared by its block, for a day far from data). That ratio is an average of ``n_eff``
+    days, so its own error (relative variance ``day_alpha / n_eff``) is kept apart, shared by
+    the days leaning on it.
 
     Parameters
     ----------
@@ -116,16 +146,12 @@ def day_levels(observed: Any, expected_observed: Any, *, day_alpha: Any,
         Baseline-expected vehicles over those same intervals.
     day_alpha : array_like, shape (n_days,) or scalar
         Relative variance of a day's level around its neighbors' (the baseline's day_alpha).
-    expected_day : array_like, shape (n_days,), optional
-        Baseline-expected vehicles over the whole day (default: ``expected_observed``).
     window_days : int
-        Neighbors on each side whose ratio sets the prior mean; widened to the whole period
-        when they expect fewer than :data:`MIN_PRIOR_EXPECTED` vehicles.
+        Neighbors on each side.
 
     Returns
     -------
-    shape, rate : numpy.ndarray
-        Gamma posterior of the level: mean ``shape / rate``, variance ``shape / rate**2``.
+    DayLevels
     """
     y = np.asarray(observed, dtype=float)
     e = np.asarray(expected_observed, dtype=float)
@@ -133,34 +159,32 @@ def day_levels(observed: Any, expected_observed: Any, *, day_alpha: Any,
     n = y.size
     cy = np.concatenate(([0.0], np.cumsum(y)))
     ce = np.concatenate(([0.0], np.cumsum(e)))
+    ce2 = np.concatenate(([0.0], np.cumsum(e * e)))
     idx = np.arange(n)
     lo = np.maximum(idx - window_days, 0)
     hi = np.minimum(idx + window_days + 1, n)
     near_y = cy[hi] - cy[lo] - y  # the day's own intervals update the prior, not set it
     near_e = ce[hi] - ce[lo] - e
-    ce2 = np.concatenate(([0.0], np.cumsum(e * e)))
     near_e2 = ce2[hi] - ce2[lo] - e * e
-    with np.errstate(invalid="ignore", divide="ignore"):
-        n_eff = np.where(near_e2 > 0, near_e**2 / near_e2, 1.0)  # neighbor days, effectively
-    total_y, total_e = float(cy[-1]), float(ce[-1])
+    total_y, total_e, total_e2 = float(cy[-1]), float(ce[-1]), float(ce2[-1])
     overall = (total_y + 1.0) / (total_e + 1.0) if total_e > 0 else 1.0
-    with np.errstate(invalid="ignore", divide="ignore"):
-        prior_mean = np.where(near_e >= MIN_PRIOR_EXPECTED, near_y / near_e, overall)
-    prior_mean = np.maximum(prior_mean, 1e-3)
-    # The neighbors' ratio is itself an average of n_eff day levels: its error adds to the
-    # day's own spread around it, and it is shared by the unobserved days of the window (their
-    # errors add up, not out), so it counts once per such day.
-    full = e if expected_day is None else np.asarray(expected_day, dtype=float)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        unobserved = np.where(full > 0, np.clip(1.0 - e / full, 0.0, 1.0), 0.0)
-    cu = np.concatenate(([0.0], np.cumsum(unobserved)))
-    sharing = np.maximum(cu[hi] - cu[lo], 1.0)
-    shape0 = 1.0 / (alpha * (1.0 + sharing / np.maximum(n_eff, 1.0)))
-    # A day far from any data knows its level only through the whole period's: add the spread
-    # of levels across the season (own rule: the prior is twice as wide there).
     far = near_e < MIN_PRIOR_EXPECTED
-    shape0 = np.where(far, shape0 / 2.0, shape0)
-    return shape0 + y, shape0 / prior_mean + e
+    with np.errstate(invalid="ignore", divide="ignore"):
+        prior_mean = np.where(far, overall, near_y / near_e)
+        n_eff = np.where(far, total_e**2 / total_e2 if total_e2 > 0 else 1.0,
+                         near_e**2 / near_e2)  # days behind the prior mean, effectively
+    prior_mean = np.maximum(prior_mean, 1e-3)
+    n_eff = np.maximum(np.nan_to_num(n_eff, nan=1.0), 1.0)
+    shape0 = 1.0 / alpha
+    rate0 = shape0 / prior_mean
+    shape, rate = shape0 + y, rate0 + e
+    weight = rate0 / rate  # how much the day's level rests on the prior mean
+    # A day far from data takes the period's level, which misses its season: that error is
+    # shared by its block of neighbors (own rule: SEASON_REL_VAR per block of 2w+1 days).
+    shared_var = alpha / n_eff + np.where(far, SEASON_REL_VAR, 0.0)
+    shared_sd = weight * np.sqrt(np.log1p(shared_var))
+    block = idx // (2 * window_days + 1)
+    return DayLevels(shape=shape, rate=rate, shared_sd=shared_sd, block=block.astype(np.intp))
 
 
 def bucket_totals(bucket: Any, *, observed: Any, imputed_mean: Any, imputed_var: Any,
@@ -241,6 +265,8 @@ class CleanIntervals:
         Day index of each interval.
     level_shape, level_rate : numpy.ndarray, shape (n_days,)
         Gamma posterior of each day's level.
+    level_shared_sd, level_block : numpy.ndarray, shape (n_days,)
+        The shared error of the days' prior means (:class:`DayLevels`).
     """
 
     observed: np.ndarray
@@ -253,6 +279,8 @@ class CleanIntervals:
     day: np.ndarray
     level_shape: np.ndarray
     level_rate: np.ndarray
+    level_shared_sd: np.ndarray
+    level_block: np.ndarray
 
     @property
     def volume(self) -> np.ndarray:
@@ -291,15 +319,16 @@ def clean_intervals(count: Any, usable: Any, *, mu: Any, interval_alpha: Any, da
     y_day = np.add.reduceat(y, first) if d.size else np.zeros(0)
     e_day = np.add.reduceat(np.where(ok, m, 0.0), first) if d.size else np.zeros(0)
     alpha_day = np.asarray(day_alpha, dtype=float)[first] if d.size else np.zeros(0)
-    full_day = np.add.reduceat(m, first) if d.size else np.zeros(0)
-    shape, rate = day_levels(y_day, e_day, day_alpha=alpha_day, expected_day=full_day)
+    levels = day_levels(y_day, e_day, day_alpha=alpha_day)
+    shape, rate = levels.shape, levels.rate
     level = (shape / rate)[d]
     imp = ~ok
     mean = np.where(imp, m * level, 0.0)
     return CleanIntervals(observed=y, imputed=imp, imputed_mean=mean,
                           imputed_var=np.where(imp, mean + ia * mean**2, 0.0),
-                          level_rel_var=(1.0 / shape)[d], mu=m, interval_alpha=ia, day=d,
-                          level_shape=shape, level_rate=rate)
+                          level_rel_var=(1.0 / shape + np.expm1(levels.shared_sd**2))[d],
+                          mu=m, interval_alpha=ia, day=d, level_shape=shape, level_rate=rate,
+                          level_shared_sd=levels.shared_sd, level_block=levels.block)
 
 
 def calendar_of_days(local_day: Any) -> tuple[np.ndarray, np.ndarray]:
@@ -344,6 +373,7 @@ def hourly_clean(clean: CleanIntervals, *, hour_key: Any, month: Any, day_of_wee
         imputed_sq=sum_(np.where(imp, clean.interval_alpha * clean.mu**2, 0.0), first),
         day=clean.day[first], intervals=n_all, imputed_intervals=n_imp,
         level_shape=clean.level_shape, level_rate=clean.level_rate,
+        level_shared_sd=clean.level_shared_sd, level_block=clean.level_block,
         month=np.asarray(month), day_of_week=np.asarray(day_of_week),
         complete_day=day_imp == 0, observed_day=day_imp < day_n)
 
@@ -554,6 +584,8 @@ class HourlyClean:
         Scheduled and imputed intervals in the hour.
     level_shape, level_rate : numpy.ndarray, shape (n_days,)
         Gamma posterior of each day's level (:func:`day_levels`).
+    level_shared_sd, level_block : numpy.ndarray, shape (n_days,)
+        The shared error of the days' prior means (:class:`DayLevels`).
     month, day_of_week : numpy.ndarray of int, shape (n_days,)
         Month 1..12 and Monday = 0 .. Sunday = 6 of each local day.
     complete_day : numpy.ndarray of bool, shape (n_days,)
@@ -570,6 +602,8 @@ class HourlyClean:
     imputed_intervals: np.ndarray
     level_shape: np.ndarray
     level_rate: np.ndarray
+    level_shared_sd: np.ndarray
+    level_block: np.ndarray
     month: np.ndarray
     day_of_week: np.ndarray
     complete_day: np.ndarray
@@ -581,13 +615,17 @@ class HourlyClean:
 
     def draws(self, n: int, rng: np.random.Generator) -> np.ndarray:
         """Joint draws of the clean hourly volumes, shape (n_hours, n): a gamma level per day
-        shared by its hours, then a normal remainder per hour with the NB variance."""
+        shared by its hours (times a log-normal error of its prior mean shared by its block),
+        then a normal remainder per hour with the NB variance."""
         out = np.repeat(self.observed[:, None], n, axis=1)
         rows = np.flatnonzero(self.imputed_mean > 0)  # only these vary
         if rows.size:
             days = self.day[rows]
             g = rng.gamma(self.level_shape[:, None], 1.0 / self.level_rate[:, None],
-                          size=(self.level_shape.size, n))[days]
+                          size=(self.level_shape.size, n))
+            sd = self.level_shared_sd[:, None]
+            shared = rng.standard_normal((int(self.level_block.max()) + 1, n))[self.level_block]
+            g = (g * np.exp(shared * sd - 0.5 * sd * sd))[days]
             m = self.imputed_mean[rows, None] * g
             var = m + self.imputed_sq[rows, None] * g * g
             noise = rng.standard_normal(m.shape) * np.sqrt(var)
@@ -655,8 +693,10 @@ def annual_figures(members: Sequence[HourlyClean], *, level: float = 0.95, draws
     aashto = aashto_aadt(point_d, month=clean.month, day_of_week=clean.day_of_week)
     aashto_draws = aashto_aadt(draw_d, month=clean.month, day_of_week=clean.day_of_week)
     adt, adt_draws = point_d.mean(), draw_d.mean(axis=0)
-    hv = kth_highest(point_h, k)
     hv_draws = kth_highest(draw_h, k)
+    # An order statistic of imputed hours is not the order statistic of their means (the
+    # means have no spread): its estimate is the median over the draws.
+    hv = float(np.median(hv_draws)) if np.any(draw_h != point_h[:, None]) else kth_highest(point_h, k)
     aadt = float(aashto.aadt)
     with np.errstate(invalid="ignore", divide="ignore"):
         k_draws = hv_draws / aashto_draws.aadt
@@ -698,6 +738,8 @@ def directional_figures(direction_a: Sequence[HourlyClean], direction_b: Sequenc
     pb, db = _combined(direction_b, draws, rng)
     if pa.shape != pb.shape:
         raise ValueError("the two directions must cover the same local hours")
-    d, a_peak = directional_distribution(pa, pb, k=k)
+    _, a_peak = directional_distribution(pa, pb, k=k)
     d_draws, _ = directional_distribution(da, db, k=k)
-    return {"d": _interval(float(d), d_draws, level), "peak_direction": "a" if a_peak else "b"}
+    # like the 30th highest hour, D is taken over the draws (the median), not their means
+    d = float(np.median(d_draws))
+    return {"d": _interval(d, d_draws, level), "peak_direction": "a" if a_peak else "b"}

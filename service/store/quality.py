@@ -116,13 +116,12 @@ def count_arrays(conn: Connection, detector_id: str, *, from_s: int, until_s: in
                  ) -> tuple[np.ndarray, np.ndarray]:
     """Stored starts (epoch seconds) and counts of one detector in ``[from_s, until_s)``."""
     c = tables.counts
-    rows = conn.execute(select(c.c.start_s, c.c.count)
-                        .where(c.c.detector_id == detector_id, c.c.start_s >= from_s,
-                               c.c.start_s < until_s).order_by(c.c.start_s)).all()
-    if not rows:
-        return np.zeros(0, dtype=np.int64), np.zeros(0, dtype=np.int64)
-    arr = np.asarray(rows, dtype=np.int64)
-    return arr[:, 0].copy(), arr[:, 1].copy()
+    result = conn.execute(select(c.c.start_s, c.c.count)
+                          .where(c.c.detector_id == detector_id, c.c.start_s >= from_s,
+                                 c.c.start_s < until_s).order_by(c.c.start_s))
+    # fromiter over the flattened rows: np.asarray of a list of row tuples is ~20x slower
+    flat = np.fromiter((v for row in result for v in row), dtype=np.int64)
+    return flat[0::2].copy(), flat[1::2].copy()
 
 
 def group_members(conn: Connection, group_id: str) -> list[str]:

@@ -5,7 +5,7 @@ from __future__ import annotations
 
 import csv
 import io
-from typing import Annotated, Any, Literal
+from typing import Annotated, Any
 
 from fastapi import APIRouter, Path, Query, Request, Response
 
