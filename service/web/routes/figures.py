@@ -53,20 +53,23 @@ def _volumes(request: Request, engine: Any, subject: str, ids: list[str], from_:
 FROM = Query(alias="from", description="RFC 3339 start, inclusive.")
 TO = Query(description="RFC 3339 end, exclusive.")
 STEP = Query(description=f"Bucket: {clean.STEP_TEXT}.")
+CSV_RESPONSE = {200: {"content": {CSV_TYPE: {"schema": {"type": "string"}}},
+                     "description": "JSON (VolumesPage), or CSV with Accept: text/csv."}}
 VOLUMES_DOC = ("Clean volumes: observed counts, and for missing or replaced (alert) intervals the "
                "baseline times the day's level, marked imputed with an interval; "
                "Accept: text/csv for CSV.")
 
 
 @router.get("/detectors/{detector_id}/volumes", response_model=VolumesPage,
-            description=VOLUMES_DOC)
+            description=VOLUMES_DOC, responses=CSV_RESPONSE)
 def detector_volumes(request: Request, detector_id: DetectorId, engine: EngineDep, _: ReadDep,
                      from_: Annotated[str, FROM], to: Annotated[str, TO],
                      step: Annotated[str, STEP] = "hour", level: Level = 0.95) -> Any:
     return _volumes(request, engine, detector_id, [detector_id], from_, to, step, level)
 
 
-@router.get("/groups/{group_id}/volumes", response_model=VolumesPage, description=VOLUMES_DOC)
+@router.get("/groups/{group_id}/volumes", response_model=VolumesPage, description=VOLUMES_DOC,
+            responses=CSV_RESPONSE)
 def group_volumes(request: Request, group_id: GroupId, engine: EngineDep, _: ReadDep,
                   from_: Annotated[str, FROM], to: Annotated[str, TO],
                   step: Annotated[str, STEP] = "hour", level: Level = 0.95) -> Any:
