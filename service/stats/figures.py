@@ -33,6 +33,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass
+from statistics import NormalDist
 from typing import Any
 
 import numpy as np
@@ -47,6 +48,7 @@ __all__ = [
     "bucket_totals",
     "calendar_of_days",
     "clean_intervals",
+    "daily_totals",
     "hourly_clean",
     "normal_interval",
     "day_levels",
@@ -233,8 +235,6 @@ def bucket_totals(bucket: Any, *, observed: Any, imputed_mean: Any, imputed_var:
 def normal_interval(observed: Any, imputed_mean: Any, variance: Any, *, level: float = 0.95
                     ) -> tuple[np.ndarray, np.ndarray]:
     """Central interval of ``observed + imputed`` with the imputed part normal (clipped at 0)."""
-    from statistics import NormalDist
-
     z = NormalDist().inv_cdf(0.5 + level / 2.0)
     obs = np.asarray(observed, dtype=float)
     mean = np.asarray(imputed_mean, dtype=float)
