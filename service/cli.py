@@ -228,6 +228,38 @@ def cmd_fit(args: argparse.Namespace, settings: Settings) -> int:
     return 0 if not by_status.get("failed") else 1
 
 
+def cmd_figures(args: argparse.Namespace, settings: Settings) -> int:
+    """Write the planners' figures of many detectors to a CSV or JSON report."""
+    import csv
+
+    from tqdm import tqdm
+
+    from service.pipeline import figures as planning
+    from service.pipeline.fit import all_detector_ids
+
+    out = Path(args.out)
+    if out.suffix.lower() not in (".csv", ".json"):
+        raise TallywardError(f"--out {out}: name a .csv or .json file")
+    engine = _engine(settings)
+    ids = args.detector or all_detector_ids(engine)
+    started = time.perf_counter()
+    with tqdm(total=len(ids), unit="det", desc=f"figures {args.year}", file=sys.stderr,
+              disable=args.quiet) as bar:
+        report = planning.figures_many(settings, engine, ids, year=args.year,
+                                       workers=args.workers, progress=bar.update)
+    if out.suffix.lower() == ".json":
+        out.write_bytes(orjson.dumps(report, option=orjson.OPT_INDENT_2))
+    else:
+        with out.open("w", newline="", encoding="utf-8") as f:
+            writer = csv.DictWriter(f, fieldnames=planning.REPORT_COLUMNS)
+            writer.writeheader()
+            writer.writerows(planning.report_row(r) for r in report)
+    failed = sum("error" in r for r in report)
+    table([[len(report) - failed, failed, f"{time.perf_counter() - started:.1f}", str(out)]],
+          ["with figures", "without", "seconds", "report"])
+    return 0
+
+
 def cmd_score(args: argparse.Namespace, settings: Settings) -> int:
     from service.pipeline.score import ScoringCache, score_pass
 
@@ -400,6 +432,14 @@ def build_parser() -> argparse.ArgumentParser:
                    help="work until nothing is left to do, then exit (default: run until "
                    "SIGTERM or Ctrl-C)")
     s.set_defaults(func=cmd_worker)
+
+    s = sub.add_parser("figures", help="planners' annual figures (AADT, K30, PHF...) to CSV/JSON")
+    s.add_argument("--year", type=int, required=True, help="calendar year, local time")
+    s.add_argument("--detector", action="append", help="detector id (repeat); default: all")
+    s.add_argument("--out", required=True, help="report path: .csv (one row a detector) or .json")
+    s.add_argument("--workers", type=int, default=max(1, min(4, os.cpu_count() or 1)))
+    s.add_argument("--quiet", action="store_true", help="no progress bar")
+    s.set_defaults(func=cmd_figures)
 
     for register in command_plugins():
         register(sub)

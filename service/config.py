@@ -62,6 +62,10 @@ class Settings(BaseSettings):
     fit_min_completeness: float = Field(
         0.8, gt=0, le=1, description="Days with a smaller share of intervals present are left out of fits."
     )
+    baseline_validity_days: int = Field(
+        28, ge=0, le=3650, description="Days beyond a baseline's fit window a baseline day is served "
+        "without a warning (a field and the X-Baseline-Warning header)."
+    )
     scoring: Literal["inline", "worker", "off"] = Field(
         "inline", description="'inline': the API process scores counts itself and runs fit jobs "
         "(one-process set-up, the embedded SQLite default). 'worker': the API only stores; "

@@ -96,10 +96,31 @@ def _model(row: Any, base: bl.Baseline, day_type: str) -> dict[str, Any]:
     }
 
 
+def validity_warning(day: date, *, window_start_s: int, window_end_s: int, timezone: str,
+                     validity_days: int) -> str | None:
+    """A warning when the local ``day`` lies more than ``validity_days`` outside the fit
+    window (traffic drifts with the season: the baseline says less the further away)."""
+    zone = ZoneInfo(timezone)
+    first = datetime.fromtimestamp(window_start_s, zone).date()
+    last = datetime.fromtimestamp(window_end_s - 1, zone).date()
+    if day > last + timedelta(days=validity_days):
+        gap = (day - last).days
+        where = "after"
+    elif day < first - timedelta(days=validity_days):
+        gap = (first - day).days
+        where = "before"
+    else:
+        return None
+    return (f"{day.isoformat()} is {gap} days {where} the baseline's fit window "
+            f"({first.isoformat()}..{last.isoformat()}), more than the {validity_days} days it "
+            "is served for without warning: seasonal change is not in the baseline")
+
+
 def baseline_day(engine: Engine, detector_id: str, *, day: date | None, day_type: str | None,
-                 level: float) -> dict[str, Any]:
+                 level: float, validity_days: int = 28) -> dict[str, Any]:
     """Expected count and central predictive interval (``level``) for every interval of a
-    local date, or of a generic day of ``day_type`` (exactly one of the two is given)."""
+    local date, or of a generic day of ``day_type`` (exactly one of the two is given); a date
+    far outside the fit window carries a ``warning``."""
     cur = current_baseline(engine, detector_id)
     det, base = cur.detector, cur.baseline
     if day is not None:
@@ -111,17 +132,20 @@ def baseline_day(engine: Engine, detector_id: str, *, day: date | None, day_type
                              bins_per_day=base.bins_per_day)
     mu, log_se, day_alpha, interval_alpha = base.expected_for(grid.day_type_code, grid.bin)
     low, high = predictive_interval(mu, log_se, day_alpha, interval_alpha, level=level)
+    warning = None if day is None else validity_warning(
+        day, window_start_s=int(cur.row.window_start_s), window_end_s=int(cur.row.window_end_s),
+        timezone=det.timezone, validity_days=validity_days)
     data = [{"start": lab, "expected": round(float(m), 3), "low": int(lo_), "high": int(hi_)}
             for lab, m, lo_, hi_ in zip(grid.labels, mu, low, high, strict=True)]
     return {"detector_id": detector_id, "date": None if day is None else day.isoformat(),
             "day_type": grid.day_type, "level": level, "interval_s": det.interval_s,
             "model": _model(cur.row, base, grid.day_type),
-            "expected_total": round(float(np.sum(mu)), 1), "data": data}
+            "expected_total": round(float(np.sum(mu))), "warning": warning, "data": data}
 
 
 def profile(engine: Engine, detector_id: str) -> dict[str, Any]:
-    """Planners' figures of the current baseline: expected daily volume per day type, hourly
-    volumes, peak hour and K-factor."""
+    """What the current baseline expects per day type: daily volume, hourly volumes and the
+    busiest expected hour with its share of the expected day (not K30: see the figures)."""
     cur = current_baseline(engine, detector_id)
     summary = bl.daily_profile_summary(cur.baseline, lanes=cur.detector.lanes)
     return {"detector_id": detector_id, "lanes": cur.detector.lanes,

@@ -1127,11 +1127,16 @@ def daily_profile_summary(baseline: Baseline, *, lanes: int) -> dict:
     -------
     dict
         Keyed by day type: ``daily_volume`` (vehicles/day), ``daily_volume_per_lane``,
-        ``hourly_volume`` (24 values, vehicles in each local clock hour), ``peak_hour``
+        ``hourly_volume`` (24 values, vehicles in each local clock hour), ``busiest_hour``
         (``start`` "HH:MM", ``start_s`` seconds after local midnight, ``volume`` vehicles,
-        ``share_of_day`` = peak-hour volume / daily volume, the K-factor idea, and
-        ``peak_hour_factor`` = volume / (4 x busiest 15-minute volume inside it) when intervals
-        divide 15 minutes, else None), plus ``fitted_from``.
+        ``share_of_expected_day`` = its volume / the expected daily volume of this day type),
+        plus ``fitted_from``. Volumes are rounded to 3 significant figures, shares to 3
+        decimals: the fit's standard errors are a few percent, so more digits say nothing.
+
+        The share is *not* the design-hour K-factor (the 30th highest hour of a year over
+        AADT), and a peak-hour factor from the smoothed expected curve is not the Highway
+        Capacity Manual's (observed 15-minute volumes): both come from counted data through
+        :mod:`service.stats.figures`.
     """
     if isinstance(lanes, bool) or not isinstance(lanes, int | np.integer) or lanes < 1:
         raise ValueError("lanes must be a positive integer")
@@ -1145,23 +1150,24 @@ def daily_profile_summary(baseline: Baseline, *, lanes: int) -> dict:
         rolling = csum[per_hour:] - csum[:-per_hour]  # hour starting at each bin, within the day
         start_bin = int(np.argmax(rolling))
         volume = float(rolling[start_bin])
-        phf = None
-        if 900 % baseline.interval_s == 0:
-            per_quarter = 900 // baseline.interval_s
-            quarters = expected[start_bin:start_bin + per_hour].reshape(4, per_quarter).sum(axis=1)
-            phf = float(volume / (4.0 * quarters.max()))
         start_s = start_bin * baseline.interval_s
         out[name] = {
             "fitted_from": baseline.profiles[name].fitted_from,
-            "daily_volume": daily,
-            "daily_volume_per_lane": daily / int(lanes),
-            "hourly_volume": [float(v) for v in hourly],
-            "peak_hour": {
+            "daily_volume": _significant(daily),
+            "daily_volume_per_lane": _significant(daily / int(lanes)),
+            "hourly_volume": [_significant(float(v)) for v in hourly],
+            "busiest_hour": {
                 "start": f"{start_s // 3600:02d}:{start_s % 3600 // 60:02d}",
                 "start_s": int(start_s),
-                "volume": volume,
-                "share_of_day": volume / daily if daily > 0 else 0.0,
-                "peak_hour_factor": phf,
+                "volume": _significant(volume),
+                "share_of_expected_day": round(volume / daily, 3) if daily > 0 else 0.0,
             },
         }
     return out
+
+
+def _significant(value: float, digits: int = 3) -> float:
+    """``value`` rounded to ``digits`` significant figures."""
+    if value == 0 or not math.isfinite(value):
+        return value
+    return round(value, digits - 1 - int(math.floor(math.log10(abs(value)))))

@@ -11,7 +11,7 @@ import orjson
 from sqlalchemy import Engine, and_, or_, select
 
 from service.errors import NotFound
-from service.store import tables
+from service.store import quality, tables
 from service.store.engine import read_transaction
 from service.timefmt import format_utc
 
@@ -30,13 +30,14 @@ class CountsPage:
 
 def counts_page(engine: Engine, *, detector_id: str | None, group: str | None,
                 from_s: int | None, until_s: int | None, after: tuple[str, int] | None,
-                limit: int, max_bytes: int, encode: Callable[[str, int, int], bytes]
+                limit: int, max_bytes: int, encode: Callable[[str, int, int, str], bytes]
                 ) -> CountsPage:
     """A page of stored counts ordered by detector, then interval start.
 
     Filters: one detector, or the detectors of a group, or every detector; starts in
     ``[from_s, until_s)``; and from ``after`` on (inclusive: the position a previous page
-    left off at). Rows are encoded by ``encode(detector_id, start_s, count)`` as they come off
+    left off at). Rows are encoded by ``encode(detector_id, start_s, count, flag)`` (the quality
+    flag of :mod:`service.store.quality`, derived from evidence and alerts) as they come off
     the cursor, and the page stops at ``limit`` rows or ``max_bytes`` of encoded rows, so a
     large read holds one page of text, not every row as objects."""
     c, d = tables.counts, tables.detectors
@@ -65,8 +66,14 @@ def counts_page(engine: Engine, *, detector_id: str | None, group: str | None,
         result = conn.execution_options(yield_per=ROWS_PER_FETCH).execute(
             q.order_by(c.c.detector_id, c.c.start_s).limit(limit + 1))
         try:
+            lookups: dict[str, quality.FlagLookup] = {}
             for det, start_s, count in result:
-                piece = encode(det, start_s, count)
+                lookup = lookups.get(det)
+                if lookup is None:  # rows come by detector: one look-up per detector of the page
+                    lookup = lookups[det] = quality.flag_lookup(
+                        conn, det, from_s=from_s or 0,
+                        until_s=until_s if until_s is not None else 1 << 62)
+                piece = encode(det, start_s, count, lookup.flag(int(start_s)))
                 if rows == limit or (rows and len(page) + len(piece) > max_bytes):
                     next_position = (det, int(start_s))
                     break
@@ -77,15 +84,17 @@ def counts_page(engine: Engine, *, detector_id: str | None, group: str | None,
     return CountsPage(bytes(page), rows, next_position)
 
 
-def json_row(detector_id: str, start_s: int, count: int) -> bytes:
+def json_row(detector_id: str, start_s: int, count: int, flag: str) -> bytes:
     """One count as the JSON object of ``CountPublic``, with a trailing comma."""
-    return b'{"detector_id":%s,"start":"%s","count":%d},' % (
-        orjson.dumps(detector_id), format_utc(start_s).encode(), count)
+    return b'{"detector_id":%s,"start":"%s","count":%d,"flag":"%s"},' % (
+        orjson.dumps(detector_id), format_utc(start_s).encode(), count, flag.encode())
 
 
-def csv_row(detector_id: str, start_s: int, count: int) -> bytes:
-    """One count as an RFC 4180 CSV line (ids hold no comma, quote or formula character)."""
-    return b"%s,%s,%d\r\n" % (detector_id.encode(), format_utc(start_s).encode(), count)
+def csv_row(detector_id: str, start_s: int, count: int, flag: str) -> bytes:
+    """One count as an RFC 4180 CSV line (ids and flags hold no comma, quote or formula
+    character)."""
+    return b"%s,%s,%d,%s\r\n" % (detector_id.encode(), format_utc(start_s).encode(), count,
+                                  flag.encode())
 
 
 def conflicts_page(engine: Engine, *, detector_id: str | None, after: int, limit: int

@@ -128,6 +128,7 @@ def run_demo(*, feed: Path, folder: Path, workers: int = 2, speed: str = "max") 
         picture = demo_plot(base, read_key, truth, alerts, folder)
         if picture:
             print(f"\nplot of one detector's day against its baseline: {picture}")
+        demo_figures(base, read_key, year=int(truth["test"]["start"][:4]))
     finally:
         server.terminate()
         try:
@@ -221,3 +222,31 @@ def new_run_folder(parent: Path) -> Path:
         (parent / "latest").write_text(f"{out}\n", encoding="utf-8")
         return out
     raise TallywardError(f"could not make a new run folder under {parent}")
+
+
+def demo_figures(base: str, key: str, *, year: int) -> None:
+    """A planner's figures for one station (a group: the sum of its lanes) with the share of
+    the year that was imputed; six weeks of counts leave most of a year to the baseline."""
+    with httpx.Client(base_url=base, headers={"Authorization": f"Bearer {key}"},
+                      timeout=120) as c:
+        dets = c.get("/v1/detectors", params={"limit": 1000}).json()["data"]
+        group = next((d["group"] for d in dets if d["group"]), None)
+        if group is None:
+            return
+        r = c.get(f"/v1/groups/{group}/figures", params={"year": year})
+    if r.status_code != 200:
+        print(f"\nplanners' figures for {group}: {r.json().get('message')}")
+        return
+    f = r.json()
+    print(f"\nPlanners' figures, station {group} ({len(f['detectors'])} detectors), {year}: "
+          f"{f['days']['with_data']} of {f['days']['in_period']} days counted, "
+          f"{f['imputed_share']:.0%} of intervals imputed "
+          f"(AASHTO sufficiency met: {f['sufficiency']['meets_rule']})")
+    rows = [[name, f[name]["value"], f"{f[name]['low']}..{f[name]['high']}"]
+            for name in ("aadt", "adt", "hv30", "k30")]
+    for part in ("am", "pm"):
+        p = (f["peak_hours"] or {}).get("weekday", {}).get(part)
+        if p:
+            rows.append([f"weekday {part} peak {p['start']} PHF", p["phf"],
+                         f"{p['phf_low']}..{p['phf_high']} ({p['days']} days)"])
+    table(rows, ["figure", "value", f"{f['level']:.0%} interval"])

@@ -32,6 +32,7 @@ from service.store.engine import make_engine
 from service.web import docs, metrics, openapi
 from service.web.deps import PRINCIPAL_SCOPE_KEY, check_permission, identify
 from service.web.routes import alerts, baselines, corrections, counts, detectors, health, jobs
+from service.web.routes import figures as planners
 
 log = logging.getLogger("tallyward.http")
 WRITE_METHODS = frozenset({"POST", "PUT", "PATCH"})
@@ -323,6 +324,7 @@ def create_app(settings: Settings | None = None, *, engine: Engine | None = None
     app.include_router(alerts.router)
     app.include_router(alerts.detector_router)
     app.include_router(jobs.router)
+    app.include_router(planners.router)
     # Outermost last: every answer (401, 408, 413 included) gets a request id and a log line,
     # and the key is checked before the body is read.
     app.add_middleware(BodyLimit, max_bytes=settings.max_body_bytes,

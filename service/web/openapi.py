@@ -249,6 +249,17 @@ EXTRA: dict[tuple[str, str], dict[int | str, dict[str, Any]]] = {
     ("POST", "/v1/counts/corrections"): {
         404: _not_found("unknown detector or conflict, or no count stored at that interval")},
     ("GET", "/v1/counts/corrections"): {404: _not_found("unknown `detector_id`")},
+    # planners' figures (service/web/routes/figures.py)
+    ("GET", "/v1/detectors/{detector_id}/volumes"): {
+        404: _not_found("unknown detector, or `no_baseline` when none is fitted yet")},
+    ("GET", "/v1/groups/{group_id}/volumes"): {
+        404: _not_found("`empty_group`: no detector has this group, or `no_baseline`")},
+    ("GET", "/v1/detectors/{detector_id}/figures"): {
+        404: _not_found("unknown detector, or `no_baseline` when none is fitted yet")},
+    ("GET", "/v1/groups/{group_id}/figures"): {
+        404: _not_found("`empty_group`: no detector has this group, or `no_baseline`")},
+    ("GET", "/v1/groups/{group_id}/directional"): {
+        404: _not_found("`empty_group`: either group has no detector, or `no_baseline`")},
     ("GET", "/v1/health"): {
         503: {"description": "The database is unreachable or its schema is not at the "
                              "migration head.",

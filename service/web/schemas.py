@@ -114,6 +114,9 @@ class BaselineDay(BaseModel):
     interval_s: int
     model: BaselineModel
     expected_total: float = Field(description="Expected vehicles over the whole local day.")
+    warning: str | None = Field(None, description="Set when the date lies further outside the "
+                                "fit window than the configured validity (also sent as the "
+                                "X-Baseline-Warning header).")
     data: list[BaselinePoint]
 
 
@@ -125,7 +128,9 @@ class BaselineProfile(BaseModel):
     fit: dict[str, Any] = Field(description="What the fit found (per day type: days used, "
                                             "distribution, fallback).")
     day_types: dict[str, Any] = Field(description="Per day type: expected daily volume, hourly "
-                                                  "volumes, peak hour and K-factor.")
+                                                  "volumes and the busiest expected hour with its "
+                                                  "share of the expected day (not K30; see "
+                                                  "/figures).")
 
 
 # ---------------------------------------------------------------------------- counts
@@ -135,6 +140,8 @@ class CountPublic(BaseModel):
     detector_id: str
     start: str = Field(description="RFC 3339 interval start (UTC).")
     count: int
+    flag: str = Field(description="Quality flag (service.store.quality): ok, an evidence kind, "
+                                   "alert:<kind>[:traffic], out_of_service or corrected.")
 
 
 class CountsPage(BaseModel):
@@ -329,3 +336,76 @@ class CorrectionPublic(BaseModel):
 class CorrectionsPage(BaseModel):
     data: list[CorrectionPublic]
     next_after: int = Field(description="Ask for corrections after this id next.")
+
+
+# ---------------------------------------------------------------------------- planners' figures
+
+
+class VolumeBucket(BaseModel):
+    start: str = Field(description="RFC 3339 start (UTC) of the bucket's first interval.")
+    volume: float = Field(description="Observed plus imputed vehicles in the bucket.")
+    observed: int = Field(description="Vehicles counted in the bucket's usable intervals.")
+    imputed: bool = Field(description="True when any interval of the bucket was imputed.")
+    imputed_share: float = Field(description="Share of the bucket's intervals imputed.")
+    low: float = Field(description="Lower end of the predictive interval of `volume`.")
+    high: float = Field(description="Upper end of the predictive interval of `volume`.")
+    intervals: int = Field(description="Scheduled intervals in the bucket (all members).")
+
+
+class VolumesPage(BaseModel):
+    subject: str = Field(description="The detector id, or group:<id>.")
+    detectors: list[str]
+    step: Literal["15min", "hour", "day"]
+    level: float
+    imputed_share: float = Field(description="Share of all intervals in the period imputed.")
+    data: list[VolumeBucket]
+
+
+class FigureValue(BaseModel):
+    value: int | float | None = Field(description="Vehicles as whole numbers, ratios rounded.")
+    low: int | float | None
+    high: int | float | None
+
+
+class PeakHour(BaseModel):
+    start: str = Field(description="Local start HH:MM.")
+    volume: int = Field(description="Mean vehicles in the hour over the days behind it.")
+    phf: float = Field(description="Mean peak-hour factor V / (4 x V15max), HCM.")
+    phf_low: float
+    phf_high: float
+    days: int
+
+
+class DayTypePeaks(BaseModel):
+    am: PeakHour | None
+    pm: PeakHour | None
+
+
+class FiguresReport(BaseModel):
+    subject: str
+    detectors: list[str]
+    year: int
+    period: dict[str, str]
+    level: float
+    aadt: FigureValue = Field(description="AADT, AASHTO method (vehicles/day).")
+    adt: FigureValue = Field(description="Plain mean daily volume (vehicles/day).")
+    hv30: FigureValue = Field(description="30th highest hourly volume (vehicles/h).")
+    k30: FigureValue = Field(description="hv30 / AADT.")
+    dhv: FigureValue = Field(description="Design hour volume (vehicles/h).")
+    monthly_factors: list[float | None] = Field(description="AADT / monthly ADT, Jan..Dec.")
+    day_of_week_factors: list[float | None] = Field(description="AADT / day-of-week ADT, Mon..Sun.")
+    days: dict[str, int] = Field(description="Days in the period, complete, with data, imputed.")
+    sufficiency: dict[str, Any]
+    imputed_share: float = Field(description="Share of the period's intervals imputed.")
+    counted_intervals: int
+    peak_hours: dict[str, DayTypePeaks] | None = Field(
+        description="AM and PM peak hours per day type; null for intervals over 15 minutes.")
+    methods: dict[str, str]
+
+
+class DirectionalReport(BaseModel):
+    year: int
+    level: float
+    d: FigureValue = Field(description="Directional distribution D.")
+    peak_direction: str = Field(description="The group carrying the peak direction.")
+    method: str

@@ -667,8 +667,11 @@ def _flat_baseline(expected_by_type: list[np.ndarray], interval_s: int) -> bl.Ba
 
 
 def test_daily_profile_summary_gives_planners_figures():
-    """Daily and hourly volumes, the peak hour with its K share and peak-hour factor, per lane."""
+    """Daily and hourly volumes, the busiest expected hour and its share of the expected day
+    (named for what it is: not K30, and no peak-hour factor from a smoothed curve), per lane;
+    volumes to 3 significant figures, shares to 3 decimals."""
     weekday = np.full(288, 10.0)
+    weekday[0] = 10.123  # rounds away: 3,300.123 vehicles a day is given as 3,300
     weekday[204:216] = [40, 40, 40, 60, 60, 60, 40, 40, 40, 40, 40, 40]  # 17:00-18:00
     saturday = np.full(288, 5.0)
     sunday = np.full(288, 2.0)
@@ -678,10 +681,9 @@ def test_daily_profile_summary_gives_planners_figures():
     assert wk["daily_volume"] == pytest.approx(3300.0)
     assert wk["daily_volume_per_lane"] == pytest.approx(1650.0)
     assert len(wk["hourly_volume"]) == 24 and wk["hourly_volume"][17] == pytest.approx(540.0)
-    assert wk["peak_hour"]["start"] == "17:00" and wk["peak_hour"]["volume"] == pytest.approx(540)
-    assert wk["peak_hour"]["share_of_day"] == pytest.approx(540 / 3300)
-    # peak-hour factor (HCM): hour volume / (4 x busiest quarter hour, 17:15-17:30 = 180)
-    assert wk["peak_hour"]["peak_hour_factor"] == pytest.approx(540 / (4 * 180))
+    assert wk["busiest_hour"]["start"] == "17:00" and wk["busiest_hour"]["volume"] == 540
+    assert wk["busiest_hour"]["share_of_expected_day"] == round(540 / 3300, 3) == 0.164
+    assert "peak_hour_factor" not in wk["busiest_hour"] and "peak_hour" not in wk
     assert summary["saturday"]["daily_volume"] == pytest.approx(1440.0)
     assert summary["sunday_holiday"]["hourly_volume"] == pytest.approx([24.0] * 24)
     with pytest.raises(ValueError):

@@ -477,7 +477,7 @@ def test_offline_windows_have_no_rows_and_rows_either_side(network):
 
 
 def test_patchy_reports_lose_many_short_bursts(network):
-    """An 'intermittent' day loses 20-50 % of its intervals in 10+ gaps of at most 4 intervals."""
+    """A 'patchy' day loses 20-50 % of its intervals in 10+ gaps of at most 4 intervals."""
     for inj in _injections(network, "patchy"):
         spec = network.detectors[network.index_of(inj.detector_ids[0])]
         expected = np.arange(inj.start_s, inj.end_s, spec.interval_s)

@@ -41,11 +41,13 @@ def follow(client, key: str, params: dict, *, csv_pages: bool = False  # type: i
         if csv_pages:
             assert r.headers["content-type"].startswith("text/csv")
             lines = list(csv.reader(io.StringIO(r.text)))
-            assert lines[0] == ["detector_id", "start", "count"]
-            rows += [(d, s, int(n)) for d, s, n in lines[1:]]
+            assert lines[0] == ["detector_id", "start", "count", "flag"]
+            assert all(f == "ok" for *_, f in lines[1:])  # no scoring ran: every row is ok
+            rows += [(d, s, int(n)) for d, s, n, _ in lines[1:]]
             cursor = r.headers.get("tallyward-next-cursor")
         else:
             body = r.json()
+            assert all(x["flag"] == "ok" for x in body["data"])
             rows += [(x["detector_id"], x["start"], x["count"]) for x in body["data"]]
             cursor = body["next"]
         if cursor is None:

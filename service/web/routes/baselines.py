@@ -23,6 +23,7 @@ DetectorId = Annotated[str, Path(pattern=DETECTOR_ID_PATTERN)]
 # Dates a baseline day is served for: wide enough for any planning question, and inside what
 # time zone rules and epoch seconds handle without overflow.
 FIRST_DATE, LAST_DATE = date(1990, 1, 1), date(2100, 12, 31)
+WARNING_HEADER = "X-Baseline-Warning"  # a date far outside the fit window
 
 
 class FitJobAccepted(BaseModel):
@@ -81,7 +82,8 @@ BASELINE_CSV = {200: {"content": {"text/csv": {"schema": {"type": "string"}}},
 @router.get("/detectors/{detector_id}/baseline", response_model=BaselineDay,
             responses=BASELINE_CSV)
 def get_baseline(
-    request: Request, detector_id: DetectorId, engine: EngineDep, _: ReadDep,
+    request: Request, detector_id: DetectorId, engine: EngineDep, settings: SettingsDep,
+    _: ReadDep, response: Response,
     date_: Annotated[str | None, Query(
         alias="date", description=f"Local date YYYY-MM-DD, {FIRST_DATE}..{LAST_DATE}.")] = None,
     day_type: Annotated[Literal[DAY_TYPES] | None, Query()] = None,  # type: ignore[valid-type]
@@ -93,16 +95,20 @@ def get_baseline(
                                "day_type=weekday|saturday|sunday_holiday")
     day = _baseline_date(date_) if date_ is not None else None
     figures = baseline_day.baseline_day(engine, detector_id, day=day, day_type=day_type,
-                                        level=level)
+                                        level=level, validity_days=settings.baseline_validity_days)
+    if figures["warning"]:
+        response.headers[WARNING_HEADER] = figures["warning"]
     if paging.wants_csv(request):
         rows = ([detector_id, figures["day_type"], p["start"], p["expected"], p["low"], p["high"]]
                 for p in figures["data"])
+        headers = {WARNING_HEADER: figures["warning"]} if figures["warning"] else None
         return paging.csv_response(paging.csv_text(BASELINE_CSV_COLUMNS, rows),
-                                   filename=f"{detector_id}_{date_ or day_type}_baseline.csv")
+                                   filename=f"{detector_id}_{date_ or day_type}_baseline.csv",
+                                   headers=headers)
     return {**figures, "date": date_}
 
 
 @router.get("/detectors/{detector_id}/baseline/profile", response_model=BaselineProfile)
 def get_profile(detector_id: DetectorId, engine: EngineDep, _: ReadDep) -> dict[str, Any]:
-    """Planners' figures: expected daily volume per day type, hourly volumes, peak hour, K-factor."""
+    """Expected daily volume per day type, hourly volumes and the busiest expected hour."""
     return baseline_day.profile(engine, detector_id)

@@ -77,7 +77,7 @@ GroupFilter = Annotated[str | None, Query(max_length=64, description="Only the d
                                                                      "this group."),
                         AfterValidator(plain_text)]
 CSV_CONTENT = {200: {"content": {"text/csv": {"schema": {"type": "string"}}},
-                     "description": "JSON (CountsPage), or CSV `detector_id,start,count` when "
+                     "description": "JSON (CountsPage), or CSV `detector_id,start,count,flag` when "
                                     "asked with `Accept: text/csv` (the cursor to the rest is in "
                                     "the `Tallyward-Next-Cursor` and `Link` headers)."}}
 
@@ -121,7 +121,7 @@ def get_counts(request: Request, engine: EngineDep, settings: SettingsDep, _: Re
             rest = request.url.include_query_params(cursor=next_cursor)
             headers = {"Tallyward-Next-Cursor": next_cursor,
                        "Link": f'<{rest.path}?{rest.query}>; rel="next"'}
-        return paging.csv_response(b"detector_id,start,count\r\n" + page.rows,
+        return paging.csv_response(b"detector_id,start,count,flag\r\n" + page.rows,
                                    filename="counts.csv", headers=headers)
     next_from = None
     if detector_id is not None and page.next_position is not None:
