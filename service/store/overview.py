@@ -11,7 +11,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Any
 
-from sqlalchemy import Engine, and_, func, select
+from sqlalchemy import ColumnElement, Engine, and_, func, select
 
 from service.config import Settings
 from service.store import tables
@@ -73,7 +73,7 @@ def network(engine: Engine, settings: Settings) -> tuple[float, list[NetworkRow]
                                    d.c.lanes, d.c.interval_s, d.c.timezone, d.c.lon, d.c.lat,
                                    last.label("last_start_s"))
                             .order_by(d.c.detector_id)).all()
-        present = dict(conn.execute(
+        present: dict[str, int] = dict(conn.execute(
             select(c.c.detector_id, func.count()).where(c.c.start_s >= lo, c.c.start_s < now)
             .group_by(c.c.detector_id)).all())
         kinds: dict[str, list[str]] = {}
@@ -100,7 +100,7 @@ def alert_list(engine: Engine, *, status: str, kind: str | None, cause: str | No
     """(the highest alert seq committed, the ``limit`` latest-starting alerts matching the
     filters in their public shape, how many match in all). Group members' shares are hidden."""
     a = tables.alerts
-    cond = [a.c.part_of.is_(None)]
+    cond: list[ColumnElement[bool]] = [a.c.part_of.is_(None)]
     if status != "any":
         cond.append(a.c.status == status)
     if kind is not None:
@@ -157,7 +157,7 @@ def detector_alerts(engine: Engine, detector_id: str, *, lo_s: int | None = None
     """A detector's alerts (its own and the group alerts it is a member of are not mixed: its
     own only), newest first; with ``lo_s``/``hi_s`` only those overlapping ``[lo_s, hi_s)``."""
     a = tables.alerts
-    cond = [a.c.detector_id == detector_id, a.c.withdrawn == 0]
+    cond: list[ColumnElement[bool]] = [a.c.detector_id == detector_id, a.c.withdrawn == 0]
     if lo_s is not None:
         cond.append(a.c.end_s >= lo_s)
     if hi_s is not None:

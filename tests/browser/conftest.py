@@ -1,7 +1,7 @@
 """The browser tier: a real ``tallyward serve`` on a loopback port with a small fitted network,
 and Debian's Chromium driven by Playwright.
 
-One server per module and backend (SQLite always, PostgreSQL when TALLYWARD_TEST_DATABASE_URL
+One server per test session and backend (SQLite always, PostgreSQL when TALLYWARD_TEST_DATABASE_URL
 is set): building and fitting the network is the slow part. Screenshots are written to
 ``test-artifacts/browser/`` (ignored by git).
 """
@@ -10,7 +10,9 @@ from __future__ import annotations
 
 import shutil
 import time
+import uuid
 from collections.abc import Iterator
+from contextlib import ExitStack, contextmanager
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from pathlib import Path
@@ -19,20 +21,24 @@ from zoneinfo import ZoneInfo
 
 import httpx
 import pytest
+from sqlalchemy import create_engine, text
+from sqlalchemy.engine import make_url
 
 from service.config import Settings
 from service.pipeline import fit as fitting
 from service.store import keys as security
+from service.store import migrations as migrate
 from service.store.engine import make_engine
-from tests.conftest import BACKENDS, REPO, LiveServer, _truncate, auth
+from tests.conftest import BACKENDS, PG_URL, REPO, LiveServer, auth
 from tests.factories import load_network, make_detector, small_network
 
 CHROMIUM = Path("/usr/bin/chromium")
 CHROMIUM_ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
                  "--disable-component-update", "--no-first-run"]
 ARTIFACTS = REPO / "test-artifacts" / "browser"
-# Three lanes of one approach (5-minute) and three rural count stations (15-minute).
-DETECTORS = ("bra3-nb-lt", "bra3-nb-t1", "bra3-nb-t2", "qry-01-eb", "qry-01-wb", "qry-02-eb")
+# Three lanes of one approach (5-minute) and a rural count station (15-minute): fitting is the
+# slow part of the set-up, so the network is small.
+DETECTORS = ("bra3-nb-lt", "bra3-nb-t1", "bra3-nb-t2", "qry-01-eb")
 DEAD = "bra3-nb-t1"  # the detector the tests make go dead at the morning peak
 PEAK_FROM_H = 7  # local hour the normal test-day counts run up to; the dead intervals start here
 DEAD_INTERVALS = 6  # 30 minutes of zeros at 5-minute intervals
@@ -88,16 +94,18 @@ def _rfc(epoch_s: int) -> str:
     return datetime.fromtimestamp(epoch_s, UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
 
 
-@pytest.fixture(scope="module", params=BACKENDS)
+@pytest.fixture(scope="session", params=BACKENDS)
 def site(request: pytest.FixtureRequest, tmp_path_factory: pytest.TempPathFactory
          ) -> Iterator[Site]:
+    stack = ExitStack()
     if request.param == "sqlite":
         path = tmp_path_factory.mktemp("ui") / "tallyward.db"
         shutil.copy(request.getfixturevalue("sqlite_template"), path)
         url = f"sqlite:///{path}"
     else:
-        url = request.getfixturevalue("pg_database")
-        _truncate(url)
+        # A database of its own: the shared test database is emptied by other tests while
+        # this server lives for the whole session.
+        url = stack.enter_context(own_pg_database())
     engine = make_engine(Settings(database_url=url))
     net = small_network(DETECTORS, history_days=21, test_days=1, seed=3)
     load_network(engine, net, until_s=net.test_start_s)
@@ -118,6 +126,28 @@ def site(request: pytest.FixtureRequest, tmp_path_factory: pytest.TempPathFactor
     finally:
         server.stop()
         engine.dispose()
+        stack.close()
+
+
+@contextmanager
+def own_pg_database() -> Iterator[str]:
+    """A new PostgreSQL database migrated to head, dropped afterwards."""
+    assert PG_URL
+    server = make_url(PG_URL.replace("postgresql://", "postgresql+psycopg://", 1))
+    name = f"tallyward_ui_{uuid.uuid4().hex[:10]}"
+    admin = create_engine(server, isolation_level="AUTOCOMMIT")
+    with admin.connect() as conn:
+        conn.execute(text(f'CREATE DATABASE "{name}"'))
+    url = server.set(database=name).render_as_string(hide_password=False)
+    try:
+        migrate.upgrade(url)
+        yield url
+    finally:
+        with admin.connect() as conn:
+            conn.execute(text("SELECT pg_terminate_backend(pid) FROM pg_stat_activity "
+                              f"WHERE datname = '{name}'"))
+            conn.execute(text(f'DROP DATABASE IF EXISTS "{name}"'))
+        admin.dispose()
 
 
 @pytest.fixture(scope="session")
