@@ -5,7 +5,6 @@ returns server-built HTML; nothing is loaded from another host."""
 from __future__ import annotations
 
 import secrets
-import time
 from datetime import date, datetime, timedelta
 from typing import Annotated, Any
 from urllib.parse import parse_qs
@@ -263,7 +262,7 @@ def network_page(
 # ---------------------------------------------------------------------------- alerts
 
 
-def alert_row(a: dict[str, Any], zone: str | None, *, now: float) -> str:
+def alert_row(a: dict[str, Any], zone: str | None) -> str:
     """One alert as a table row (the same HTML on the page and in the live updates)."""
     start_s = parse_utc(a["start"])
     end_s = parse_utc(a["end"])
@@ -275,7 +274,8 @@ def alert_row(a: dict[str, Any], zone: str | None, *, now: float) -> str:
     ack = a.get("acknowledged")
     ack_text = (f'{h(ack["by"])}: {h(ack["note"] or "")}' if ack else "")
     status = a["status"] + (" (withdrawn)" if a.get("withdrawn") else "")
-    lasting = duration((now if a["status"] == "open" else end_s) - start_s)
+    # Through the end of its last interval (for an open alert: so far, on the data's clock).
+    lasting = duration(end_s - start_s) + (" so far" if a["status"] == "open" else "")
     return (f'<tr id="alert-{a["id"]}" data-seq="{a["seq"]}" data-status="{h(a["status"])}">'
             f'<td><a href="/ui/alerts/{a["id"]}" aria-label="Alert {a["id"]}">{a["id"]}</a></td>'
             f'<td>{subject}</td><td>{h(a["kind"])}</td><td>{h(a["cause"])}</td>'
@@ -325,8 +325,7 @@ def alerts_page(
     high, alerts, total = overview.alert_list(engine, status=status, kind=kind, cause=cause,
                                               group=group, limit=ALERT_ROWS)
     zones = _zones(engine, alerts, group_zones)
-    now = time.time()
-    rows = "".join(alert_row(a, zones[a["id"]], now=now) for a in alerts)
+    rows = "".join(alert_row(a, zones[a["id"]]) for a in alerts)
     poll = "/ui/alerts/changes" + query(status=status, kind=kind, cause=cause, group=group)
     filters = (
         '<form method="get" action="/ui/alerts" class="filters" aria-label="Filter alerts">'
@@ -384,9 +383,8 @@ def alert_changes(
             break
     items = list(changed.values())
     zones = _zones(engine, items, group_zones)
-    now = time.time()
     out = [{"id": a["id"], "seq": a["seq"], "start": a["start"],
-            "row": alert_row(a, zones[a["id"]], now=now)
+            "row": alert_row(a, zones[a["id"]])
             if _matches(a, status, kind, cause, group) else None} for a in items]
     return JSONResponse({"next_after": cursor, "changes": out},
                         headers={"Cache-Control": "no-store"})
