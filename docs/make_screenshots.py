@@ -42,7 +42,8 @@ def main() -> int:
     key = security.create_key(engine, name=name, role="read")
     out = Path(args.out)
     try:
-        with serving(args.database, env={"TALLYWARD_CLOCK": "data"}) as (base, _proc), \
+        with serving(args.database, env={"TALLYWARD_CLOCK": "data"},
+                     start_timeout_s=300) as (base, _proc), \
                 sync_playwright() as p:
             browser = p.chromium.launch(executable_path="/usr/bin/chromium", args=ARGS)
             page = browser.new_page(viewport={"width": 1440, "height": 900},

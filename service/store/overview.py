@@ -66,16 +66,18 @@ def network(engine: Engine, settings: Settings) -> tuple[float, list[NetworkRow]
     with read_transaction(engine) as conn:
         now = clock_now(conn, settings)
         lo = int(now) - DAY_S
-        # One index seek per detector on the counts primary key (detector_id, start_s).
+        # Both per detector on the counts primary key (detector_id, start_s): one index seek for
+        # the latest start, one index range for the last 24 h (no sort of the whole window).
         last = select(func.max(c.c.start_s)).where(c.c.detector_id == d.c.detector_id
                                                    ).scalar_subquery()
+        in_day = select(func.count()).select_from(c).where(
+            c.c.detector_id == d.c.detector_id, c.c.start_s >= lo, c.c.start_s < now
+        ).scalar_subquery()
         rows = conn.execute(select(d.c.detector_id, d.c.label, d.c.group_id, d.c.road_class,
                                    d.c.lanes, d.c.interval_s, d.c.timezone, d.c.lon, d.c.lat,
-                                   last.label("last_start_s"))
+                                   last.label("last_start_s"), in_day.label("present"))
                             .order_by(d.c.detector_id)).all()
-        present: dict[str, int] = dict(conn.execute(
-            select(c.c.detector_id, func.count()).where(c.c.start_s >= lo, c.c.start_s < now)
-            .group_by(c.c.detector_id)).all())
+        present = {r.detector_id: int(r.present or 0) for r in rows}
         kinds: dict[str, list[str]] = {}
         for det, kind in conn.execute(select(a.c.detector_id, a.c.kind).where(
                 a.c.status == "open", a.c.withdrawn == 0, a.c.detector_id.is_not(None))):
