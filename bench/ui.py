@@ -116,6 +116,15 @@ def run(url: str, *, n_detectors: int, n_alerts: int, rounds: int) -> None:
              ("alerts page (open)", "/ui/alerts?status=open"),
              ("alerts page (any status)", "/ui/alerts?status=any"),
              ("detector day", f"/ui/detectors/bra3-nb-t1?date={day.isoformat()}"))
+    # The reads alone (store functions, no HTML): what the page's own rendering adds is the rest.
+    from service.store import overview
+    reads = []
+    for _ in range(rounds):
+        t = time.perf_counter()
+        overview.network(engine, settings)
+        reads.append((time.perf_counter() - t) * 1000)
+    print(f"network reads alone (store.overview.network): median "
+          f"{statistics.median(reads):.1f} ms")
     with TestClient(create_app(settings, engine=engine)) as client:
         r = client.post("/ui/login", data={"key": key}, follow_redirects=False)
         assert r.status_code == 303, r.text

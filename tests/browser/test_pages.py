@@ -104,7 +104,7 @@ def test_read_key_has_no_acknowledge_control_and_forged_posts_are_refused(
     sign_in(page, live_server, "read")
     page.goto(f"{live_server.url}/ui/alerts/{alert['id']}")
     assert page.get_by_role("button", name="Acknowledge").count() == 0
-    assert page.locator("form.ack").count() == 0
+    assert page.locator("form.ack-form").count() == 0
     token = page.locator('form[action="/ui/logout"] input[name="csrf"]').get_attribute("value")
     forged = page.request.post(f"{live_server.url}/ui/alerts/{alert['id']}/acknowledge",
                                form={"csrf": token, "note": "forged"}, max_redirects=0)

@@ -239,9 +239,9 @@ def network_page(
     body_rows = []
     for r in shown_rows:
         body_rows.append(
-            f'<tr data-detector="{h(r.detector_id)}"><td><a href="/ui/detectors/{h(r.detector_id)}">'
+            f'<tr data-detector="{h(r.detector_id)}"><td class="nw"><a href="/ui/detectors/{h(r.detector_id)}">'
             f'{h(r.detector_id)}</a></td><td>{h(r.label or "")}</td><td>{h(r.group or "")}</td>'
-            f'<td>{h(r.road_class)}</td><td class="state">{charts.legend_icon(r.state)} '
+            f'<td>{h(r.road_class)}</td><td class="state nw">{charts.legend_icon(r.state)} '
             f'{r.state}</td><td>{_age(now, r.last_start_s, r.interval_s)}</td>'
             f'<td class="num">{r.open_alerts or ""}</td>'
             f'<td class="num">{r.completeness_24h:.0%}</td></tr>')
@@ -280,7 +280,7 @@ def alert_row(a: dict[str, Any], zone: str | None) -> str:
             f'<td><a href="/ui/alerts/{a["id"]}" aria-label="Alert {a["id"]}">{a["id"]}</a></td>'
             f'<td>{subject}</td><td>{h(a["kind"])}</td><td>{h(a["cause"])}</td>'
             f'<td>{h(status)}</td><td class="summary">{h(a["summary"])}</td>'
-            f'<td>{h(local_time(start_s, zone))}</td><td>{lasting}</td>'
+            f'<td class="nw">{h(local_time(start_s, zone))}</td><td class="nw">{lasting}</td>'
             f'<td class="num">{observed} / {expected}</td>'
             f'<td class="num">{"" if a["score"] is None else a["score"]}</td>'
             f'<td class="ack">{ack_text}</td></tr>')
@@ -424,7 +424,7 @@ def alert_detail(session: Session, a: dict[str, Any], zone: str, *, message: str
         # section with their own forms, each carrying the session's CSRF token.
         action = (
             f'<section aria-labelledby="ack-h"><h2 id="ack-h">Acknowledge</h2>{error}'
-            f'<form method="post" action="/ui/alerts/{a["id"]}/acknowledge" class="ack">'
+            f'<form method="post" action="/ui/alerts/{a["id"]}/acknowledge" class="ack-form">'
             f'<input type="hidden" name="csrf" value="{h(session.csrf)}">'
             '<label for="note">Note (what was done, who was sent)</label>'
             f'<textarea id="note" name="note" rows="3" maxlength="{NOTE_MAX}"></textarea>'
