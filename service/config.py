@@ -152,6 +152,17 @@ class Settings(BaseSettings):
         120.0, ge=1, le=3600, description="Seconds a scorer's claim on a detector holds: work "
         "of a worker that dies is taken over by another after this long. Longer than a "
         "scoring pass takes.")
+    ui_session_idle_s: int = Field(
+        1800, ge=60, le=7 * 86_400,
+        description="Web view (/ui/): a signed-in session ends after this many seconds without "
+        "a page request; the person signs in again with their key.",
+    )
+    ui_session_secret: str | None = Field(
+        None, min_length=32,
+        description="Web view: the secret that signs session cookies (at least 32 characters). "
+        "Unset: a random one per process, so sessions end when the service restarts; set it "
+        "when `tallyward serve --workers` is above 1 so every worker accepts the same sessions.",
+    )
 
     @field_validator("database_url")
     @classmethod

@@ -91,6 +91,7 @@ def run_demo(*, feed: Path, folder: Path, workers: int = 2, speed: str = "max") 
 
     ingest_key = security.create_key(engine, name="demo-controllers", role="ingest")
     read_key = security.create_key(engine, name="demo-dashboard", role="read")
+    view_key = security.create_key(engine, name="demo-operator", role="operate")  # the web view
     engine.dispose()
     port = _free_port()
     base = f"http://127.0.0.1:{port}"
@@ -141,6 +142,9 @@ def run_demo(*, feed: Path, folder: Path, workers: int = 2, speed: str = "max") 
           f"  export TALLYWARD_CLOCK=data\n"
           f"  .venv/bin/tallyward serve")
     print("Alerts are advisory: verify in the field before acting (see README, Cautions).")
+    print(f"\nweb view: TALLYWARD_DATABASE_URL={url} TALLYWARD_CLOCK=data .venv/bin/tallyward "
+          f"serve --port 8000\n  then open http://127.0.0.1:8000/ui/ and sign in with the demo's "
+          f"operate key (key name demo-operator):\n  {view_key}")
     return 0
 
 

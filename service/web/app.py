@@ -33,12 +33,14 @@ from service.web import docs, metrics, openapi
 from service.web.deps import PRINCIPAL_SCOPE_KEY, check_permission, identify
 from service.web.routes import alerts, baselines, corrections, counts, detectors, health, jobs
 from service.web.routes import figures as planners
+from service.web.ui import install as install_ui
 
 log = logging.getLogger("tallyward.http")
 WRITE_METHODS = frozenset({"POST", "PUT", "PATCH"})
 # A client's X-Request-Id is echoed only when it is short and plain; otherwise a new one is made.
 REQUEST_ID = re.compile(rb"[A-Za-z0-9._-]{1,64}")
 WWW_AUTHENTICATE = 'Bearer realm="tallyward"'
+UI_PREFIX = "/ui/"
 
 DESCRIPTION = """Tallyward ingests vehicle-detector interval counts, learns each detector's
 time-of-day rhythm, and raises advisory alerts for likely detector faults, traffic events and
@@ -61,7 +63,9 @@ class KeyBeforeBody:
         self._permissions: list[tuple[Any, str]] | None = None
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
-        if scope["type"] != "http" or scope.get("method") not in WRITE_METHODS:
+        if (scope["type"] != "http" or scope.get("method") not in WRITE_METHODS
+                or scope.get("path", "").startswith(UI_PREFIX)):
+            # The web view's forms authenticate by session cookie and CSRF token (service.web.ui).
             await self.app(scope, receive, send)
             return
         state = scope["app"].state
@@ -325,6 +329,7 @@ def create_app(settings: Settings | None = None, *, engine: Engine | None = None
     app.include_router(alerts.detector_router)
     app.include_router(jobs.router)
     app.include_router(planners.router)
+    install_ui(app)  # the operations web view under /ui/ (and / redirecting there)
     # Outermost last: every answer (401, 408, 413 included) gets a request id and a log line,
     # and the key is checked before the body is read.
     app.add_middleware(BodyLimit, max_bytes=settings.max_body_bytes,
