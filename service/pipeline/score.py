@@ -52,6 +52,7 @@ from service.stats.calendar import local_time_grid
 from service.stats.capacity import capacity_cap
 from service.stats.thresholds import Thresholds
 from service.stats.timeline import WarmState, score_timeline
+from service.stats.windows import complete_window_end, window_sums
 from service.store import scoring as store
 from service.store.baselines import BaselineCache, save_thresholds
 from service.store.engine import read_transaction, write_transaction
@@ -185,7 +186,13 @@ def _plan(conn: Connection, claim: Claim, info: DetectorInfo, clock: float, sett
     """The claim with its warm state parsed, and the pieces to score."""
     if isinstance(claim.warm_state, str):
         claim = dataclasses.replace(claim, warm_state=orjson.loads(claim.warm_state))
-    latest = store.latest_count_start(conn, claim.detector_id)
+    # Only an interval past the clock's end matters to plan_segments: read no further back.
+    since = int(clock) - settings.missing_grace_s - 2 * info.interval_s - 86_400
+    latest = store.latest_count_start(conn, claim.detector_id, since_s=since)
+    if latest is not None and info.reported_interval_s is not None:
+        # Short intervals are scored on window sums: the last complete window's start.
+        latest = complete_window_end(latest, interval_s=info.reported_interval_s,
+                                     window_s=info.interval_s) - info.interval_s
     pieces = plan_segments(claim, info, latest_present_s=latest, clock=clock,
                            grace_s=settings.missing_grace_s, offsets=cache.offsets)
     return claim, info, pieces
@@ -212,6 +219,10 @@ def _score_one(conn: Connection, claim: Claim, info: DetectorInfo, pieces: list[
         return Scored(info, claim.baseline_id, -1, -1, warm_state=claim.warm_state)
     base, thresholds, derived = _model(conn, claim, info, settings, cache)
     starts, counts = data.get(info.detector_id, (np.empty(0, np.int64), np.empty(0, np.int64)))
+    if info.reported_interval_s is not None:
+        # Short intervals (service.stats.windows): judged on window sums, as fitted.
+        starts, counts = window_sums(starts, counts, interval_s=info.reported_interval_s,
+                                     window_s=info.interval_s)
     scored = Scored(info, claim.baseline_id, pieces[0][1], pieces[-1][2],
                     new_thresholds=thresholds if derived else None)
     for run_from, keep_from, end, warm in pieces:

@@ -18,6 +18,7 @@ from typing import Any
 import orjson
 from sqlalchemy import Connection, Engine, func, select, update
 
+from service.domain import scoring_interval_s
 from service.errors import NotFound
 from service.store import tables
 from service.store.engine import read_transaction, write_transaction
@@ -62,7 +63,9 @@ def alert_public(row: Any, interval_s: int | None) -> dict[str, Any]:
 
 def _intervals(conn: Connection) -> dict[str, int]:
     d = tables.detectors
-    return {r.detector_id: r.interval_s for r in conn.execute(select(d.c.detector_id, d.c.interval_s))}
+    # Alerts are on the scoring grid (window sums for short intervals).
+    return {r.detector_id: scoring_interval_s(r.interval_s)
+            for r in conn.execute(select(d.c.detector_id, d.c.interval_s))}
 
 
 def _group_step(row: Any, intervals: dict[str, int]) -> int | None:
@@ -172,10 +175,11 @@ def detector_health(engine: Engine, detector_id: str, *,
             flagged = conn.execute(select(func.count(func.distinct(e.c.start_s))).where(
                 e.c.detector_id == detector_id, e.c.start_s >= lo, e.c.start_s < now)).scalar_one()
             intervals = span // det.interval_s
+            scored = span // scoring_interval_s(det.interval_s)  # evidence is on this grid
             windows[name] = {"from": format_utc(lo), "until": format_utc(now),
                              "intervals": intervals, "reported": present,
                              "completeness": round(present / intervals, 4),
-                             "flagged_share": round(flagged / intervals, 4)}
+                             "flagged_share": round(flagged / scored, 4)}
     return {"detector_id": detector_id, **windows,
             "open_alerts": [{"id": r.alert_id, "kind": r.kind, "start": format_utc(r.start_s)}
                             for r in open_alerts]}

@@ -21,10 +21,15 @@ from typing import Any
 
 import numpy as np
 import orjson
-from sqlalchemy import Connection, Engine, case, delete, func, or_, select, update
+from sqlalchemy import Connection, Engine, case, delete, func, literal, or_, select, update
 
 from service.config import Settings
-from service.domain import MIN_INTERVAL_S
+from service.domain import (
+    MIN_INTERVAL_S,
+    MIN_WINDOW_INTERVAL_S,
+    SHORT_INTERVAL_WINDOW_S,
+    scoring_interval_s,
+)
 from service.store import tables as models
 from service.store.alerts import next_seqs
 from service.store.engine import is_sqlite, read_transaction, write_transaction
@@ -86,6 +91,13 @@ class Claim:
     warm_state: Any  # as stored (JSON text); parsed when this detector is scored
 
 
+def _scoring_step():
+    """The detectors' scoring interval as SQL (``service.domain.scoring_interval_s``)."""
+    d = models.detectors
+    return case((d.c.interval_s < MIN_WINDOW_INTERVAL_S, literal(SHORT_INTERVAL_WINDOW_S)),
+                else_=d.c.interval_s)
+
+
 def claim(engine: Engine, settings: Settings, *, limit: int = 64) -> tuple[list[Claim], float]:
     """Lease up to ``limit`` detectors that need scoring."""
     s, d = models.detector_state, models.detectors
@@ -94,7 +106,7 @@ def claim(engine: Engine, settings: Settings, *, limit: int = 64) -> tuple[list[
     def due_query(clock: float):
         due = or_(s.c.dirty_from_s.is_not(None), s.c.claimed_from_s.is_not(None),
                   s.c.scored_through_s.is_(None),
-                  s.c.scored_through_s + d.c.interval_s + settings.missing_grace_s <= clock)
+                  s.c.scored_through_s + _scoring_step() + settings.missing_grace_s <= clock)
         return (select(s.c.detector_id, s.c.baseline_id, s.c.score_from_s, s.c.dirty_from_s,
                        s.c.claimed_from_s, s.c.scored_through_s, s.c.warm_state)
                 .join(d, d.c.detector_id == s.c.detector_id)
@@ -136,7 +148,7 @@ def _due_by_clock(clock: float, settings: Settings):
     The first term only narrows the range so that the scored_through_s index is used."""
     s, d = models.detector_state, models.detectors
     return (s.c.scored_through_s <= math.floor(clock) - settings.missing_grace_s - MIN_INTERVAL_S,
-            s.c.scored_through_s + d.c.interval_s + settings.missing_grace_s <= clock)
+            s.c.scored_through_s + _scoring_step() + settings.missing_grace_s <= clock)
 
 
 def _backlog_query(clock: float, settings: Settings):
@@ -211,7 +223,7 @@ def scoring_health(conn: Connection, settings: Settings, *, now: float | None = 
         .scalar_subquery(),
         select(func.min(s.c.scored_through_s)).join(d, d.c.detector_id == s.c.detector_id)
         .where(has_baseline, *by_clock).scalar_subquery(),
-        select(func.min(s.c.scored_through_s + d.c.interval_s))
+        select(func.min(s.c.scored_through_s + _scoring_step()))
         .join(d, d.c.detector_id == s.c.detector_id)
         .where(has_baseline, not_failing, *by_clock).scalar_subquery(),
         select(func.min(s.c.pending_since_s)).where(has_baseline, not_failing)
@@ -269,6 +281,9 @@ class DetectorInfo:
     timezone: str
     holiday_calendar: str | None
     capacity_per_lane_h: float | None
+    # interval_s above is the scoring interval (service.domain.scoring_interval_s); this is the
+    # interval the detector reports at, when it differs (None: the same)
+    reported_interval_s: int | None = None
 
 
 def load_infos(conn: Connection, ids: Iterable[str] | None = None) -> dict[str, DetectorInfo]:
@@ -277,14 +292,25 @@ def load_infos(conn: Connection, ids: Iterable[str] | None = None) -> dict[str, 
                d.c.interval_s, d.c.timezone, d.c.holiday_calendar, d.c.capacity_per_lane_h)
     if ids is not None:
         q = q.where(d.c.detector_id.in_(list(ids)))
-    return {r.detector_id: DetectorInfo(*r) for r in conn.execute(q)}
+    out = {}
+    for r in conn.execute(q):
+        step = scoring_interval_s(r.interval_s)
+        out[r.detector_id] = DetectorInfo(
+            r.detector_id, r.label, r.group_id, r.road_class, r.lanes, step, r.timezone,
+            r.holiday_calendar, r.capacity_per_lane_h,
+            reported_interval_s=r.interval_s if r.interval_s != step else None)
+    return out
 
 
-def latest_count_start(conn: Connection, detector_id: str) -> int | None:
-    """Start of the detector's latest stored interval, if any."""
+def latest_count_start(conn: Connection, detector_id: str, *, since_s: int | None = None
+                       ) -> int | None:
+    """Start of the detector's latest stored interval (at or after ``since_s`` when given, so
+    that a partitioned table reads only recent partitions), if any."""
     c = models.counts
-    return conn.execute(select(func.max(c.c.start_s)).where(
-        c.c.detector_id == detector_id)).scalar()
+    q = select(func.max(c.c.start_s)).where(c.c.detector_id == detector_id)
+    if since_s is not None:
+        q = q.where(c.c.start_s >= since_s)
+    return conn.execute(q).scalar()
 
 
 def counts_between(conn: Connection, detector_ids: Sequence[str], lo: int, hi: int
