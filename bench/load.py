@@ -272,7 +272,8 @@ def _feed_and_measure(base: str, headers: dict, engine, network: Network, *, fro
         began = time.time()
         errors: list[str] = []
 
-        def send(part: list[bytes], client: httpx.Client) -> None:
+        def send(part: list[bytes], client: httpx.Client,
+                 errors: list[str] = errors) -> None:
             for body in part:
                 r = client.post(base + "/v1/counts", content=body)
                 if r.status_code >= 300:

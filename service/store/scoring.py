@@ -146,7 +146,7 @@ def _due_by_clock(clock: float, settings: Settings):
     """Conditions on detector_state joined to detectors: scored intervals lag the clock.
 
     The first term only narrows the range so that the scored_through_s index is used."""
-    s, d = models.detector_state, models.detectors
+    s = models.detector_state
     return (s.c.scored_through_s <= math.floor(clock) - settings.missing_grace_s - MIN_INTERVAL_S,
             s.c.scored_through_s + _scoring_step() + settings.missing_grace_s <= clock)
 
@@ -313,6 +313,36 @@ def latest_count_start(conn: Connection, detector_id: str, *, since_s: int | Non
     return conn.execute(q).scalar()
 
 
+def latest_count_starts(conn: Connection, detector_ids: Sequence[str], *, since_s: int
+                        ) -> dict[str, int]:
+    """Each detector's latest stored interval start at or after ``since_s`` (detectors with
+    none are left out): one query for a whole pass instead of one per detector."""
+    c = models.counts
+    out: dict[str, int] = {}
+    for i in range(0, len(detector_ids), 500):
+        chunk = list(detector_ids[i : i + 500])
+        out.update({det: int(t) for det, t in conn.execute(
+            select(c.c.detector_id, func.max(c.c.start_s))
+            .where(c.c.detector_id.in_(chunk), c.c.start_s >= since_s)
+            .group_by(c.c.detector_id))})
+    return out
+
+
+def subjects_with_recent_alerts(conn: Connection, detector_ids: Sequence[str], since_s: int
+                                ) -> set[str]:
+    """The detectors (of ``detector_ids``) with an alert that is open or ends at or after
+    ``since_s``, withdrawn ones included: only these can have alerts to reconcile when their
+    rescored span has no evidence."""
+    a = models.alerts
+    out: set[str] = set()
+    for i in range(0, len(detector_ids), 500):
+        chunk = list(detector_ids[i : i + 500])
+        out.update(conn.execute(select(a.c.subject).where(
+            a.c.subject.in_(chunk), or_(a.c.status == "open", a.c.end_s >= since_s))
+            .distinct()).scalars())
+    return out
+
+
 def counts_between(conn: Connection, detector_ids: Sequence[str], lo: int, hi: int
                    ) -> dict[str, tuple[np.ndarray, np.ndarray]]:
     """Each detector's (start_s, count) arrays for intervals starting in [lo, hi)."""
@@ -335,15 +365,18 @@ def counts_between(conn: Connection, detector_ids: Sequence[str], lo: int, hi: i
 
 
 def store_scored(conn: Connection, *, detector_id: str, keep_from_s: int, end_s: int,
-                 rows: Sequence[dict[str, Any]], warm_state: Any, now: float) -> bool:
+                 rows: Sequence[dict[str, Any]], warm_state: Any, now: float) -> tuple[bool, int]:
     """Replace the detector's evidence in [keep_from_s, end_s) by ``rows``, advance its scoring
-    state and release its lease. False (lease released only) when nothing new was scored."""
+    state and release its lease. Returns (live, evidence rows removed); live is False (lease
+    released only) when nothing new was scored."""
     e, s = models.evidence, models.detector_state
     values: dict[str, Any] = {"lease_until_s": None, "claimed_from_s": None, "updated_s": now}
     live = end_s > keep_from_s >= 0
+    removed = 0
     if live:
-        conn.execute(delete(e).where(e.c.detector_id == detector_id,
-                                     e.c.start_s >= keep_from_s, e.c.start_s < end_s))
+        removed = conn.execute(delete(e).where(e.c.detector_id == detector_id,
+                                               e.c.start_s >= keep_from_s,
+                                               e.c.start_s < end_s)).rowcount or 0
         if rows:
             conn.execute(e.insert(), list(rows))
         values.update(scored_through_s=end_s,
@@ -351,7 +384,7 @@ def store_scored(conn: Connection, *, detector_id: str, keep_from_s: int, end_s:
                                               option=orjson.OPT_SERIALIZE_NUMPY).decode()
                       if warm_state is not None else None)
     conn.execute(update(s).where(s.c.detector_id == detector_id).values(**values))
-    return live
+    return live, removed
 
 
 def evidence_rows(conn: Connection, detector_ids: Sequence[str], lo: int, hi: int,
