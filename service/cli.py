@@ -344,6 +344,14 @@ def cmd_worker(args: argparse.Namespace, settings: Settings) -> int:
     return 0
 
 
+def cmd_maintain(args: argparse.Namespace, settings: Settings) -> int:
+    from service.pipeline.retention import maintain_storage
+
+    report = maintain_storage(_engine(settings), settings, time_arg(args.now))
+    print(orjson.dumps(report.to_dict()).decode())
+    return 0
+
+
 # ----------------------------------------------------------------------------- parser
 
 
@@ -440,6 +448,11 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--workers", type=int, default=max(1, min(4, os.cpu_count() or 1)))
     s.add_argument("--quiet", action="store_true", help="no progress bar")
     s.set_defaults(func=cmd_figures)
+
+    s = sub.add_parser("maintain", help="storage maintenance: partitions ahead, hourly totals, "
+                       "expiry of raw intervals (run from cron or a worker)")
+    s.add_argument("--now", help="RFC 3339 clock for the pass (default: the wall clock)")
+    s.set_defaults(func=cmd_maintain)
 
     for register in command_plugins():
         register(sub)

@@ -130,6 +130,31 @@ class Settings(BaseSettings):
         description="SQLite: how long a write waits for another writer's lock (seconds) before "
         "the request answers 503 with Retry-After.",
     )
+    # Storage maintenance (``tallyward maintain``; service.pipeline.retention.maintain_storage)
+    raw_retention_days: int = Field(
+        0, ge=0, le=36_500,
+        description="Raw intervals older than this many days are removed by maintenance after "
+        "their hourly totals are stored (days; 0 = keep every interval). On PostgreSQL whole "
+        "partitions are dropped, so intervals are kept up to one partition longer.",
+    )
+    partition_days: int = Field(
+        7, ge=1, le=366,
+        description="PostgreSQL: days of intervals per counts partition (UTC-aligned ranges).",
+    )
+    partition_ahead_days: int = Field(
+        14, ge=1, le=3660,
+        description="PostgreSQL: maintenance creates counts partitions this many days ahead "
+        "of the clock (days).",
+    )
+    rollup_refresh_days: int = Field(
+        2, ge=1, le=366,
+        description="Maintenance recomputes hourly totals over this many recent days, so late "
+        "intervals and rescored flags reach them (days).",
+    )
+    retention_batch_rows: int = Field(
+        10_000, ge=100, le=10_000_000,
+        description="SQLite: most expired intervals deleted per transaction (rows).",
+    )
 
     # Workers and rolling refits (see `tallyward worker`).
     refits: Literal["auto", "nightly", "off"] = Field(

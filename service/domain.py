@@ -24,28 +24,45 @@ import re
 # ---------------------------------------------------------------------------- intervals
 
 SECONDS_PER_HOUR = 3600
-MIN_INTERVAL_S = 60  # seconds
+# Short intervals: freeway controllers report every 20 or 30 s. A lane then sees a few vehicles
+# per interval (often none at night), too few for single-interval tests, so such detectors are
+# fitted and scored on their counts summed to SHORT_INTERVAL_WINDOW_S windows (see
+# scoring_interval_s): the statistics then judge windows with enough expected vehicles.
+SHORT_INTERVALS_S: tuple[int, ...] = (20, 30)  # seconds; each divides SHORT_INTERVAL_WINDOW_S
+SHORT_INTERVAL_WINDOW_S = 300  # seconds: the window short intervals are summed to
+MIN_INTERVAL_S = SHORT_INTERVALS_S[0]  # seconds: the shortest interval a detector may report
+MIN_WINDOW_INTERVAL_S = 60  # seconds: from here up, intervals are fitted and scored as reported
 MAX_INTERVAL_S = 3600  # seconds
 # Why "divides an hour": the baseline bins the local day into interval-long bins and keeps its
 # UTC phase across DST changes (which move the clock by whole hours almost everywhere), and the scoring thresholds
 # count intervals per week. A divisor of 3,600 s satisfies both; 1,440 s (which divides a day
 # but not an hour) does not, so it is refused at registration instead of failing every fit.
-ALLOWED_INTERVALS_S: tuple[int, ...] = tuple(
-    s for s in range(MIN_INTERVAL_S, MAX_INTERVAL_S + 1) if SECONDS_PER_HOUR % s == 0)
+ALLOWED_INTERVALS_S: tuple[int, ...] = SHORT_INTERVALS_S + tuple(
+    s for s in range(MIN_WINDOW_INTERVAL_S, MAX_INTERVAL_S + 1) if SECONDS_PER_HOUR % s == 0)
 INTERVAL_RULE_TEXT = (
-    f"{MIN_INTERVAL_S}..{MAX_INTERVAL_S} seconds and divide one hour (3600 s) exactly: "
+    "20 or 30 seconds (fitted and scored on 5-minute sums), or "
+    f"{MIN_WINDOW_INTERVAL_S}..{MAX_INTERVAL_S} seconds and divide one hour (3600 s) exactly: "
     + ", ".join(str(s) for s in ALLOWED_INTERVALS_S))
 # The same rule as SQL, for the detectors table's CHECK constraint (SQLite and PostgreSQL).
-INTERVAL_CHECK_SQL = (f"interval_s >= {MIN_INTERVAL_S} AND interval_s <= {MAX_INTERVAL_S} "
-                      f"AND {SECONDS_PER_HOUR} % interval_s = 0")
+INTERVAL_CHECK_SQL = (f"(interval_s >= {MIN_WINDOW_INTERVAL_S} AND interval_s <= {MAX_INTERVAL_S} "
+                      f"AND {SECONDS_PER_HOUR} % interval_s = 0) OR interval_s IN "
+                      f"({', '.join(str(s) for s in SHORT_INTERVALS_S)})")
 
 
 def interval_ok(interval_s: object) -> bool:
     """True when ``interval_s`` (seconds) is an interval length that can be fitted and scored:
-    an integer from 60 to 3600 that divides 3600."""
+    20 or 30, or an integer from 60 to 3600 that divides 3600."""
     return (isinstance(interval_s, int) and not isinstance(interval_s, bool)
-            and MIN_INTERVAL_S <= interval_s <= MAX_INTERVAL_S
-            and SECONDS_PER_HOUR % interval_s == 0)
+            and (interval_s in SHORT_INTERVALS_S
+                 or (MIN_WINDOW_INTERVAL_S <= interval_s <= MAX_INTERVAL_S
+                     and SECONDS_PER_HOUR % interval_s == 0)))
+
+
+def scoring_interval_s(interval_s: int) -> int:
+    """The interval (seconds) a detector reporting every ``interval_s`` is fitted and scored on:
+    its own from 60 s up, SHORT_INTERVAL_WINDOW_S for the short intervals (their counts summed
+    per window; a window counts as reported only when all its intervals arrived)."""
+    return SHORT_INTERVAL_WINDOW_S if interval_s < MIN_WINDOW_INTERVAL_S else interval_s
 
 
 def interval_error(interval_s: object) -> str | None:

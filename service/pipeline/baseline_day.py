@@ -124,11 +124,12 @@ def baseline_day(engine: Engine, detector_id: str, *, day: date | None, day_type
     cur = current_baseline(engine, detector_id)
     det, base = cur.detector, cur.baseline
     if day is not None:
-        grid = local_day_grid(day, interval_s=det.interval_s, timezone=det.timezone,
+        # base.interval_s: short-interval detectors are modeled on window sums
+        grid = local_day_grid(day, interval_s=base.interval_s, timezone=det.timezone,
                               holiday_calendar=det.holiday_calendar)
     else:
         assert day_type is not None
-        grid = day_type_grid(day_type, interval_s=det.interval_s,
+        grid = day_type_grid(day_type, interval_s=base.interval_s,
                              bins_per_day=base.bins_per_day)
     mu, log_se, day_alpha, interval_alpha = base.expected_for(grid.day_type_code, grid.bin)
     low, high = predictive_interval(mu, log_se, day_alpha, interval_alpha, level=level)
@@ -138,7 +139,7 @@ def baseline_day(engine: Engine, detector_id: str, *, day: date | None, day_type
     data = [{"start": lab, "expected": round(float(m), 3), "low": int(lo_), "high": int(hi_)}
             for lab, m, lo_, hi_ in zip(grid.labels, mu, low, high, strict=True)]
     return {"detector_id": detector_id, "date": None if day is None else day.isoformat(),
-            "day_type": grid.day_type, "level": level, "interval_s": det.interval_s,
+            "day_type": grid.day_type, "level": level, "interval_s": base.interval_s,
             "model": _model(cur.row, base, grid.day_type),
             "expected_total": round(float(np.sum(mu))), "warning": warning, "data": data}
 

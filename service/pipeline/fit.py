@@ -18,13 +18,21 @@ import numpy as np
 from sqlalchemy import Connection, Engine, select
 
 from service.config import Settings
+from service.domain import scoring_interval_s
 from service.stats import baseline as bl
 from service.stats.baseline_thresholds import thresholds_for_baseline
+from service.stats.windows import window_sums
 from service.store import tables as models
 from service.store.baselines import insert_baseline, point_scoring_at, thresholds_to_json
 from service.store.engine import make_worker_engine, read_transaction, write_transaction
 
 DAY_S = 86_400
+
+
+# The fit's read of one detector's history; {mark} is the driver's placeholder. The range on
+# start_s lets PostgreSQL read only the partitions of the fit window.
+HISTORY_SQL = ("SELECT start_s, count FROM counts WHERE detector_id = {mark} AND "
+               "start_s >= {mark} AND start_s < {mark} ORDER BY start_s")
 
 
 def _load_history(conn: Connection, detector_id: str, lo: int, hi: int
@@ -33,9 +41,7 @@ def _load_history(conn: Connection, detector_id: str, lo: int, hi: int
     # The raw driver cursor: SQLAlchemy Row objects cost ~20x more per value here.
     cur = conn.connection.driver_connection.cursor()  # type: ignore[union-attr]
     try:
-        cur.execute(f"SELECT start_s, count FROM counts WHERE detector_id = {mark} AND "
-                    f"start_s >= {mark} AND start_s < {mark} ORDER BY start_s",
-                    (detector_id, lo, hi))
+        cur.execute(HISTORY_SQL.format(mark=mark), (detector_id, lo, hi))
         flat = np.fromiter(itertools.chain.from_iterable(cur.fetchall()), dtype=np.int64)
     finally:
         cur.close()
@@ -86,9 +92,15 @@ def fit_one(engine: Engine, detector_id: str, *, as_of_s: int, settings: Setting
         if det is None:
             return {"detector_id": detector_id, "status": "failed", "reason": "unknown detector"}
         start_s, counts = _load_history(conn, detector_id, lo, as_of_s)
+        step = scoring_interval_s(det.interval_s)
+        if step != det.interval_s:
+            # Short intervals are modeled on window sums (service.stats.windows).
+            start_s, counts = window_sums(start_s, counts, interval_s=det.interval_s,
+                                          window_s=step)
         exclude = _excluded(conn, detector_id, start_s, lo, as_of_s)
     try:
-        result = _fit(det, start_s, counts, exclude, as_of_s=as_of_s, settings=settings)
+        result = _fit(det, start_s, counts, exclude, interval_s=step, as_of_s=as_of_s,
+                      settings=settings)
     except Exception as exc:  # noqa: BLE001 - one detector's failure must not stop the network
         return {"detector_id": detector_id, "status": "failed",
                 "reason": f"{type(exc).__name__}: {exc}"}
@@ -100,7 +112,7 @@ def fit_one(engine: Engine, detector_id: str, *, as_of_s: int, settings: Setting
     thresholds_json = None
     if thresholds:
         thresholds_json = thresholds_to_json(thresholds_for_baseline(
-            result.baseline, interval_s=det.interval_s,
+            result.baseline, interval_s=step,
             false_alerts_per_week=settings.false_alerts_per_week))
     now = time.time()
     with write_transaction(engine) as conn:
@@ -115,10 +127,11 @@ def fit_one(engine: Engine, detector_id: str, *, as_of_s: int, settings: Setting
 
 
 def _fit(det: Any, start_s: np.ndarray, counts: np.ndarray, exclude: np.ndarray, *,
-         as_of_s: int, settings: Settings) -> bl.FitResult:
-    """The baseline of a detector's registry row ``det`` from its history."""
+         interval_s: int, as_of_s: int, settings: Settings) -> bl.FitResult:
+    """The baseline of a detector's registry row ``det`` from its history on the
+    ``interval_s`` grid (the scoring interval)."""
     return bl.fit_baseline(
-        start_s, counts, interval_s=det.interval_s, timezone=det.timezone,
+        start_s, counts, interval_s=interval_s, timezone=det.timezone,
         holiday_calendar=det.holiday_calendar, as_of_s=as_of_s,
         window_days=settings.fit_window_days, half_life_days=settings.fit_half_life_days,
         min_completeness=settings.fit_min_completeness, exclude=exclude)

@@ -51,8 +51,10 @@ from service.stats import baseline as bl
 from service.stats.baseline_thresholds import thresholds_for_baseline
 from service.stats.calendar import local_time_grid
 from service.stats.capacity import capacity_cap
+from service.stats.episodes import NO_REPORTS_REOPEN_S
 from service.stats.thresholds import Thresholds
 from service.stats.timeline import WarmState, score_timeline
+from service.stats.windows import complete_window_end, window_sums
 from service.store import scoring as store
 from service.store.baselines import BaselineCache, save_thresholds
 from service.store.detectors import detector_count, return_due
@@ -175,12 +177,18 @@ def score_claims(conn: Connection, claims: Sequence[Claim], clock: float, settin
         settings = settings.model_copy(update={"false_alerts_per_week": budget})
     plans: list[tuple[Claim, DetectorInfo, list[Piece]]] = []
     failed: list[tuple[str, Exception]] = []
+    # Only an interval past the clock's end matters to plan_segments: read no further back
+    # (a partitioned table then reads only recent partitions), for the whole pass at once.
+    longest = max((i.interval_s for i in infos.values()), default=0)
+    latest = store.latest_count_starts(
+        conn, list(infos), since_s=int(clock) - settings.missing_grace_s - 2 * longest - 86_400)
     for claim in claims:
         info = infos.get(claim.detector_id)
         if info is None:
             continue
         try:
-            plans.append(_plan(conn, claim, info, clock, settings, cache))
+            plans.append(_plan(claim, info, latest.get(claim.detector_id), clock, settings,
+                               cache))
         except DBAPIError:
             raise
         except Exception as exc:  # noqa: BLE001 - this detector fails alone; recorded
@@ -200,12 +208,16 @@ def score_claims(conn: Connection, claims: Sequence[Claim], clock: float, settin
     return out, failed
 
 
-def _plan(conn: Connection, claim: Claim, info: DetectorInfo, clock: float, settings: Settings,
-          cache: ScoringCache) -> tuple[Claim, DetectorInfo, list[Piece]]:
-    """The claim with its warm state parsed, and the pieces to score."""
+def _plan(claim: Claim, info: DetectorInfo, latest: int | None, clock: float,
+          settings: Settings, cache: ScoringCache) -> tuple[Claim, DetectorInfo, list[Piece]]:
+    """The claim with its warm state parsed, and the pieces to score (``latest``: the
+    detector's latest recent interval start)."""
     if isinstance(claim.warm_state, str):
         claim = dataclasses.replace(claim, warm_state=orjson.loads(claim.warm_state))
-    latest = store.latest_count_start(conn, claim.detector_id)
+    if latest is not None and info.reported_interval_s is not None:
+        # Short intervals are scored on window sums: the last complete window's start.
+        latest = complete_window_end(latest, interval_s=info.reported_interval_s,
+                                     window_s=info.interval_s) - info.interval_s
     pieces = plan_segments(claim, info, latest_present_s=latest, clock=clock,
                            grace_s=settings.missing_grace_s, offsets=cache.offsets)
     return claim, info, pieces
@@ -232,6 +244,10 @@ def _score_one(conn: Connection, claim: Claim, info: DetectorInfo, pieces: list[
         return Scored(info, claim.baseline_id, -1, -1, warm_state=claim.warm_state)
     base, thresholds, derived = _model(conn, claim, info, settings, cache)
     starts, counts = data.get(info.detector_id, (np.empty(0, np.int64), np.empty(0, np.int64)))
+    if info.reported_interval_s is not None:
+        # Short intervals (service.stats.windows): judged on window sums, as fitted.
+        starts, counts = window_sums(starts, counts, interval_s=info.reported_interval_s,
+                                     window_s=info.interval_s)
     scored = Scored(info, claim.baseline_id, pieces[0][1], pieces[-1][2],
                     new_thresholds=thresholds if derived else None)
     for run_from, keep_from, end, warm in pieces:
@@ -329,11 +345,13 @@ def _write_detectors(conn: Connection, writer: store.AlertWriter, scored: Sequen
     groups to refresh. A detector that fails is added to ``failures``."""
     succeeded: dict[str, None] = {}
     touched: Touched = {}
+    alerted = _alerted(conn, scored, close_after=close_after)
     for sc in scored:
         changes = writer.changes
         try:
             with conn.begin_nested():
-                span = _write_detector(conn, writer, sc, now=now, close_after=close_after)
+                span = _write_detector(conn, writer, sc, now=now, close_after=close_after,
+                                       alerted=sc.info.detector_id in alerted)
         except Exception as exc:  # noqa: BLE001 - this detector fails alone; recorded
             writer.changes = changes
             failures.append((sc.info.detector_id, exc, None))
@@ -367,16 +385,35 @@ def _refresh_groups(conn: Connection, writer: store.AlertWriter, touched: Touche
                 failures.append((sc.info.detector_id, exc, sc.keep_from_s))
 
 
+def _alerted(conn: Connection, scored: Sequence[Scored], *, close_after: int) -> set[str]:
+    """The pass's detectors that may have alerts to reconcile (one query for the pass): an
+    alert open, or ending within the linking gap before the earliest rescored interval."""
+    live = [sc for sc in scored if sc.end_s > sc.keep_from_s >= 0]
+    if not live:
+        return set()
+    gap = max(max(close_after + 1, NO_REPORTS_REOPEN_S // sc.info.interval_s + 1)
+              * sc.info.interval_s for sc in live)
+    return store.subjects_with_recent_alerts(conn, [sc.info.detector_id for sc in live],
+                                             min(sc.keep_from_s for sc in live) - gap)
+
+
 def _write_detector(conn: Connection, writer: store.AlertWriter, sc: Scored, *, now: float,
-                    close_after: int) -> tuple[int, int] | None:
+                    close_after: int, alerted: bool = True) -> tuple[int, int] | None:
     """One detector's evidence, scoring state and alerts; the span its alerts were rebuilt
-    over, or None when there was nothing new to score."""
+    over, or None when there was nothing new to score.
+
+    A quiet detector (no evidence in the rescored span and no alert that could reach into
+    it, ``alerted`` False) has nothing to reconcile: its episodes would be empty and no stored
+    alert could change. Its group is refreshed only when evidence was removed."""
     if sc.new_thresholds is not None:
         save_thresholds(conn, sc.baseline_id, sc.new_thresholds)
-    live = store.store_scored(conn, detector_id=sc.info.detector_id, keep_from_s=sc.keep_from_s,
-                              end_s=sc.end_s, rows=sc.rows, warm_state=sc.warm_state, now=now)
+    live, removed = store.store_scored(conn, detector_id=sc.info.detector_id,
+                                       keep_from_s=sc.keep_from_s, end_s=sc.end_s, rows=sc.rows,
+                                       warm_state=sc.warm_state, now=now)
     if not live:
         return None
+    if not alerted and not sc.rows:
+        return (sc.keep_from_s, sc.end_s) if removed else None
     return reconcile_detector(conn, writer, sc.info, baseline_id=sc.baseline_id,
                               keep_from_s=sc.keep_from_s, end_s=sc.end_s,
                               close_after=close_after)

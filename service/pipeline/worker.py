@@ -22,6 +22,7 @@ from typing import Any
 
 from service.config import Settings
 from service.pipeline import jobs
+from service.pipeline.retention import maintain_storage
 from service.pipeline.score import ScoringCache, score_pass
 
 log = logging.getLogger("tallyward.worker")
@@ -40,6 +41,9 @@ class PeriodicTask:
     next_at: float = 0.0  # monotonic seconds
 
 
+MAINTAIN_EVERY_S = 3600.0  # storage upkeep: partitions are made days ahead, so hourly is ample
+
+
 def default_tasks(engine: Any, settings: Settings, *, refits: bool) -> list[PeriodicTask]:
     """Scoring (with the missing-data sweep: intervals that became due without data are
     scored as missing), fit jobs and, with ``refits``, the rolling refit schedule."""
@@ -53,7 +57,15 @@ def default_tasks(engine: Any, settings: Settings, *, refits: bool) -> list[Peri
     if refits:
         tasks.append(PeriodicTask("refits", REFIT_CHECK_S,
                                   lambda: jobs.run_refits(engine, settings)))
+    tasks.append(PeriodicTask("storage", MAINTAIN_EVERY_S, lambda: _maintain(engine, settings)))
     return tasks
+
+
+def _maintain(engine: Any, settings: Settings) -> int:
+    """Storage upkeep (partitions ahead of the clock, hourly totals, expiry); 0: it never
+    asks for an immediate next turn."""
+    maintain_storage(engine, settings)
+    return 0
 
 
 def refits_enabled(settings: Settings, *, in_worker: bool) -> bool:

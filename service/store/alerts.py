@@ -23,6 +23,7 @@ from typing import Any
 import orjson
 from sqlalchemy import Connection, Engine, func, select, update
 
+from service.domain import scoring_interval_s
 from service.errors import NotFound, ValidationFailed
 from service.store import tables
 from service.store.engine import read_transaction, write_transaction
@@ -66,9 +67,22 @@ def alert_public(row: Any, interval_s: int | None) -> dict[str, Any]:
     }
 
 
-def _intervals(conn: Connection) -> dict[str, int]:
+def _intervals(conn: Connection, rows: Any) -> dict[str, int]:
+    """The scoring interval (window sums for short intervals) of the detectors ``rows`` (alert
+    rows) name: read for those only, not for the whole network on every poll."""
     d = tables.detectors
-    return {r.detector_id: r.interval_s for r in conn.execute(select(d.c.detector_id, d.c.interval_s))}
+    ids: set[str] = set()
+    for r in rows:
+        if r.detector_id is not None:
+            ids.add(r.detector_id)
+        if r.detectors:
+            ids.update(orjson.loads(r.detectors))
+    out: dict[str, int] = {}
+    wanted = sorted(ids)
+    for i in range(0, len(wanted), 500):
+        q = select(d.c.detector_id, d.c.interval_s).where(d.c.detector_id.in_(wanted[i:i + 500]))
+        out.update({r.detector_id: scoring_interval_s(r.interval_s) for r in conn.execute(q)})
+    return out
 
 
 def _group_step(row: Any, intervals: dict[str, int]) -> int | None:
@@ -131,7 +145,7 @@ def poll(engine: Engine, *, after: int, status: str, detector_id: str | None, gr
         if start_before_s is not None:
             q = q.where(a.c.start_s < start_before_s)
         rows = conn.execute(q.order_by(a.c.seq).limit(limit)).all()
-        intervals = _intervals(conn) if rows else {}
+        intervals = _intervals(conn, rows) if rows else {}
     data = [alert_public(r, _step(r, intervals)) for r in rows]
     # With filters, rows skipped between seqs are not this poller's business: it may jump to
     # the highest seq committed when the page is not full.
@@ -153,7 +167,7 @@ def _get(conn: Connection, alert_id: int) -> dict[str, Any]:
     row = conn.execute(select(a).where(a.c.alert_id == alert_id)).first()
     if row is None:
         raise NotFound(f"unknown alert {alert_id}")
-    return {**alert_public(row, _step(row, _intervals(conn))),
+    return {**alert_public(row, _step(row, _intervals(conn, [row]))),
             "history": _history(conn, alert_id)}
 
 
@@ -239,10 +253,11 @@ def detector_health(engine: Engine, detector_id: str, *,
             flagged = conn.execute(select(func.count(func.distinct(e.c.start_s))).where(
                 e.c.detector_id == detector_id, e.c.start_s >= lo, e.c.start_s < now)).scalar_one()
             intervals = span // det.interval_s
+            scored = span // scoring_interval_s(det.interval_s)  # evidence is on this grid
             windows[name] = {"from": format_utc(lo), "until": format_utc(now),
                              "intervals": intervals, "reported": present,
                              "completeness": round(present / intervals, 4),
-                             "flagged_share": round(flagged / intervals, 4)}
+                             "flagged_share": round(flagged / scored, 4)}
     return {"detector_id": detector_id, **windows,
             "open_alerts": open_alerts}
 

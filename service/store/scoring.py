@@ -21,10 +21,15 @@ from typing import Any
 
 import numpy as np
 import orjson
-from sqlalchemy import Connection, Engine, and_, case, delete, func, or_, select, update
+from sqlalchemy import Connection, Engine, and_, case, delete, func, literal, or_, select, update
 
 from service.config import Settings
-from service.domain import MIN_INTERVAL_S
+from service.domain import (
+    MIN_INTERVAL_S,
+    MIN_WINDOW_INTERVAL_S,
+    SHORT_INTERVAL_WINDOW_S,
+    scoring_interval_s,
+)
 from service.store import tables as models
 from service.store.alerts import next_seqs
 from service.store.engine import is_sqlite, read_transaction, write_transaction
@@ -86,6 +91,13 @@ class Claim:
     warm_state: Any  # as stored (JSON text); parsed when this detector is scored
 
 
+def _scoring_step():
+    """The detectors' scoring interval as SQL (``service.domain.scoring_interval_s``)."""
+    d = models.detectors
+    return case((d.c.interval_s < MIN_WINDOW_INTERVAL_S, literal(SHORT_INTERVAL_WINDOW_S)),
+                else_=d.c.interval_s)
+
+
 def claim(engine: Engine, settings: Settings, *, limit: int = 64) -> tuple[list[Claim], float]:
     """Lease up to ``limit`` detectors that need scoring."""
     s, d = models.detector_state, models.detectors
@@ -95,9 +107,9 @@ def claim(engine: Engine, settings: Settings, *, limit: int = 64) -> tuple[list[
         # Never scored: due once an interval after score_from_s has ended (before that a
         # pass finds nothing to score, and the claim would come back at once, forever).
         never = and_(s.c.scored_through_s.is_(None),
-                     s.c.score_from_s + d.c.interval_s + settings.missing_grace_s <= clock)
+                     s.c.score_from_s + _scoring_step() + settings.missing_grace_s <= clock)
         due = or_(s.c.dirty_from_s.is_not(None), s.c.claimed_from_s.is_not(None), never,
-                  s.c.scored_through_s + d.c.interval_s + settings.missing_grace_s <= clock)
+                  s.c.scored_through_s + _scoring_step() + settings.missing_grace_s <= clock)
         return (select(s.c.detector_id, s.c.baseline_id, s.c.score_from_s, s.c.dirty_from_s,
                        s.c.claimed_from_s, s.c.scored_through_s, s.c.warm_state)
                 .join(d, d.c.detector_id == s.c.detector_id)
@@ -137,9 +149,9 @@ def _due_by_clock(clock: float, settings: Settings):
     """Conditions on detector_state joined to detectors: scored intervals lag the clock.
 
     The first term only narrows the range so that the scored_through_s index is used."""
-    s, d = models.detector_state, models.detectors
+    s = models.detector_state
     return (s.c.scored_through_s <= math.floor(clock) - settings.missing_grace_s - MIN_INTERVAL_S,
-            s.c.scored_through_s + d.c.interval_s + settings.missing_grace_s <= clock)
+            s.c.scored_through_s + _scoring_step() + settings.missing_grace_s <= clock)
 
 
 def _backlog_query(clock: float, settings: Settings):
@@ -214,7 +226,7 @@ def scoring_health(conn: Connection, settings: Settings, *, now: float | None = 
         .scalar_subquery(),
         select(func.min(s.c.scored_through_s)).join(d, d.c.detector_id == s.c.detector_id)
         .where(has_baseline, *by_clock).scalar_subquery(),
-        select(func.min(s.c.scored_through_s + d.c.interval_s))
+        select(func.min(s.c.scored_through_s + _scoring_step()))
         .join(d, d.c.detector_id == s.c.detector_id)
         .where(has_baseline, not_failing, *by_clock).scalar_subquery(),
         select(func.min(s.c.pending_since_s)).where(has_baseline, not_failing)
@@ -272,6 +284,9 @@ class DetectorInfo:
     timezone: str
     holiday_calendar: str | None
     capacity_per_lane_h: float | None
+    # interval_s above is the scoring interval (service.domain.scoring_interval_s); this is the
+    # interval the detector reports at, when it differs (None: the same)
+    reported_interval_s: int | None = None
 
 
 def load_infos(conn: Connection, ids: Iterable[str] | None = None) -> dict[str, DetectorInfo]:
@@ -280,14 +295,55 @@ def load_infos(conn: Connection, ids: Iterable[str] | None = None) -> dict[str, 
                d.c.interval_s, d.c.timezone, d.c.holiday_calendar, d.c.capacity_per_lane_h)
     if ids is not None:
         q = q.where(d.c.detector_id.in_(list(ids)))
-    return {r.detector_id: DetectorInfo(*r) for r in conn.execute(q)}
+    out = {}
+    for r in conn.execute(q):
+        step = scoring_interval_s(r.interval_s)
+        out[r.detector_id] = DetectorInfo(
+            r.detector_id, r.label, r.group_id, r.road_class, r.lanes, step, r.timezone,
+            r.holiday_calendar, r.capacity_per_lane_h,
+            reported_interval_s=r.interval_s if r.interval_s != step else None)
+    return out
 
 
-def latest_count_start(conn: Connection, detector_id: str) -> int | None:
-    """Start of the detector's latest stored interval, if any."""
+def latest_count_start(conn: Connection, detector_id: str, *, since_s: int | None = None
+                       ) -> int | None:
+    """Start of the detector's latest stored interval (at or after ``since_s`` when given, so
+    that a partitioned table reads only recent partitions), if any."""
     c = models.counts
-    return conn.execute(select(func.max(c.c.start_s)).where(
-        c.c.detector_id == detector_id)).scalar()
+    q = select(func.max(c.c.start_s)).where(c.c.detector_id == detector_id)
+    if since_s is not None:
+        q = q.where(c.c.start_s >= since_s)
+    return conn.execute(q).scalar()
+
+
+def latest_count_starts(conn: Connection, detector_ids: Sequence[str], *, since_s: int
+                        ) -> dict[str, int]:
+    """Each detector's latest stored interval start at or after ``since_s`` (detectors with
+    none are left out): one query for a whole pass instead of one per detector."""
+    c = models.counts
+    out: dict[str, int] = {}
+    for i in range(0, len(detector_ids), 500):
+        chunk = list(detector_ids[i : i + 500])
+        out.update({det: int(t) for det, t in conn.execute(
+            select(c.c.detector_id, func.max(c.c.start_s))
+            .where(c.c.detector_id.in_(chunk), c.c.start_s >= since_s)
+            .group_by(c.c.detector_id))})
+    return out
+
+
+def subjects_with_recent_alerts(conn: Connection, detector_ids: Sequence[str], since_s: int
+                                ) -> set[str]:
+    """The detectors (of ``detector_ids``) with an alert that is open or ends at or after
+    ``since_s``, withdrawn ones included: only these can have alerts to reconcile when their
+    rescored span has no evidence."""
+    a = models.alerts
+    out: set[str] = set()
+    for i in range(0, len(detector_ids), 500):
+        chunk = list(detector_ids[i : i + 500])
+        out.update(conn.execute(select(a.c.subject).where(
+            a.c.subject.in_(chunk), or_(a.c.status == "open", a.c.end_s >= since_s))
+            .distinct()).scalars())
+    return out
 
 
 def counts_between(conn: Connection, detector_ids: Sequence[str], lo: int, hi: int
@@ -312,15 +368,18 @@ def counts_between(conn: Connection, detector_ids: Sequence[str], lo: int, hi: i
 
 
 def store_scored(conn: Connection, *, detector_id: str, keep_from_s: int, end_s: int,
-                 rows: Sequence[dict[str, Any]], warm_state: Any, now: float) -> bool:
+                 rows: Sequence[dict[str, Any]], warm_state: Any, now: float) -> tuple[bool, int]:
     """Replace the detector's evidence in [keep_from_s, end_s) by ``rows``, advance its scoring
-    state and release its lease. False (lease released only) when nothing new was scored."""
+    state and release its lease. Returns (live, evidence rows removed); live is False (lease
+    released only) when nothing new was scored."""
     e, s = models.evidence, models.detector_state
     values: dict[str, Any] = {"lease_until_s": None, "claimed_from_s": None, "updated_s": now}
     live = end_s > keep_from_s >= 0
+    removed = 0
     if live:
-        conn.execute(delete(e).where(e.c.detector_id == detector_id,
-                                     e.c.start_s >= keep_from_s, e.c.start_s < end_s))
+        removed = conn.execute(delete(e).where(e.c.detector_id == detector_id,
+                                               e.c.start_s >= keep_from_s,
+                                               e.c.start_s < end_s)).rowcount or 0
         if rows:
             conn.execute(e.insert(), list(rows))
         values.update(scored_through_s=end_s,
@@ -328,7 +387,7 @@ def store_scored(conn: Connection, *, detector_id: str, keep_from_s: int, end_s:
                                               option=orjson.OPT_SERIALIZE_NUMPY).decode()
                       if warm_state is not None else None)
     conn.execute(update(s).where(s.c.detector_id == detector_id).values(**values))
-    return live
+    return live, removed
 
 
 def evidence_rows(conn: Connection, detector_ids: Sequence[str], lo: int, hi: int,

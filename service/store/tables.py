@@ -84,6 +84,22 @@ counts = Table(
     Index("ix_counts_start_s", "start_s"),
 )
 
+# Hourly totals (UTC hours), kept after the raw intervals expire: vehicles, intervals reported
+# and intervals flagged in ``evidence`` (on the scoring grid). See service.store.rollup.
+# On PostgreSQL ``counts`` is partitioned by range of start_s (migration 0008; the
+# partitions are managed by service.store.partitions), which this description leaves out.
+count_hours = Table(
+    "count_hours",
+    metadata,
+    Column("detector_id", String(64), ForeignKey("detectors.detector_id", ondelete="CASCADE"),
+           primary_key=True),
+    Column("hour_s", BigInteger, primary_key=True),
+    Column("volume", BigInteger, nullable=False),
+    Column("intervals", Integer, nullable=False),
+    Column("flagged", Integer, nullable=False),
+    Index("ix_count_hours_hour_s", "hour_s"),
+)
+
 count_conflicts = Table(
     "count_conflicts",
     metadata,

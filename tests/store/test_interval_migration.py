@@ -38,11 +38,11 @@ def empty_url(request, tmp_path) -> Iterator[str]:  # type: ignore[no-untyped-de
 
 
 def test_migration_states_the_domain_rule() -> None:
-    """The migration's CHECK text is service.domain.INTERVAL_CHECK_SQL."""
+    """The latest interval migration's (0008) CHECK text is service.domain.INTERVAL_CHECK_SQL."""
     import importlib.util
 
-    path = migrate.migrations_dir() / "versions" / "20261210_0004_interval_divides_hour.py"
-    spec = importlib.util.spec_from_file_location("m0004", path)
+    path = migrate.migrations_dir() / "versions" / "20261212_0008_short_intervals_partitions.py"
+    spec = importlib.util.spec_from_file_location("m0008", path)
     assert spec and spec.loader
     module = importlib.util.module_from_spec(spec)
     spec.loader.exec_module(module)
@@ -64,6 +64,8 @@ def test_upgrade_keeps_valid_rows_and_enforces_the_rule(empty_url) -> None:
     for s in REFUSED:
         with pytest.raises(IntegrityError), engine.begin() as conn:
             conn.execute(INSERT, {"d": f"NO{s}", "s": s})
+    with engine.begin() as conn:  # below 0008 short intervals are refused (next test)
+        conn.execute(text("DELETE FROM detectors WHERE interval_s < 60"))
     migrate.downgrade(empty_url, "0003")
     with engine.begin() as conn:
         conn.execute(INSERT, {"d": "BACK", "s": 1440})  # the old range allowed it
@@ -81,4 +83,18 @@ def test_upgrade_stops_naming_rows_that_break_the_rule(empty_url) -> None:
     with engine.connect() as conn:
         assert conn.execute(text("SELECT version_num FROM alembic_version")).scalar() == "0003"
         assert conn.execute(text("SELECT interval_s FROM detectors")).scalar() == 1440
+    engine.dispose()
+
+
+def test_downgrade_below_0008_stops_naming_short_interval_detectors(empty_url) -> None:
+    """A detector at 20 s cannot be held by the older rule: the downgrade stops, naming it,
+    and the schema stays at head."""
+    migrate.upgrade(empty_url)
+    engine = create_engine(empty_url)
+    with engine.begin() as conn:
+        conn.execute(INSERT, {"d": "FAST", "s": 20})
+    with pytest.raises(RuntimeError, match=r"FAST"):
+        migrate.downgrade(empty_url, "0005")
+    with engine.connect() as conn:
+        assert conn.execute(text("SELECT interval_s FROM detectors")).scalar() == 20
     engine.dispose()

@@ -25,15 +25,17 @@ HISTORY_DAYS = 15
 DEAD_LOCAL_HOURS = (11, 15)  # the scored day's counts are zero from 11:00 to 15:00 local
 
 
-def test_allowed_intervals_are_the_divisors_of_an_hour_from_60_to_3600() -> None:
-    """The allowed set is every divisor of 3600 from 60 to 3600, and the rule text names it."""
-    assert ALLOWED_INTERVALS_S == tuple(s for s in range(60, 3601) if 3600 % s == 0)
-    assert {60, 300, 900, 3600} <= set(ALLOWED_INTERVALS_S)
-    assert not any(interval_ok(s) for s in (0, 30, 59, 61, 1440, 2880, 3601, 7200, True, 300.0))
+def test_allowed_intervals_are_20_30_and_the_divisors_of_an_hour_from_60_to_3600() -> None:
+    """The allowed set is 20 and 30 s (freeway controllers) and every divisor of 3600 from 60
+    to 3600, and the rule text names it."""
+    assert ALLOWED_INTERVALS_S == (20, 30) + tuple(s for s in range(60, 3601) if 3600 % s == 0)
+    assert {20, 30, 60, 300, 900, 3600} <= set(ALLOWED_INTERVALS_S)
+    assert not any(interval_ok(s) for s in (0, 10, 15, 24, 25, 40, 45, 59, 61, 1440, 2880, 3601,
+                                            7200, True, 300.0, 20.0))
     assert all(str(s) in INTERVAL_RULE_TEXT for s in ALLOWED_INTERVALS_S)
 
 
-@pytest.mark.parametrize("interval_s", [1440, 2880, 64, 96, 7200, 30])
+@pytest.mark.parametrize("interval_s", [1440, 2880, 64, 96, 7200, 45, 15])
 def test_put_detector_refuses_an_interval_no_baseline_can_be_fitted_for(
         client, keys, interval_s) -> None:
     """1440 s divides a day but not an hour: 422 naming interval_s and what is accepted."""
