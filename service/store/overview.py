@@ -117,7 +117,7 @@ def alert_list(engine: Engine, *, status: str, kind: str | None, cause: str | No
         total = conn.execute(select(func.count()).select_from(a).where(and_(*cond))).scalar_one()
         rows = conn.execute(select(a).where(and_(*cond))
                             .order_by(a.c.start_s.desc(), a.c.alert_id.desc()).limit(limit)).all()
-        intervals = _intervals(conn) if rows else {}
+        intervals = _intervals(conn, rows) if rows else {}
     return int(high), [alert_public(r, _step(r, intervals)) for r in rows], int(total)
 
 
@@ -167,7 +167,7 @@ def detector_alerts(engine: Engine, detector_id: str, *, lo_s: int | None = None
     with read_transaction(engine) as conn:
         rows = conn.execute(select(a).where(and_(*cond))
                             .order_by(a.c.start_s.desc()).limit(limit)).all()
-        intervals = _intervals(conn) if rows else {}
+        intervals = _intervals(conn, rows) if rows else {}
     out = []
     for r in rows:
         item = alert_public(r, _step(r, intervals))
