@@ -16,7 +16,7 @@ from service.config import Settings
 from service.pipeline import fit as fitting
 from service.pipeline.retention import maintain_storage
 from service.store import partitions as parts
-from service.store.counts import counts_page_json
+from service.store.counts import counts_page, json_row
 from service.store.scoring import counts_between, latest_count_start
 from tests.conftest import PG_URL
 from tests.factories import make_detector
@@ -201,9 +201,11 @@ def test_scorer_fit_and_api_counts_queries_read_only_the_partitions_they_need(da
             scorer_read = captured[-1]
             latest_count_start(conn, "X1", since_s=base + 7 * week)
             latest_read = captured[-1]
-        counts_page_json(engine, "X1", from_s=day_lo, until_s=day_lo + DAY_S, limit=500,
-                         max_bytes=1 << 20)
-        api_read = captured[-1]
+        mark = len(captured)
+        counts_page(engine, detector_id="X1", group=None, from_s=day_lo, until_s=day_lo + DAY_S,
+                    after=None, limit=500, max_bytes=1 << 20, encode=json_row)
+        # The page's read of counts (the quality flags' reads of evidence and alerts follow it).
+        api_read = next(c for c in captured[mark:] if "FROM counts" in c[0])
     finally:
         event.remove(engine, "before_cursor_execute", capture)
 
