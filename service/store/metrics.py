@@ -34,3 +34,12 @@ def detectors_by_state(conn: Connection) -> dict[str, int]:
     state = d.c[STATE_COLUMN]
     rows = conn.execute(select(state, func.count()).group_by(state))
     return {str(name or IN_SERVICE): int(n) for name, n in rows}
+
+
+def fit_job_seconds(conn: Connection) -> tuple[int, float]:
+    """Fits done by fit jobs (any process: API inline runner or workers): how many, and their
+    seconds in all."""
+    i = tables.job_items
+    n, total = conn.execute(select(func.count(i.c.seconds), func.coalesce(func.sum(i.c.seconds), 0.0))
+                            .where(i.c.seconds.is_not(None))).one()
+    return int(n), float(total)

@@ -14,12 +14,12 @@ Access follows the API key rules (role ``read``), unless ``TALLYWARD_METRICS_PUB
 from __future__ import annotations
 
 import time
-from collections.abc import Iterable, Iterator, Mapping
+from collections.abc import Iterable, Iterator
 from typing import Any
 
 from fastapi import APIRouter, FastAPI, Request, Response
 from prometheus_client import CollectorRegistry, Counter, Histogram, Info
-from prometheus_client.core import GaugeMetricFamily, Metric
+from prometheus_client.core import GaugeMetricFamily, Metric, SummaryMetricFamily
 from prometheus_client.exposition import choose_encoder
 from sqlalchemy import Engine
 from sqlalchemy.exc import SQLAlchemyError
@@ -40,7 +40,6 @@ UNMATCHED = "<unmatched>"  # one label for every path no route matches (bounded 
 # Request latency buckets (seconds): from a cached read to a large batch or export.
 LATENCY_BUCKETS_S = (0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0, 30.0)
 # Fit duration buckets (seconds per detector, thresholds included).
-FIT_BUCKETS_S = (0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0, 30.0, 60.0, 120.0, 300.0)
 
 
 class DatabaseFigures:
@@ -61,12 +60,18 @@ class DatabaseFigures:
                 scoring = scoring_health(conn, self.settings)
                 alerts = figures.open_alerts_by_kind_cause(conn)
                 states = figures.detectors_by_state(conn)
+                fits, fit_seconds = figures.fit_job_seconds(conn)
         except SQLAlchemyError:
             up.add_metric([], 0)
             yield up
             return
         up.add_metric([], 1)
         yield up
+        yield SummaryMetricFamily(
+            "tallyward_fit_duration_seconds",
+            "Baseline fits done by fit jobs (POST /v1/baselines/fit, run by any worker or the "
+            "inline runner): how many and their seconds in all, from the database.",
+            count_value=fits, sum_value=fit_seconds)
         yield GaugeMetricFamily(
             "tallyward_scoring_backlog_detectors",
             "Detectors with scoring work waiting (those waiting for a retry included).",
@@ -117,9 +122,6 @@ class ServiceMetrics:
                                   "HTTP request latency (seconds), by route template.",
                                   ["method", "route", "status"], buckets=LATENCY_BUCKETS_S,
                                   registry=self.registry)
-        self.fits = Histogram("tallyward_fit_duration_seconds",
-                              "Baseline fit duration per detector (seconds), fits run in this "
-                              "process.", buckets=FIT_BUCKETS_S, registry=self.registry)
         Info("tallyward_build", "Version and the settings that shape what is measured.",
              registry=self.registry).info({
                  "version": __version__, "clock": settings.clock, "scoring": settings.scoring,
@@ -138,12 +140,6 @@ class ServiceMetrics:
             by_reason[reason] = by_reason.get(reason, 0) + 1
         for reason, n in by_reason.items():
             self.rejected.labels(reason).inc(n)
-
-    def observe_fits(self, results: Iterable[Mapping[str, Any]]) -> None:
-        """Add the per-detector durations of fits (``pipeline.fit.fit_one`` results)."""
-        for r in results:
-            if r.get("seconds") is not None:
-                self.fits.observe(float(r["seconds"]))
 
     def exposition(self, accept: str | None) -> tuple[bytes, str]:
         """The figures in the format the scraper's Accept header asks for (the classic text
@@ -229,8 +225,3 @@ def observe_batch(app: Any, result: Any) -> None:
         found.observe_batch(result)
 
 
-def observe_fits(app: Any, results: Iterable[Mapping[str, Any]]) -> None:
-    """Record fit durations in ``app``'s metrics (when it has them)."""
-    found = getattr(app.state, "metrics", None)
-    if found is not None:
-        found.observe_fits(results)

@@ -9,6 +9,7 @@ import io
 
 import pytest
 
+from service.timefmt import format_utc
 from service.web.paging import decode_cursor, encode_cursor
 from tests.conftest import auth
 from tests.factories import count_items, make_detector
@@ -208,13 +209,22 @@ def test_baseline_day_as_csv(client, keys, fitted_network) -> None:
         assert float(row["expected"]) == pytest.approx(point["expected"])
 
 
-def test_fit_durations_reach_the_metrics(app, client, keys, fitted_network) -> None:
-    """Fit durations handed to the app's metrics appear in the fit histogram, one per fit."""
-    from service.web import metrics
+def test_fit_durations_reach_the_metrics(client, engine, keys) -> None:
+    """Fits run as a job (by whichever process runs it) appear in the fit summary: one per
+    detector, with the seconds the job items recorded."""
+    from sqlalchemy import func, select
+
+    from service.store import tables
+    from tests.factories import load_network, small_network
+    from tests.web.test_baselines import fit_job
     from tests.web.test_metrics import scrape
 
-    metrics.observe_fits(app, fitted_network)
+    net = small_network(("bra3-nb-lt", "bra3-nb-t1", "bra3-nb-t2"))
+    load_network(engine, net, until_s=net.test_start_s)
+    job = fit_job(client, keys, {"as_of": format_utc(net.test_start_s)})
+    assert job["state"] == "done", job
+    with engine.connect() as conn:
+        recorded = conn.execute(select(func.sum(tables.job_items.c.seconds))).scalar_one()
     got = scrape(client, keys["read"])
     assert got[("tallyward_fit_duration_seconds_count", ())] == 3
-    assert got[("tallyward_fit_duration_seconds_sum", ())] == pytest.approx(
-        sum(r["seconds"] for r in fitted_network))
+    assert got[("tallyward_fit_duration_seconds_sum", ())] == pytest.approx(recorded)
