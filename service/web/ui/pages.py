@@ -596,20 +596,20 @@ def detector_page(
     if prof is not None:
         prow = []
         for name, fig in prof["day_types"].items():
-            peak = fig["peak_hour"]
-            phf = "" if peak["peak_hour_factor"] is None else f'{peak["peak_hour_factor"]:.2f}'
+            peak = fig["busiest_hour"]
             prow.append(
                 f'<tr><th scope="row">{h(name)}</th><td>{_hourly_bars(fig["hourly_volume"], peak["start_s"])}</td>'
                 f'<td class="num">{fig["daily_volume"]:,.0f}</td><td>{h(peak["start"])}</td>'
                 f'<td class="num">{peak["volume"]:,.0f}</td>'
-                f'<td class="num">{peak["share_of_day"]:.1%}</td><td class="num">{phf}</td>'
+                f'<td class="num">{peak["share_of_expected_day"]:.1%}</td>'
                 f'<td>{h(fig["fitted_from"])}</td></tr>')
         prof_html = (
-            '<table class="grid compact"><caption>Baseline profiles (expected, local time)'
+            '<table class="grid compact"><caption>Baseline profiles (expected, local time; '
+            'peak-hour factors and K30 from counted data: GET /v1/detectors/{id}/figures)'
             '</caption><thead><tr><th scope="col">Day type</th><th scope="col">Hourly shape</th>'
-            '<th scope="col">Daily volume</th><th scope="col">Peak hour</th>'
-            '<th scope="col">Peak-hour volume</th><th scope="col">Share of day</th>'
-            '<th scope="col">Peak-hour factor</th><th scope="col">Fitted from</th></tr></thead>'
+            '<th scope="col">Daily volume</th><th scope="col">Busiest hour</th>'
+            '<th scope="col">Busiest-hour volume</th><th scope="col">Share of expected day</th>'
+            '<th scope="col">Fitted from</th></tr></thead>'
             f'<tbody>{"".join(prow)}</tbody></table>')
     else:
         prof_html = '<p class="muted">No baseline fitted yet.</p>'
