@@ -64,8 +64,12 @@ def _span(alert: dict[str, Any]) -> tuple[int, int]:
 
 
 def _touches(alert: dict[str, Any], inj: dict[str, Any]) -> bool:
-    if inj["kind"] == "no_reports" and alert["detector_id"] is None:
-        return alert["group"] == inj["group"]
+    """The alert is about the injection's detectors: its own detector, or for a group alert
+    (an outage, or a traffic shift most of the group shows) its group or member detectors."""
+    if alert["detector_id"] is None:
+        if inj["kind"] == "no_reports" and alert["group"] == inj["group"]:
+            return True
+        return bool(set(alert.get("detectors") or ()) & set(inj["detector_ids"]))
     return alert["detector_id"] in inj["detector_ids"]
 
 
@@ -87,7 +91,8 @@ def evaluate(truth: dict[str, Any], alerts: Iterable[dict[str, Any]], *,
             a_lo, a_hi = _span(a)
             if a_hi <= lo or a_lo >= hi + SLACK_S:
                 continue
-            step = (intervals or {}).get(a["detector_id"] or "", 0)
+            ids = [a["detector_id"]] if a["detector_id"] else list(a.get("detectors") or ())
+            step = min(((intervals or {}).get(d, 0) for d in ids), default=0)
             raised = a_lo + step  # the end of the first anomalous interval
             if best is None or raised < best[0]:
                 best = (raised, a)
