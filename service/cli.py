@@ -329,7 +329,7 @@ def cmd_worker(args: argparse.Namespace, settings: Settings) -> int:
     refits = refits_enabled(settings, in_worker=True)
     _start_line("worker", settings, workers=1, refits="nightly" if refits else "off",
                 refit_hour=settings.refit_hour, first_fit_days=settings.first_fit_days)
-    worker = Worker(default_tasks(engine, settings, refits=refits))
+    worker = Worker(default_tasks(engine, settings, refits=refits, storage=True))
     if args.once:
         done = worker.run_until_idle()
         print(f"worker: {done} units of work done; nothing left", file=sys.stderr)
@@ -445,7 +445,8 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--year", type=int, required=True, help="calendar year, local time")
     s.add_argument("--detector", action="append", help="detector id (repeat); default: all")
     s.add_argument("--out", required=True, help="report path: .csv (one row a detector) or .json")
-    s.add_argument("--workers", type=int, default=max(1, min(4, os.cpu_count() or 1)))
+    s.add_argument("--workers", type=int, default=max(1, min(4, os.cpu_count() or 1)),
+                   help="processes computing figures in parallel")
     s.add_argument("--quiet", action="store_true", help="no progress bar")
     s.set_defaults(func=cmd_figures)
 

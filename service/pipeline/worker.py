@@ -44,9 +44,12 @@ class PeriodicTask:
 MAINTAIN_EVERY_S = 3600.0  # storage upkeep: partitions are made days ahead, so hourly is ample
 
 
-def default_tasks(engine: Any, settings: Settings, *, refits: bool) -> list[PeriodicTask]:
+def default_tasks(engine: Any, settings: Settings, *, refits: bool, storage: bool = False
+                  ) -> list[PeriodicTask]:
     """Scoring (with the missing-data sweep: intervals that became due without data are
-    scored as missing), fit jobs and, with ``refits``, the rolling refit schedule."""
+    scored as missing), fit jobs, with ``refits`` the rolling refit schedule and, with
+    ``storage`` (``tallyward worker`` only: its partition DDL must not run beside the inline
+    runner's own ingest), hourly storage upkeep."""
     cache = ScoringCache()  # parsed baselines and thresholds, for the worker's life
     poll = settings.worker_poll_s
     tasks = [
@@ -57,7 +60,9 @@ def default_tasks(engine: Any, settings: Settings, *, refits: bool) -> list[Peri
     if refits:
         tasks.append(PeriodicTask("refits", REFIT_CHECK_S,
                                   lambda: jobs.run_refits(engine, settings)))
-    tasks.append(PeriodicTask("storage", MAINTAIN_EVERY_S, lambda: _maintain(engine, settings)))
+    if storage:
+        tasks.append(PeriodicTask("storage", MAINTAIN_EVERY_S,
+                                  lambda: _maintain(engine, settings)))
     return tasks
 
 

@@ -288,10 +288,12 @@ def _missing_runs(present, warm: WarmState) -> np.ndarray:
     return miss_len
 
 
-# Flagged intervals (and the guard before a flag) count in the level at 1/4 of their weight:
-# dropping them outright let a false alarm on a quiet detector sustain itself for a day (the
-# level never learned the day's real level, so the held CUSUM never released).
-FLAG_SHIFT = 2
+# Flagged intervals (and the guard before a flag) count in the level at 1/256 of their weight:
+# at 1/4 the level learned a lasting fault (a dead lane of a two-lane station, a chattering
+# card) within an hour and the alert ended while the fault went on
+# (tests/stats/test_scoring.py); dropped outright (weight 0) a false alarm on a quiet detector
+# could never release. The CUSUM's hold cap (cusum.CUSUM_HOLD_VEHICLES) bounds that case.
+FLAG_SHIFT = 8
 # Today's level is more than a day factor. The baseline's own error (log_se) is smooth over the
 # day and hour-scale swings last hours, so consecutive intervals share both: the level's prior
 # variance is day_alpha + (exp(log_se^2) - 1) + SWING_IN_LEVEL * interval_alpha, so that the
