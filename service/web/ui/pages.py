@@ -604,13 +604,14 @@ def detector_page(
                 f'<td class="num">{peak["share_of_expected_day"]:.1%}</td>'
                 f'<td>{h(fig["fitted_from"])}</td></tr>')
         prof_html = (
-            '<table class="grid compact"><caption>Baseline profiles (expected, local time; '
-            'peak-hour factors and K30 from counted data: GET /v1/detectors/{id}/figures)'
+            '<table class="grid compact"><caption>Baseline profiles (expected, local time)'
             '</caption><thead><tr><th scope="col">Day type</th><th scope="col">Hourly shape</th>'
             '<th scope="col">Daily volume</th><th scope="col">Busiest hour</th>'
             '<th scope="col">Busiest-hour volume</th><th scope="col">Share of expected day</th>'
             '<th scope="col">Fitted from</th></tr></thead>'
-            f'<tbody>{"".join(prow)}</tbody></table>')
+            f'<tbody>{"".join(prow)}</tbody></table>'
+            '<p class="muted">Peak-hour factors and K30 come from counted data: '
+            f'GET /v1/detectors/{h(detector_id)}/figures.</p>')
     else:
         prof_html = '<p class="muted">No baseline fitted yet.</p>'
     recent_rows = "".join(
