@@ -6,7 +6,8 @@ decides *what* to score and keeps alerts a pure function of the stored counts an
 
 - Ingest lowers ``detector_state.dirty_from_s`` in the transaction that stores counts
   (``service.store.scoring.mark_dirty``).
-- A scorer (a ``Scorer`` thread in each API worker, or ``tallyward score``) claims dirty
+- A scorer (the worker loop of ``service.pipeline.worker``: a thread of ``tallyward serve``
+  in the inline set-up, or ``tallyward worker`` / ``tallyward score`` processes) claims dirty
   detectors with a lease (``FOR UPDATE SKIP LOCKED`` on PostgreSQL), scores outside any write
   transaction, and writes the results in one short transaction that first takes the
   alert-sequence row lock (see ``service.store.scoring`` for why).
@@ -24,7 +25,7 @@ decides *what* to score and keeps alerts a pure function of the stored counts an
   shows in a batch is still pinned on the detector that causes it.
 
 What a scorer remembers between passes (parsed baselines, thresholds, zone offsets) is a
-``ScoringCache`` owned by the scorer: a ``Scorer`` keeps one for its life, a ``score_pass`` or
+``ScoringCache`` owned by the scorer: a worker loop keeps one for its life, a ``score_pass`` or
 ``score_until_idle`` call without one uses a fresh one for that call.
 """
 
@@ -33,7 +34,6 @@ from __future__ import annotations
 import dataclasses
 import logging
 import math
-import threading
 import time
 from collections.abc import Sequence
 from dataclasses import dataclass, field
@@ -63,7 +63,7 @@ from service.store.scoring import Claim, DetectorInfo, mark_dirty
 from service.timefmt import LocalOffsets
 
 __all__ = [  # mark_dirty is the ingest hook (``after_store``) that feeds this loop
-    "BLOCK_S", "WARMUP_S", "DetectorInfo", "Scored", "Scorer", "ScoringCache", "align_down",
+    "BLOCK_S", "WARMUP_S", "DetectorInfo", "Scored", "ScoringCache", "align_down",
     "detector_budget", "evaluate_piece", "mark_dirty", "plan_segments", "score_claims", "score_pass",
     "score_until_idle", "thresholds_for", "write_scored",
 ]
@@ -80,7 +80,7 @@ class ScoringCache:
     """What a scorer remembers between passes: parsed baselines and their thresholds (by
     baseline id, see ``BaselineCache``) and zone offsets.
 
-    Lifetime: that of its owner (a ``Scorer``, or one ``score_pass`` / ``score_until_idle``
+    Lifetime: that of its owner (a worker loop, or one ``score_pass`` / ``score_until_idle``
     call); it must not outlive the database it was filled from."""
 
     def __init__(self) -> None:
@@ -474,38 +474,3 @@ def score_until_idle(engine: Engine, settings: Settings, *, limit: int = 64,
         total += n
     return total
 
-
-class Scorer:
-    """A background thread that scores as counts arrive (one per API worker process).
-
-    It owns a ``ScoringCache`` for its life: its engine's database outlives it."""
-
-    def __init__(self, engine: Engine, settings: Settings, *, idle_s: float = 1.0) -> None:
-        self.engine = engine
-        self.settings = settings
-        self.idle_s = idle_s
-        self.cache = ScoringCache()
-        self.wake = threading.Event()
-        self.stop_event = threading.Event()
-        self.thread = threading.Thread(target=self._run, name="tallyward-scorer", daemon=True)
-
-    def start(self) -> Scorer:
-        self.thread.start()
-        return self
-
-    def stop(self) -> None:
-        self.stop_event.set()
-        self.wake.set()
-        self.thread.join(30)
-
-    def _run(self) -> None:
-        while not self.stop_event.is_set():
-            try:
-                n = score_pass(self.engine, self.settings, cache=self.cache)
-            except Exception:  # noqa: BLE001 - keep scoring other detectors; logged
-                log.exception("scoring pass failed")
-                n = 0
-                self.stop_event.wait(self.idle_s)
-            if n == 0:
-                self.wake.wait(self.idle_s)
-                self.wake.clear()

@@ -83,7 +83,7 @@ def point_scoring_at(conn: Connection, *, detector_id: str, baseline_id: int, as
 class BaselineCache:
     """Parsed baselines and their thresholds by baseline id, read through from one database.
 
-    Lifetime: that of its owner, one scorer (a ``Scorer`` thread, or one ``score_until_idle`` /
+    Lifetime: that of its owner, one scorer (a worker loop, or one ``score_until_idle`` /
     ``score_pass`` call given none). Entries never go stale while the database lives (stored
     baselines never change), but a cache must not outlive its database: a new database
     restarts the ids. Thread-safe; each map is emptied when it passes ``max_entries``.
