@@ -11,7 +11,6 @@ import subprocess
 import sys
 import tempfile
 import time
-import uuid
 from collections.abc import Iterator
 from pathlib import Path
 
@@ -25,6 +24,7 @@ from service.config import Settings
 from service.store import keys as security
 from service.store import migrations as migrate
 from service.store.engine import make_engine
+from service.store.scratch import scratch_database
 from service.web.app import create_app
 
 PG_URL = os.environ.get("TALLYWARD_TEST_DATABASE_URL")
@@ -74,19 +74,8 @@ def _normalize(url: str) -> str:
 def pg_database() -> Iterator[str]:
     """A throw-away PostgreSQL database for this test session, migrated to head."""
     assert PG_URL
-    server = make_url(_normalize(PG_URL))
-    name = f"tallyward_test_{uuid.uuid4().hex[:10]}"
-    admin = create_engine(server, isolation_level="AUTOCOMMIT")
-    with admin.connect() as conn:
-        conn.execute(text(f'CREATE DATABASE "{name}"'))
-    url = server.set(database=name).render_as_string(hide_password=False)
-    migrate.upgrade(url)
-    yield url
-    with admin.connect() as conn:
-        conn.execute(text(
-            f"SELECT pg_terminate_backend(pid) FROM pg_stat_activity WHERE datname = '{name}'"))
-        conn.execute(text(f'DROP DATABASE IF EXISTS "{name}"'))
-    admin.dispose()
+    with scratch_database(PG_URL, "tallyward_test") as url:
+        yield url
 
 
 @pytest.fixture(scope="session")

@@ -12,7 +12,6 @@ import shutil
 import subprocess
 import sys
 import time
-import uuid
 from collections.abc import Iterator
 from contextlib import ExitStack, contextmanager
 from dataclasses import dataclass, field
@@ -23,14 +22,12 @@ from zoneinfo import ZoneInfo
 
 import httpx
 import pytest
-from sqlalchemy import create_engine, text
-from sqlalchemy.engine import make_url
 
 from service.config import Settings
 from service.pipeline import fit as fitting
 from service.store import keys as security
-from service.store import migrations as migrate
 from service.store.engine import make_engine
+from service.store.scratch import scratch_database
 from tests.conftest import BACKENDS, PG_URL, REPO, LiveServer, auth
 from tests.factories import load_network, make_detector, small_network
 
@@ -155,21 +152,8 @@ def start_patiently(server: LiveServer) -> LiveServer:
 def own_pg_database() -> Iterator[str]:
     """A new PostgreSQL database migrated to head, dropped afterwards."""
     assert PG_URL
-    server = make_url(PG_URL.replace("postgresql://", "postgresql+psycopg://", 1))
-    name = f"tallyward_ui_{uuid.uuid4().hex[:10]}"
-    admin = create_engine(server, isolation_level="AUTOCOMMIT")
-    with admin.connect() as conn:
-        conn.execute(text(f'CREATE DATABASE "{name}"'))
-    url = server.set(database=name).render_as_string(hide_password=False)
-    try:
-        migrate.upgrade(url)
+    with scratch_database(PG_URL, "tallyward_ui") as url:
         yield url
-    finally:
-        with admin.connect() as conn:
-            conn.execute(text("SELECT pg_terminate_backend(pid) FROM pg_stat_activity "
-                              f"WHERE datname = '{name}'"))
-            conn.execute(text(f'DROP DATABASE IF EXISTS "{name}"'))
-        admin.dispose()
 
 
 @pytest.fixture(scope="session")

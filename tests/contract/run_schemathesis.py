@@ -20,7 +20,6 @@ import subprocess
 import sys
 import tempfile
 import time
-import uuid
 import warnings
 from collections import Counter
 from collections.abc import Iterator
@@ -28,14 +27,13 @@ from contextlib import contextmanager
 from pathlib import Path
 
 import httpx
-from sqlalchemy import create_engine, text
-from sqlalchemy.engine import make_url
 
 from service.config import Settings
 from service.pipeline import fit as fitting
 from service.store import keys as security
 from service.store import migrations as migrate
 from service.store.engine import make_engine
+from service.store.scratch import scratch_database
 from tests.factories import load_network, small_network
 
 with warnings.catch_warnings():  # conftest's test-client import warns outside pytest's filters
@@ -80,21 +78,8 @@ def database(backend: str, workdir: Path) -> Iterator[str]:
     server_url = os.environ.get("TALLYWARD_TEST_DATABASE_URL")
     if not server_url:
         raise SystemExit("--database postgresql needs TALLYWARD_TEST_DATABASE_URL")
-    server = make_url(Settings(database_url=server_url).database_url)
-    name = f"tallyward_contract_{uuid.uuid4().hex[:10]}"
-    admin = create_engine(server, isolation_level="AUTOCOMMIT")
-    with admin.connect() as conn:
-        conn.execute(text(f'CREATE DATABASE "{name}"'))
-    try:
-        url = server.set(database=name).render_as_string(hide_password=False)
-        migrate.upgrade(url)
+    with scratch_database(server_url, "tallyward_contract") as url:
         yield url
-    finally:
-        with admin.connect() as conn:
-            conn.execute(text("SELECT pg_terminate_backend(pid) FROM pg_stat_activity "
-                              f"WHERE datname = '{name}'"))
-            conn.execute(text(f'DROP DATABASE IF EXISTS "{name}"'))
-        admin.dispose()
 
 
 def seed(url: str) -> tuple[str, list[dict[str, object]]]:
