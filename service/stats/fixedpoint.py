@@ -24,9 +24,13 @@ def segment_sums(values: np.ndarray, starts_run: np.ndarray, base: int) -> np.nd
 
     Exact in two's-complement arithmetic even if the global cumulative sum wraps.
     """
-    cs = np.cumsum(values)
-    idx = np.arange(values.size)
-    last = np.maximum.accumulate(np.where(starts_run, idx, -1))
-    with np.errstate(over="ignore"):
-        prev = np.where(last > 0, cs[np.maximum(last - 1, 0)], 0)
-        return np.where(last >= 0, cs - prev, cs + np.int64(base))
+    n = values.size
+    cs0 = np.zeros(n + 1, dtype=np.result_type(values, np.int64))
+    np.cumsum(values, out=cs0[1:])  # cs0[k]: sum of the first k values
+    cs = cs0[1:]
+    if not starts_run.any():
+        return cs + np.int64(base)
+    # index of the latest run start at or before each position (-1: none yet)
+    last = np.maximum.accumulate(np.where(starts_run, np.arange(n), -1))
+    # integer arrays wrap silently (two's complement); the difference is exact regardless
+    return np.where(last >= 0, cs - cs0[last], cs + np.int64(base))

@@ -36,37 +36,70 @@ _LARGE_MEAN = 1e5
 def _stirlerr(n: np.ndarray) -> np.ndarray:
     """log(n!) - [(n + 1/2) log n - n + log sqrt(2 pi)], the Stirling error (Loader 2000)."""
     n = np.asarray(n, dtype=float)
-    out = np.empty_like(n)
     big = n > 15.0
-    nb = n[big]
-    nn = nb * nb
-    s0, s1, s2, s3, s4 = 1 / 12, 1 / 360, 1 / 1260, 1 / 1680, 1 / 1188
-    out[big] = (s0 - (s1 - (s2 - (s3 - s4 / nn) / nn) / nn) / nn) / nb
-    ns = n[~big]
+    if big.all():  # common case (sizes of the NB): no masking
+        return _stirlerr_big(n)
+    out = np.empty_like(n)
+    if big.any():
+        out[big] = _stirlerr_big(n[big])
+    small = ~big
+    ns = n[small]
     with np.errstate(divide="ignore", invalid="ignore"):
-        out[~big] = special.gammaln(ns + 1.0) - (ns + 0.5) * np.log(ns) + ns - _LOG_SQRT_2PI
+        out[small] = special.gammaln(ns + 1.0) - (ns + 0.5) * np.log(ns) + ns - _LOG_SQRT_2PI
     return out
+
+
+def _stirlerr_big(nb: np.ndarray) -> np.ndarray:
+    """``_stirlerr`` for n > 15: the asymptotic series."""
+    inv = 1.0 / nb  # reciprocal once: multiplications instead of five divisions
+    ii = inv * inv
+    s0, s1, s2, s3, s4 = 1 / 12, 1 / 360, 1 / 1260, 1 / 1680, 1 / 1188
+    return (s0 - (s1 - (s2 - (s3 - s4 * ii) * ii) * ii) * ii) * inv
 
 
 def _bd0(x: np.ndarray, m: np.ndarray) -> np.ndarray:
     """x log(x/m) + m - x without cancellation when x is close to m (Loader 2000)."""
-    x, m = np.broadcast_arrays(np.asarray(x, dtype=float), np.asarray(m, dtype=float))
-    out = np.empty(x.shape)
+    x = np.asarray(x, dtype=float)
+    m = np.asarray(m, dtype=float)
+    if x.shape != m.shape:
+        x, m = np.broadcast_arrays(x, m)
     near = np.abs(x - m) < 0.1 * (x + m)
-    xf, mf = x[~near], m[~near]
-    with np.errstate(divide="ignore", invalid="ignore"):
-        out[~near] = special.xlogy(xf, xf / mf) + mf - xf
-    xn, mn = x[near], m[near]
-    v = (xn - mn) / (xn + mn)
-    s = (xn - mn) * v
-    ej = 2.0 * xn * v
-    v2 = v * v
-    # |v| < 0.1 so each term is at least 100 times smaller than the last: 10 terms reach 1e-20.
-    for j in range(1, 11):
-        ej = ej * v2
-        s = s + ej / (2 * j + 1)
-    out[near] = s
+    if near.all():  # no masking when the series serves all
+        return _bd0_near(x, m)
+    # the direct form everywhere (cheaper than masking it), then the series where x is near m
+    out = _bd0_far(x, m)
+    if near.any():
+        out[near] = _bd0_near(x[near], m[near])
     return out
+
+
+def _bd0_far(xf: np.ndarray, mf: np.ndarray) -> np.ndarray:
+    """x log(x/m) + m - x as written (x log(x/m) taken as 0 at x = 0)."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        if np.all(xf > 0.0):
+            return xf * np.log(xf / mf) + mf - xf
+        return special.xlogy(xf, xf / mf) + mf - xf
+
+
+def _bd0_near(xn: np.ndarray, mn: np.ndarray) -> np.ndarray:
+    """The series of ``_bd0`` for |x - m| < 0.1 (x + m): with v = (x - m)/(x + m),
+    (x - m) v + 2 x v sum_{j=1..10} v^(2j) / (2j + 1), the sum by Horner's rule.
+    |v| < 0.1 so each term is at least 100 times smaller than the last: 10 terms reach 1e-20."""
+    d = xn - mn
+    v = d / (xn + mn)
+    v2 = v * v
+    poly = np.full(v.shape, _ODD_RECIPROCALS[10])
+    for j in range(9, 0, -1):
+        poly *= v2
+        poly += _ODD_RECIPROCALS[j]
+    poly *= v2
+    poly *= v
+    poly *= 2.0 * xn
+    poly += d * v
+    return poly
+
+
+_ODD_RECIPROCALS = [0.0] + [1.0 / (2 * j + 1) for j in range(1, 11)]
 
 
 def _as_arrays(count: Any, mu: Any, alpha: Any) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -81,8 +114,11 @@ def log_pmf_flat(y: np.ndarray, m: np.ndarray, a: np.ndarray) -> np.ndarray:
     out = np.empty(y.shape)
     pois = a <= 0.0
     zero = y == 0.0
-    if not pois.any() and not zero.any() and np.all(y >= 1e-10 / a):
-        return _nb_log_pmf_positive(y, m, a)
+    if not pois.any():  # common cases without masking
+        if not zero.any() and np.all(y >= 1e-10 / a):
+            return _nb_log_pmf_positive(y, m, a)
+        if zero.all():
+            return -np.log1p(a * m) / a
     # Poisson: -stirlerr(y) - bd0(y, m) - log sqrt(2 pi y)   (Loader's saddle-point form)
     i = pois & ~zero
     out[pois & zero] = -m[pois & zero]
@@ -192,34 +228,44 @@ def log_tails_flat(y: np.ndarray, m: np.ndarray, a: np.ndarray, lpmf: np.ndarray
     if lpmf is None:
         lpmf = log_pmf_flat(y, m, a)
     pois = a <= 0.0
-    r = 1.0 / np.where(pois, 1.0, a)
+    any_pois = bool(pois.any())
+    r = 1.0 / np.where(pois, 1.0, a) if any_pois else 1.0 / a
     # NB failure probability q = alpha m / (1 + alpha m), formed directly: 1 - p would lose digits
     # when alpha m is tiny. P(Y <= y) = 1 - I_q(y + 1, r) and P(Y >= y) = I_q(y, r).
-    q = a * m / (1.0 + a * m)
+    am = a * m
+    q = am / (1.0 + am)
     # The smaller tail is computed directly; the other as 1 - smaller + pmf (>= 1/2, no loss).
     mode_side = y < m  # lower tail is the smaller one (to within the pmf at y)
-    small = np.empty(y.shape)
-    lo, hi = mode_side, ~mode_side
-    i = lo & pois
-    small[i] = special.gammaincc(y[i] + 1.0, m[i])
+    small = np.ones(y.shape)  # upper tail of y <= 0 is 1
+    hi = ~mode_side
+    nb = ~pois if any_pois else None
+
+    def fill(mask, fn):  # type: ignore[no-untyped-def]
+        idx = np.flatnonzero(mask)
+        if idx.size:
+            small[idx] = fn(idx)
+
+    lo_nb = mode_side & nb if any_pois else mode_side
+    hi_nb = hi & nb if any_pois else hi
+    if any_pois:
+        fill(mode_side & pois, lambda i: special.gammaincc(y[i] + 1.0, m[i]))
+        fill(hi & pois & (y > 0), lambda i: special.gammainc(y[i], m[i]))
     # I_p(r, y + 1) with p = 1/(1 + alpha m) is five times faster than the complement form in
     # scipy, but 1 - p inside it loses digits when q is small; the complement is used there.
-    i = lo & ~pois & (q >= 0.01)
-    small[i] = special.betainc(r[i], y[i] + 1.0, 1.0 / (1.0 + a[i] * m[i]))
-    i = lo & ~pois & (q < 0.01)
-    small[i] = special.betaincc(y[i] + 1.0, r[i], q[i])
-    i = hi & pois & (y > 0)
-    small[i] = special.gammainc(y[i], m[i])
-    i = hi & ~pois & (y > 0)
-    small[i] = special.betainc(y[i], r[i], q[i])
-    small[hi & (y <= 0)] = 1.0
-    log_small = np.empty(y.shape)
+    q_big = q >= 0.01
+    fill(lo_nb & q_big, lambda i: special.betainc(r[i], y[i] + 1.0, 1.0 / (1.0 + am[i])))
+    fill(lo_nb & ~q_big, lambda i: special.betaincc(y[i] + 1.0, r[i], q[i]))
+    fill(hi_nb & (y > 0), lambda i: special.betainc(y[i], r[i], q[i]))
     # scipy's incomplete gamma/beta lose digits in the tails of very large means (4.6e-6
     # relative at a = 1.005e6, x = 1e6, measured against mpmath); sum those tails instead.
     ok = (small > _DIRECT_FLOOR) & ~((m > _LARGE_MEAN) & (small < 1e-3))
-    log_small[ok] = np.log(small[ok])
+    if ok.all():
+        log_small = np.log(small)
+    else:
+        log_small = np.empty(y.shape)
+        log_small[ok] = np.log(small[ok])
     far = np.flatnonzero(~ok)
-    if far.size:
+    if far.size:  # (ok.all() leaves none)
         f_lo = far[mode_side[far]]
         f_hi = far[~mode_side[far]]
         if f_lo.size:

@@ -243,8 +243,11 @@ class _ZeroRuns:
 def _zero_runs(yp, pidx, mu, interval_alpha, sig2, warm: WarmState, n: int) -> _ZeroRuns:
     """Zero runs over the present intervals ``pidx`` (counts ``yp``), continuing ``warm``."""
     isz = yp == 0
-    zfirst = isz & np.concatenate([[warm.zero_len == 0], ~isz[:-1]])
     zero_start = np.full(n, -2)
+    if not isz.any():  # no zeros: no run, and the run under way (if any) ended before
+        none = np.zeros(pidx.size, dtype=np.int64)
+        return _ZeroRuns(start=zero_start, length_p=none, sums_p=[none, none.copy(), none.copy()])
+    zfirst = isz & np.concatenate([[warm.zero_len == 0], ~isz[:-1]])
     last_first = np.maximum.accumulate(np.where(zfirst, np.arange(pidx.size), -1))
     zstart_p = np.where(last_first >= 0, pidx[np.maximum(last_first, 0)], -1)
     zero_start[pidx[isz]] = zstart_p[isz]
@@ -253,9 +256,9 @@ def _zero_runs(yp, pidx, mu, interval_alpha, sig2, warm: WarmState, n: int) -> _
     zf = zfirst[zi]
     length_p = np.zeros(pidx.size, dtype=np.int64)
     length_p[zi] = segment_sums(np.ones(zi.size, dtype=np.int64), zf, warm.zero_len)
-    sig = np.sqrt(sig2)
     zpos = pidx[zi]
-    terms = (mu[zpos], (interval_alpha * mu * mu * (1.0 + sig2))[zpos], (mu * sig)[zpos])
+    mz, s2z = mu[zpos], sig2[zpos]
+    terms = (mz, interval_alpha[zpos] * mz * mz * (1.0 + s2z), mz * np.sqrt(s2z))
     sums_p = []
     for t, base in zip(terms, warm.zero_sums, strict=True):
         full = np.zeros(pidx.size, dtype=np.int64)
@@ -277,6 +280,8 @@ def _repeat_runs(yp, warm: WarmState) -> tuple[np.ndarray, np.ndarray]:
 
 def _missing_runs(present, warm: WarmState) -> np.ndarray:
     """Length so far of the run of missing intervals at each interval (0 where present)."""
+    if present.all():
+        return np.zeros(present.size, dtype=np.int64)
     miss = ~present
     mfirst = miss & np.concatenate([[warm.missing_len == 0], present[:-1]])
     mi = np.flatnonzero(miss)
@@ -503,6 +508,10 @@ class _Timeline:
         """Post-interval state over [i0, i1) as full-length pieces (carried over missing)."""
         n = i1 - i0
         loc = run["loc"]
+        if loc.size == n:  # every interval of the stretch present: nothing to carry over
+            out = {key: run[key].copy() for key in _STATE_KEYS}
+            out["m"], out["level"], out["level_var"] = run["m"], run["level"], run["level_var"]
+            return out
         has = np.zeros(n, dtype=bool)
         has[loc] = True
         last = np.maximum.accumulate(np.where(has, np.arange(n), -1))
@@ -530,6 +539,11 @@ class _Timeline:
         for key, arr in state.items():
             self.res[key][i0:upto] = arr[:n]
         loc = run["loc"]
+        if loc.size == i1 - i0:  # every interval present: loc is 0..i1-i0-1
+            for kind in _SCORED_KINDS:
+                self.flag[kind][i0:upto] = run["flags"][kind][:n]
+                self.log_p[kind][i0:upto] = run["log_p"][kind][:n]
+            return
         keep = loc < n
         for kind in _SCORED_KINDS:
             f = self.flag[kind]
@@ -621,9 +635,9 @@ class _Timeline:
         return WarmState(
             next_start_s=int(start_s + n * interval_s),
             interval_s=int(interval_s),
-            window_y=tuple(int(v) for v in self.qy[hist]),
-            window_mu=tuple(int(v) for v in self.qm[hist]),
-            window_flag=tuple(int(v) for v in flagged[hist]),
+            window_y=tuple(self.qy[hist].tolist()),
+            window_mu=tuple(self.qm[hist].tolist()),
+            window_flag=tuple(flagged[hist].astype(np.int64).tolist()),
             s_low=int(r["s_low"][-1]),
             s_high=int(r["s_high"][-1]),
             zero_len=zl,
@@ -644,7 +658,7 @@ class _Timeline:
 def _per_interval(value: Any, n: int, name: str) -> np.ndarray:
     arr = np.asarray(value, dtype=float)
     try:
-        arr = np.broadcast_to(arr, (n,)).astype(float)
+        arr = arr.astype(float) if arr.shape == (n,) else np.broadcast_to(arr, (n,)).astype(float)
     except ValueError:
         raise ValueError(f"{name} must be a scalar or have one value per interval") from None
     if not np.all(np.isfinite(arr)):
