@@ -44,9 +44,19 @@ def _stirlerr(n: np.ndarray) -> np.ndarray:
         out[big] = _stirlerr_big(n[big])
     small = ~big
     ns = n[small]
-    with np.errstate(divide="ignore", invalid="ignore"):
-        out[small] = special.gammaln(ns + 1.0) - (ns + 0.5) * np.log(ns) + ns - _LOG_SQRT_2PI
+    with np.errstate(invalid="ignore"):  # NaN or -inf: not whole, gammaln below
+        k = ns.astype(np.intp)
+    if np.array_equal(k, ns) and k.min(initial=0) >= 0:  # whole numbers 0..15: the table
+        out[small] = _STIRLERR_WHOLE[k]
+        return out
+    out[small] = _stirlerr_small(ns)
     return out
+
+
+def _stirlerr_small(ns: np.ndarray) -> np.ndarray:
+    """``_stirlerr`` for n <= 15 from ``gammaln``."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return special.gammaln(ns + 1.0) - (ns + 0.5) * np.log(ns) + ns - _LOG_SQRT_2PI
 
 
 def _stirlerr_big(nb: np.ndarray) -> np.ndarray:
@@ -55,6 +65,9 @@ def _stirlerr_big(nb: np.ndarray) -> np.ndarray:
     ii = inv * inv
     s0, s1, s2, s3, s4 = 1 / 12, 1 / 360, 1 / 1260, 1 / 1680, 1 / 1188
     return (s0 - (s1 - (s2 - (s3 - s4 * ii) * ii) * ii) * ii) * inv
+
+
+_STIRLERR_WHOLE = _stirlerr_small(np.arange(16, dtype=float))  # n = 0..15, same formula
 
 
 def _bd0(x: np.ndarray, m: np.ndarray) -> np.ndarray:
