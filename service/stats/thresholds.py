@@ -86,13 +86,14 @@ def log_repeat_p(mu: Any, alpha: Any) -> np.ndarray:
             continue
         mc, ac, sc = m[chunk], a[chunk], sd[chunk]
         first = np.maximum(1.0, np.floor(mc - 12.0 * sc))
-        span = int(np.max(np.ceil(mc + 12.0 * sc + 10.0) - first)) + 1
-        v = first[:, None] + np.arange(span, dtype=float)[None, :]
-        mm = np.broadcast_to(mc[:, None], v.shape).ravel()
-        aa = np.broadcast_to(ac[:, None], v.shape).ravel()
-        lp = log_pmf_flat(v.ravel(), mm, aa).reshape(v.shape)
-        top = np.max(lp, axis=1)
-        log_sum = 2.0 * top + np.log(np.sum(np.exp(2.0 * (lp - top[:, None])), axis=1))
+        # each row's own grid (12 SD either side, 10 more above), all rows in one flat array
+        span = (np.ceil(mc + 12.0 * sc + 10.0) - first).astype(np.int64) + 1
+        starts = np.concatenate([[0], np.cumsum(span[:-1])])
+        row = np.repeat(np.arange(chunk.size), span)
+        v = first[row] + (np.arange(row.size) - starts[row])
+        lp = log_pmf_flat(v, mc[row], ac[row])
+        top = np.maximum.reduceat(lp, starts)
+        log_sum = 2.0 * top + np.log(np.add.reduceat(np.exp(2.0 * (lp - top[row])), starts))
         log_p0 = log_pmf_flat(np.zeros(chunk.size), mc, ac)
         out[chunk] = log_sum - np.log(-np.expm1(log_p0))
     return np.minimum(out, 0.0).reshape(shape)
