@@ -306,6 +306,11 @@ def cusum_limit(arl0: float, *, rho: float, mu: Any, alpha: Any = 0.0, states: i
 
 
 
+# First stretch of held_cusum's vectorised search (doubling while no regime switch): a day of
+# 5-min intervals in one stretch; switches are rare, and a short wasted stretch is cheap.
+_FIRST_STEP = 512
+
+
 def held_cusum(z: np.ndarray, s0: int, limit: int, ceiling: int, release: int,
                expected: np.ndarray | None = None, held0: int = 0, hold_cap: int | None = None
                ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -338,7 +343,7 @@ def held_cusum(z: np.ndarray, s0: int, limit: int, ceiling: int, release: int,
     # s0 >= release with s0 < limit can only be a held alarm (searching states below limit
     # that reach release are not distinguishable otherwise): a negative s0 encodes it.
     holding = s0 < 0
-    pos, s, step = 0, abs(int(s0)), 64
+    pos, s, step = 0, abs(int(s0)), _FIRST_STEP
     h_so_far = int(held0) if holding else 0
     while pos < n:
         hi = min(n, pos + step)
@@ -366,7 +371,7 @@ def held_cusum(z: np.ndarray, s0: int, limit: int, ceiling: int, release: int,
                 h_so_far = int(ex[pos + a])
                 holding = True
             s = int(out[pos + a])
-            pos, step = pos + a + 1, 64
+            pos, step = pos + a + 1, _FIRST_STEP
         else:
             out[pos:hi] = st
             alarm[pos:hi] = holding

@@ -396,16 +396,17 @@ class _Timeline:
         w, g, hist = self.window, self.guard, self.hist
         base = i0 + hist - w  # the earliest ext index any window here can use
         top = i1 + hist
-        qy, qm = self.qy[base:top], self.qm[base:top]
-        keep = ~self._left_out(flags[base:top + g])[: top - base]
-        # left-out intervals still count, at 2**-FLAG_SHIFT of their weight (exact integers)
-        dy, dm = qy >> FLAG_SHIFT, qm >> FLAG_SHIFT
-        cuy = np.concatenate([[0], np.cumsum(qy)])
-        cum = np.concatenate([[0], np.cumsum(qm)])
-        cdy = np.concatenate([[0], np.cumsum(dy)])
-        cdm = np.concatenate([[0], np.cumsum(dm)])
-        csy = np.concatenate([[0], np.cumsum(np.where(keep, qy, dy))])
-        csm = np.concatenate([[0], np.cumsum(np.where(keep, qm, dm))])
+        span = top - base
+        keep = ~self._left_out(flags[base:top + g])[:span]
+        # rows: weighted counts and expectations; the same at 2**-FLAG_SHIFT of their weight
+        # (left-out intervals still count that much; exact integers); the window's mix of both
+        parts = np.empty((6, span), dtype=np.int64)
+        parts[0], parts[1] = self.qy[base:top], self.qm[base:top]
+        np.right_shift(parts[0:2], FLAG_SHIFT, out=parts[2:4])
+        parts[4:6] = np.where(keep, parts[0:2], parts[2:4])
+        sums = np.zeros((6, span + 1), dtype=np.int64)  # running sums, a leading zero each
+        np.cumsum(parts, axis=1, out=sums[:, 1:])
+        cuy, cum, cdy, cdm, csy, csm = sums
         e = np.arange(i0, i1) + hist - base  # position of t in these cumulative arrays
         day_lo = e - np.minimum(self.day_age[i0:i1], w)
         early = max(0, base - g)  # flags this far back can still cut a recent part
