@@ -20,18 +20,22 @@ def to_fixed(x: np.ndarray) -> np.ndarray:
     return np.rint(np.minimum(np.maximum(x, -FIX_CLIP), FIX_CLIP) * FIX_SCALE).astype(np.int64)
 
 
-def segment_sums(values: np.ndarray, starts_run: np.ndarray, base: int) -> np.ndarray:
+def segment_sums(values: np.ndarray, starts_run: np.ndarray, base) -> np.ndarray:  # type: ignore[no-untyped-def]
     """Running int64 sums that restart where ``starts_run``; the first segment adds ``base``.
 
-    Exact in two's-complement arithmetic even if the global cumulative sum wraps.
+    ``values`` may have leading axes (rows summed along the last axis, all restarting at the
+    same ``starts_run``), with ``base`` one value per row. Exact in two's-complement
+    arithmetic even if the global cumulative sum wraps.
     """
-    n = values.size
-    cs0 = np.zeros(n + 1, dtype=np.result_type(values, np.int64))
-    np.cumsum(values, out=cs0[1:])  # cs0[k]: sum of the first k values
-    cs = cs0[1:]
+    values = np.asarray(values)
+    n = values.shape[-1]
+    cs0 = np.zeros(values.shape[:-1] + (n + 1,), dtype=np.result_type(values, np.int64))
+    np.cumsum(values, axis=-1, out=cs0[..., 1:])  # cs0[..., k]: sum of the first k values
+    cs = cs0[..., 1:]
+    b = np.asarray(base, dtype=np.int64)[..., None]
     if not starts_run.any():
-        return cs + np.int64(base)
+        return cs + b
     # index of the latest run start at or before each position (-1: none yet)
     last = np.maximum.accumulate(np.where(starts_run, np.arange(n), -1))
     # integer arrays wrap silently (two's complement); the difference is exact regardless
-    return np.where(last >= 0, cs - cs0[last], cs + np.int64(base))
+    return np.where(last >= 0, cs - cs0[..., last], cs + b)

@@ -251,19 +251,21 @@ def _zero_runs(yp, pidx, mu, interval_alpha, sig2, warm: WarmState, n: int) -> _
     last_first = np.maximum.accumulate(np.where(zfirst, np.arange(pidx.size), -1))
     zstart_p = np.where(last_first >= 0, pidx[np.maximum(last_first, 0)], -1)
     zero_start[pidx[isz]] = zstart_p[isz]
-    # run sums over the zeros only (other present intervals add nothing and restart nothing)
+    # run sums over the zeros only (other present intervals add nothing and restart nothing):
+    # the run length and the three fixed-point sums, as four rows restarting together
     zi = np.flatnonzero(isz)
     zf = zfirst[zi]
-    length_p = np.zeros(pidx.size, dtype=np.int64)
-    length_p[zi] = segment_sums(np.ones(zi.size, dtype=np.int64), zf, warm.zero_len)
     zpos = pidx[zi]
     mz, s2z = mu[zpos], sig2[zpos]
-    terms = (mz, interval_alpha[zpos] * mz * mz * (1.0 + s2z), mz * np.sqrt(s2z))
-    sums_p = []
-    for t, base in zip(terms, warm.zero_sums, strict=True):
-        full = np.zeros(pidx.size, dtype=np.int64)
-        full[zi] = segment_sums(to_fixed(t), zf, base)
-        sums_p.append(full)
+    rows = np.empty((4, zi.size), dtype=np.int64)
+    rows[0] = 1
+    rows[1:] = to_fixed(np.stack([mz, interval_alpha[zpos] * mz * mz * (1.0 + s2z),
+                                  mz * np.sqrt(s2z)]))
+    run_sums = segment_sums(rows, zf, [warm.zero_len, *warm.zero_sums])
+    full = np.zeros((4, pidx.size), dtype=np.int64)
+    full[:, zi] = run_sums
+    length_p = full[0]
+    sums_p = [full[1], full[2], full[3]]
     return _ZeroRuns(start=zero_start, length_p=length_p, sums_p=sums_p)
 
 
@@ -370,15 +372,16 @@ class _Timeline:
     def _before(self, key: str, i: int, warm_value):
         return warm_value if i == 0 else self.res[key][i - 1]
 
-    def _side(self, z, expected, key: str, held_key: str, i0: int, h: float):
+    def _side(self, z, expected_fixed, key: str, held_key: str, i0: int, h: float):
         """One CUSUM side over the present intervals of a stretch; state is stored signed
-        (negative while an alarm is held), with the expected vehicles held so far."""
+        (negative while an alarm is held), with the expected vehicles held so far
+        (``expected_fixed``: the expected vehicles in fixed point)."""
         s0 = self._before(key, i0, getattr(self.warm, key))
         held0 = self._before(held_key, i0, getattr(self.warm, held_key))
         stat, alarm, held = held_cusum(to_fixed(z), int(s0), int(round(h * FIX_SCALE)),
                                        int(round(h * CUSUM_CEILING * FIX_SCALE)),
                                        int(round(h * CUSUM_RELEASE * FIX_SCALE)),
-                                       to_fixed(expected), int(held0),
+                                       expected_fixed, int(held0),
                                        int(round(CUSUM_HOLD_VEHICLES * FIX_SCALE)))
         return np.where(alarm, -stat, stat), alarm, held
 
@@ -436,6 +439,8 @@ class _Timeline:
         isz = zs >= -1
         zref = np.ones(pi.size)
         zvar = np.zeros(pi.size)
+        if not isz.any():  # no zero run in this stretch
+            return isz, np.zeros(pi.size), zref, zvar
         here = isz & (zs >= i0)
         zref[here] = level[zs[here] - i0]
         zvar[here] = level_var[zs[here] - i0]
@@ -467,10 +472,11 @@ class _Timeline:
         # CUSUMs on present intervals
         sl, ol = increment_terms(mp, ap, th.rho_low)
         sh, oh = increment_terms(mp, ap, th.rho_high)
-        s_low, alarm_low, held_low = self._side(sl * yp + ol, mp, "s_low", "held_low", i0,
+        mp_fixed = to_fixed(mp)
+        s_low, alarm_low, held_low = self._side(sl * yp + ol, mp_fixed, "s_low", "held_low", i0,
                                                 th.h_low)
-        s_high, alarm_high, held_high = self._side(sh * yp + oh, mp, "s_high", "held_high", i0,
-                                                   th.h_high)
+        s_high, alarm_high, held_high = self._side(sh * yp + oh, mp_fixed, "s_high", "held_high",
+                                                   i0, th.h_high)
         # repeated values
         rfirst = self.rep_first_p[p0:p1]
         rep_lp = np.zeros(yp.size)  # each repeat adds log P(a repetition), whatever the value
