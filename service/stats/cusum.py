@@ -48,10 +48,12 @@ def increment_terms(mean, alpha, rho):
     """z = slope * y + offset for the log-likelihood ratio of rate rho*mean against mean."""
     mean = np.asarray(mean, dtype=float)
     alpha = np.asarray(alpha, dtype=float)
-    u = alpha * mean * (rho - 1.0) / (1.0 + alpha * mean)
+    am = alpha * mean
+    den = 1.0 + am
+    u = am * (rho - 1.0) / den
     lratio = np.log1p(u)  # log((1 + alpha rho m) / (1 + alpha m)); 0 for Poisson
     slope = math.log(rho) - lratio
-    offset = -mean * (rho - 1.0) / (1.0 + alpha * mean) * log1p_ratio(u)
+    offset = -mean * (rho - 1.0) / den * log1p_ratio(u, lratio)
     return slope, offset
 
 

@@ -334,12 +334,12 @@ def surprise(log_p: Any) -> np.ndarray:
     return -np.asarray(log_p, dtype=float) / math.log(10.0)
 
 
-def log1p_ratio(u: np.ndarray) -> np.ndarray:
-    """log(1 + u) / u, continuous at u = 0."""
+def log1p_ratio(u: np.ndarray, log1p_u: np.ndarray | None = None) -> np.ndarray:
+    """log(1 + u) / u, continuous at u = 0 (``log1p_u``: ``log1p(u)`` if already at hand)."""
     u = np.asarray(u, dtype=float)
     small = np.abs(u) < 1e-8
     with np.errstate(divide="ignore", invalid="ignore"):
-        out = np.log1p(u) / np.where(small, 1.0, u)
+        out = (np.log1p(u) if log1p_u is None else log1p_u) / np.where(small, 1.0, u)
     return np.where(small, 1.0 - 0.5 * u, out)
 
 

@@ -78,10 +78,15 @@ def log_repeat_p(mu: Any, alpha: Any) -> np.ndarray:
     shape = m.shape
     m, a = np.maximum(m.ravel(), 1e-12), np.maximum(a.ravel(), 0.0)
     sd = np.sqrt(m + a * m * m)
-    out = _log_repeat_gamma(m, sd)
-    small = np.flatnonzero(sd <= REPEAT_GRID_SD)
+    on_grid = sd <= REPEAT_GRID_SD
+    out = np.empty(m.shape)
+    if not on_grid.all():  # the gamma limit only where the grid does not serve
+        wide = ~on_grid
+        out[wide] = _log_repeat_gamma(m[wide], sd[wide])
+    small = np.flatnonzero(on_grid)
     width = int(math.ceil(24.0 * REPEAT_GRID_SD)) + 12
-    for chunk in np.array_split(small, max(1, small.size * width // 2_000_000)):
+    pieces = max(1, small.size * width // 2_000_000)
+    for chunk in [small] if pieces == 1 else np.array_split(small, pieces):
         if chunk.size == 0:
             continue
         mc, ac, sc = m[chunk], a[chunk], sd[chunk]
