@@ -20,7 +20,7 @@ def to_fixed(x: np.ndarray) -> np.ndarray:
     return np.rint(np.minimum(np.maximum(x, -FIX_CLIP), FIX_CLIP) * FIX_SCALE).astype(np.int64)
 
 
-def segment_sums(values: np.ndarray, starts_run: np.ndarray, base) -> np.ndarray:  # type: ignore[no-untyped-def]
+def segment_sums(values: np.ndarray, starts_run: np.ndarray, base: object) -> np.ndarray:
     """Running int64 sums that restart where ``starts_run``; the first segment adds ``base``.
 
     ``values`` may have leading axes (rows summed along the last axis, all restarting at the

@@ -251,15 +251,14 @@ def log_tails_flat(y: np.ndarray, m: np.ndarray, a: np.ndarray, lpmf: np.ndarray
     mode_side = y < m  # lower tail is the smaller one (to within the pmf at y)
     small = np.ones(y.shape)  # upper tail of y <= 0 is 1
     hi = ~mode_side
-    nb = ~pois if any_pois else None
 
-    def fill(mask, fn):  # type: ignore[no-untyped-def]
+    def fill(mask, fn):
         idx = np.flatnonzero(mask)
         if idx.size:
             small[idx] = fn(idx)
 
-    lo_nb = mode_side & nb if any_pois else mode_side
-    hi_nb = hi & nb if any_pois else hi
+    lo_nb = mode_side & ~pois if any_pois else mode_side
+    hi_nb = hi & ~pois if any_pois else hi
     if any_pois:
         fill(mode_side & pois, lambda i: special.gammaincc(y[i] + 1.0, m[i]))
         fill(hi & pois & (y > 0), lambda i: special.gammainc(y[i], m[i]))
