@@ -132,6 +132,13 @@ def log_pmf_flat(y: np.ndarray, m: np.ndarray, a: np.ndarray) -> np.ndarray:
             return _nb_log_pmf_positive(y, m, a)
         if zero.all():
             return -np.log1p(a * m) / a
+        pos = ~zero  # zeros and positive counts, none near-Poisson: two pieces, no more masks
+        yq, mq, aq = y[pos], m[pos], a[pos]
+        if np.all(yq >= 1e-10 / aq):
+            az = a[zero]
+            out[zero] = -np.log1p(az * m[zero]) / az
+            out[pos] = _nb_log_pmf_positive(yq, mq, aq)
+            return out
     # Poisson: -stirlerr(y) - bd0(y, m) - log sqrt(2 pi y)   (Loader's saddle-point form)
     i = pois & ~zero
     out[pois & zero] = -m[pois & zero]
@@ -285,7 +292,7 @@ def log_tails_flat(y: np.ndarray, m: np.ndarray, a: np.ndarray, lpmf: np.ndarray
         if f_hi.size:
             log_small[f_hi] = _tail_series(y[f_hi], m[f_hi], a[f_hi], lpmf[f_hi], upper=True)
     pmf = np.exp(lpmf)
-    other = np.log(np.clip(1.0 - np.exp(log_small) + pmf, 0.0, 1.0))
+    other = np.log(np.minimum(np.maximum(1.0 - np.exp(log_small) + pmf, 0.0), 1.0))  # clip
     log_lower = np.where(mode_side, log_small, other)
     log_upper = np.where(mode_side, other, log_small)
     return np.minimum(log_lower, 0.0), np.minimum(log_upper, 0.0)

@@ -259,8 +259,11 @@ def _zero_runs(yp, pidx, mu, interval_alpha, sig2, warm: WarmState, n: int) -> _
     mz, s2z = mu[zpos], sig2[zpos]
     rows = np.empty((4, zi.size), dtype=np.int64)
     rows[0] = 1
-    rows[1:] = to_fixed(np.stack([mz, interval_alpha[zpos] * mz * mz * (1.0 + s2z),
-                                  mz * np.sqrt(s2z)]))
+    terms = np.empty((3, zi.size))
+    terms[0] = mz
+    terms[1] = interval_alpha[zpos] * mz * mz * (1.0 + s2z)
+    terms[2] = mz * np.sqrt(s2z)
+    rows[1:] = to_fixed(terms)
     run_sums = segment_sums(rows, zf, [warm.zero_len, *warm.zero_sums])
     full = np.zeros((4, pidx.size), dtype=np.int64)
     full[:, zi] = run_sums
