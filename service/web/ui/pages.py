@@ -610,8 +610,9 @@ def detector_page(
             '<th scope="col">Busiest-hour volume</th><th scope="col">Share of expected day</th>'
             '<th scope="col">Fitted from</th></tr></thead>'
             f'<tbody>{"".join(prow)}</tbody></table>'
-            '<p class="muted">Peak-hour factors and K30 come from counted data: '
-            f'GET /v1/detectors/{h(detector_id)}/figures.</p>')
+            '<p class="muted">Peak-hour factors, AADT and K30 come from counted data: '
+            f'<a href="/ui/detectors/{h(detector_id)}/figures">planners\' figures of the '
+            'year</a>.</p>')
     else:
         prof_html = '<p class="muted">No baseline fitted yet.</p>'
     recent_rows = "".join(
