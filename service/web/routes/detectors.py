@@ -14,7 +14,7 @@ from service.errors import BadRequest, ValidationFailed
 from service.pipeline import ingest
 from service.store import detectors as registry
 from service.store.engine import write_transaction
-from service.store.scoring import clock_now
+from service.store.scoring import clock_now, period_clock_now
 from service.timefmt import parse_rfc3339
 from service.web.deps import AdminDep, EngineDep, OperateDep, ReadDep, SettingsDep
 from service.web.openapi import IMPORT_BODY
@@ -65,7 +65,8 @@ def patch_detector(detector_id: DetectorId, change: ServiceChange, engine: Engin
     return registry.set_service_state(
         engine, detector_id, state=change.state, reason=change.reason, until_s=until_s,
         by=principal.name, may_retire=principal.may("admin"),
-        clock=lambda conn: clock_now(conn, settings))
+        clock=lambda conn: clock_now(conn, settings),
+        period_clock=lambda conn: period_clock_now(conn, settings))
 
 
 @router.get("", response_model=DetectorsPublic)
