@@ -45,7 +45,9 @@ service, or retire it.
 
 Out of service: its counts are still stored and scored, but alerts it raises are kept as
 suppressed (listed by `GET /v1/alerts?suppressed=true`); at `until` (wall clock) it returns to
-service by itself, and its suppressed alerts still open are raised then. Retired: no longer
+service by itself, and its suppressed alerts still open are raised then. The period out of
+service is kept after it returns: counts whose start lies in it are flagged `out_of_service` in
+`GET /v1/counts` and imputed by the clean volumes. Retired: no longer
 expected to report, so missing data raises nothing; kept for history. Operate and admin keys
 may set `in_service` and `out_of_service`; only admin keys may retire a detector or change a
 retired one. 422: unknown state, `until` not in the future or given with another state,
