@@ -30,6 +30,7 @@ Flag values (one per interval), the first that applies wins:
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 from sqlalchemy import Connection, or_, select
@@ -125,8 +126,10 @@ def flag_lookup(conn: Connection, detector_id: str, *, from_s: int, until_s: int
                       .where(a.c.detector_id == detector_id, a.c.withdrawn == 0,
                              a.c.start_s < until_s, a.c.end_s >= from_s)
                       .order_by(a.c.start_s)).all()
-    p, k = tables.service_periods, tables.count_corrections
-    periods = conn.execute(select(p.c.from_s, p.c.to_s)
+    p, k, d = tables.service_periods, tables.count_corrections, tables.detectors
+    periods = conn.execute(select(p.c.from_s, p.c.to_s, d.c.service_since_s,
+                                  d.c.service_until_s)
+                           .join(d, d.c.detector_id == p.c.detector_id)
                            .where(p.c.detector_id == detector_id, p.c.from_s < until_s,
                                   or_(p.c.to_s.is_(None), p.c.to_s > from_s))
                            .order_by(p.c.from_s)).all()
@@ -136,14 +139,23 @@ def flag_lookup(conn: Connection, detector_id: str, *, from_s: int, until_s: int
                              .order_by(k.c.start_s)).scalars().all()
     return FlagLookup(
         service_from_s=np.asarray([r.from_s for r in periods], dtype=float),
-        service_to_s=np.asarray([np.inf if r.to_s is None else r.to_s for r in periods],
-                                dtype=float),
+        service_to_s=np.asarray([_period_end(r) for r in periods], dtype=float),
         corrected_start_s=np.asarray(corrected, dtype=np.int64),
         evidence_start_s=np.asarray(starts, dtype=np.int64), evidence_kind=kinds,
         alert_start_s=np.asarray([r.start_s for r in al], dtype=np.int64),
         alert_end_s=np.asarray([r.end_s for r in al], dtype=np.int64),
         alert_flag=[f"alert:{r.kind}" + (f":{TRAFFIC_CAUSE}" if r.cause == TRAFFIC_CAUSE else "")
                     for r in al])
+
+
+def _period_end(row: Any) -> float:
+    """Where a period ends: its ``to_s``; an open one with an ``until`` ends as long after its
+    start as the declared wall-clock period (as the sweep will close it), else never."""
+    if row.to_s is not None:
+        return float(row.to_s)
+    if row.service_until_s is not None and row.service_since_s is not None:
+        return float(row.from_s) + max(float(row.service_until_s - row.service_since_s), 0.0)
+    return float(np.inf)
 
 
 def replaced_by_imputation(flag: str) -> bool:

@@ -88,3 +88,18 @@ def test_flags_follow_the_periods_start_inclusive_end_exclusive(engine) -> None:
     assert [lookup.flag(t) for t in starts] == expected
     assert [quality.replaced_by_imputation(f) for f in expected] == [
         f == "out_of_service" for f in expected]
+
+
+def test_open_period_with_until_ends_at_its_declared_length_before_the_sweep(engine) -> None:
+    """Before the sweep records the return at until, the flags already end the period where
+    the sweep will close it (as the detector record already shows it in service)."""
+    make_detector(engine, "D1")
+    change(engine, "out_of_service", now=NOW, at_s=3000.0, until_s=NOW + 900)
+    with read_transaction(engine) as conn:
+        flags = quality.flag_lookup(conn, "D1", from_s=0, until_s=9000).flags(
+            [2700, 3000, 3600, 3900, 4200])
+    assert flags == ["ok", "out_of_service", "out_of_service", "ok", "ok"]
+    assert registry.return_due(engine, now=NOW + 901) == ["D1"]
+    with read_transaction(engine) as conn:
+        assert quality.flag_lookup(conn, "D1", from_s=0, until_s=9000).flags(
+            [2700, 3000, 3600, 3900, 4200]) == flags
