@@ -84,7 +84,8 @@ class FlagLookup:
         return OK
 
     def flags(self, start_s: np.ndarray) -> list[str]:
-        """The flag of each interval start (epoch seconds, UTC)."""
+        """The flag of each interval start (epoch seconds, UTC, sorted); each pass overrides
+        the one before, weakest first: evidence, alerts, out of service, corrected."""
         t = np.asarray(start_s, dtype=np.int64)
         out = np.full(t.size, OK, dtype=object)
         if self.evidence_start_s.size:
@@ -110,7 +111,8 @@ class FlagLookup:
 
 
 def flag_lookup(conn: Connection, detector_id: str, *, from_s: int, until_s: int) -> FlagLookup:
-    """Evidence and alerts of one detector touching ``[from_s, until_s)``."""
+    """Evidence, alerts, out-of-service periods and corrected starts of one detector touching
+    ``[from_s, until_s)``."""
     e, a = tables.evidence, tables.alerts
     ev = conn.execute(select(e.c.start_s, e.c.kind, e.c.log_p)
                       .where(e.c.detector_id == detector_id, e.c.start_s >= from_s,
