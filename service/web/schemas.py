@@ -140,8 +140,13 @@ class CountPublic(BaseModel):
     detector_id: str
     start: str = Field(description="RFC 3339 interval start (UTC).")
     count: int
-    flag: str = Field(description="Quality flag (service.store.quality): ok, an evidence kind, "
-                                   "alert:<kind>[:traffic], out_of_service or corrected.")
+    flag: str = Field(description="Quality flag (service.store.quality), the first that "
+                                   "applies: corrected (replaced by an admin correction; used "
+                                   "as observed by the clean volumes), out_of_service (the "
+                                   "start lies in a period the detector was out of service; "
+                                   "imputed by the clean volumes), alert:<kind>[:traffic] "
+                                   "(inside an alert episode), an evidence kind (e.g. "
+                                   "high_volume), or ok.")
 
 
 class CountsPage(BaseModel):
