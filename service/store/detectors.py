@@ -332,6 +332,22 @@ def close_service_period(conn: Connection, detector_id: str, *, to_s: float | No
         to_s=max(to_s, open_period.from_s), closed_by=by))
 
 
+def service_periods(engine: Engine, detector_id: str, *, limit: int = 100) -> dict[str, Any]:
+    """The detector's out-of-service periods, newest first (at most ``limit``); ``NotFound``
+    for an unknown detector. An open period has ``until`` null."""
+    p = models.service_periods
+    with read_transaction(engine) as conn:
+        if conn.execute(select(models.detectors.c.detector_id).where(
+                models.detectors.c.detector_id == detector_id)).first() is None:
+            raise NotFound(f"unknown detector {detector_id!r}")
+        rows = conn.execute(select(p).where(p.c.detector_id == detector_id)
+                            .order_by(p.c.from_s.desc(), p.c.period_id.desc())
+                            .limit(limit)).all()
+    return {"detector_id": detector_id, "periods": [
+        {"from": format_utc(r.from_s), "until": None if r.to_s is None else format_utc(r.to_s),
+         "reason": r.reason, "by": r.actor, "closed_by": r.closed_by} for r in rows]}
+
+
 def return_due(engine: Engine, *, now: float | None = None) -> list[str]:
     """Return to service every detector whose out-of-service period has ended (``until``
     passed, wall clock), raising its still-open suppressed alerts; the ids returned.

@@ -283,6 +283,23 @@ class ServiceChange(BaseModel):
                           "which the detector returns to service by itself.")
 
 
+class ServicePeriodPublic(BaseModel):
+    from_: str = Field(alias="from", description="RFC 3339 UTC start (the scoring clock's time "
+                                                 "when it was taken out of service).")
+    until: str | None = Field(description="RFC 3339 UTC end; null while it is still out of "
+                                          "service.")
+    reason: str | None
+    by: str | None = Field(description="Name of the API key that took it out of service.")
+    closed_by: str | None = Field(description="Name of the key that returned it to service; "
+                                              "null when it returned by itself at its until.")
+    model_config = ConfigDict(populate_by_name=True)
+
+
+class ServicePeriodsPublic(BaseModel):
+    detector_id: str
+    periods: list[ServicePeriodPublic]
+
+
 # ---------------------------------------------------------------------------- alert history
 
 

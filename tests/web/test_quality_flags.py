@@ -181,3 +181,23 @@ def test_corrected_count_in_the_period_is_used_as_observed(repaired, keys) -> No
         "from": format_utc(t0 + 2 * HOUR), "to": format_utc(t0 + 3 * HOUR), "step": "hour"})
     (hour,) = r.json()["data"]
     assert hour["observed"] == 123 and hour["imputed_share"] == pytest.approx(11 / 12, abs=1e-3)
+
+
+def test_service_periods_are_listed_newest_first(repaired, keys) -> None:
+    """GET /v1/detectors/{id}/service-periods lists the period with its reason, who took the
+    detector out and who returned it; its bounds are the first flagged start and the first
+    start after it. An unknown detector is a 404 and a read key may list them."""
+    client, t0, _ = repaired
+    r = client.get(f"/v1/detectors/{DET}/service-periods", headers=auth(keys["read"]))
+    assert r.status_code == 200, r.text
+    body = r.json()
+    assert body["detector_id"] == DET and len(body["periods"]) == 1
+    period = body["periods"][0]
+    assert period["reason"] == "loop replacement, WO 2211"
+    assert period["by"] and period["closed_by"] == period["by"]
+    assert format_utc(t0 + 2 * HOUR - 300) < period["from"] <= format_utc(t0 + 2 * HOUR)
+    assert format_utc(t0 + 3 * HOUR - 300) < period["until"] <= format_utc(t0 + 3 * HOUR)
+    other = client.get("/v1/detectors/bra3-nb-t2/service-periods", headers=auth(keys["read"]))
+    assert other.status_code == 200 and other.json()["periods"] == []
+    missing = client.get("/v1/detectors/nope-1/service-periods", headers=auth(keys["read"]))
+    assert missing.status_code == 404 and "unknown detector" in missing.json()["message"]

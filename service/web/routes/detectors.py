@@ -24,6 +24,7 @@ from service.web.schemas import (
     DetectorPublic,
     DetectorsPublic,
     ServiceChange,
+    ServicePeriodsPublic,
 )
 
 router = APIRouter(prefix="/v1/detectors", tags=["detectors"])
@@ -69,6 +70,16 @@ def patch_detector(detector_id: DetectorId, change: ServiceChange, engine: Engin
         by=principal.name, may_retire=principal.may("admin"),
         clock=lambda conn: clock_now(conn, settings),
         period_clock=lambda conn: period_clock_now(conn, settings))
+
+
+@router.get("/{detector_id}/service-periods", response_model=ServicePeriodsPublic,
+            response_model_by_alias=True, summary="A detector's out-of-service periods")
+def get_service_periods(detector_id: DetectorId, engine: EngineDep, _: ReadDep,
+                        limit: int = Query(100, ge=1, le=1000)) -> dict[str, Any]:
+    """The periods the detector was (or is) out of service, newest first: start, end (null
+    while open), reason, who took it out and who returned it. Counts whose start lies in a
+    period are flagged `out_of_service` in `GET /v1/counts`."""
+    return registry.service_periods(engine, detector_id, limit=limit)
 
 
 @router.get("", response_model=DetectorsPublic)
