@@ -20,6 +20,12 @@ SHORT = "bra3-nb-t2"
 DAY_S = 86_400
 
 
+def _share(p, g: float) -> float:  # type: ignore[no-untyped-def]
+    """Share of the way from the profile's own day-level value to the group's ``g``."""
+    own = p.smoothing["day_alpha_own"]
+    return (p.day_alpha - own) / (g - own) if g != own else 0.0
+
+
 def _baselines(engine, results):  # type: ignore[no-untyped-def]
     with read_transaction(engine) as conn:
         return {r["detector_id"]: load_baseline(conn, r["baseline_id"]) for r in results}
@@ -50,15 +56,10 @@ def test_fit_many_pools_day_level_dispersion_across_the_group(database_url, engi
         groups = {p.smoothing["group_day_alpha"] for p in profs.values()}
         assert len(groups) == 1, groups
         g = groups.pop()
-
-        def share(p):  # type: ignore[no-untyped-def]
-            own = p.smoothing["day_alpha_own"]
-            return (p.day_alpha - own) / (g - own) if g != own else 0.0
-
-        assert share(profs[SHORT]) >= 0.25, (name, share(profs[SHORT]))
+        assert _share(profs[SHORT], g) >= 0.25, (name, _share(profs[SHORT], g))
         for d in GROUP:
             if d != SHORT:
-                assert share(profs[d]) < share(profs[SHORT]), (name, d)
+                assert _share(profs[d], g) < _share(profs[SHORT], g), (name, d)
     alone = fitting.fit_one(engine, SHORT, as_of_s=net.test_start_s, settings=settings)
     base = _baselines(engine, [alone])[SHORT]
     for name in DAY_TYPES:
