@@ -25,8 +25,14 @@ from service.stats import baseline as bl
 from service.stats.baseline_thresholds import thresholds_for_baseline
 from service.stats.windows import window_sums
 from service.store import tables as models
-from service.store.baselines import insert_baseline, point_scoring_at, thresholds_to_json
+from service.store.baselines import (
+    current_baselines,
+    insert_baseline,
+    point_scoring_at,
+    thresholds_to_json,
+)
 from service.store.engine import make_worker_engine, read_transaction, write_transaction
+from service.store.scoring import group_members
 
 DAY_S = 86_400
 
@@ -104,19 +110,26 @@ class _Fitted:
 
 def fit_together(engine: Engine, detector_ids: Sequence[str], *, as_of_s: int,
                  settings: Settings, thresholds: bool = True) -> list[dict[str, Any]]:
-    """Fit detectors, pool the dispersion of those of one group across the group
-    (``baseline.pool_group_dispersion``, among the detectors fitted here), and store each
-    baseline (with its thresholds when ``thresholds``). Results in the order given."""
+    """Fit detectors, pool the dispersion of each group's across the group
+    (``baseline.pool_group_dispersion``), and store each baseline (with its thresholds when
+    ``thresholds``). Results in the order given. A group's detectors not fitted here take part
+    with their current baselines' own values (``baseline.own_dispersion``), so a detector
+    refitted alone is pooled as it was when the whole network was fitted."""
     fitted = [_fit_detector(engine, det, as_of_s=as_of_s, settings=settings)
               for det in detector_ids]
     by_group: dict[tuple[str, int], list[_Fitted]] = {}
     for f in fitted:
         if f.group is not None and f.result is not None and f.result.baseline is not None:
             by_group.setdefault((f.group, f.step), []).append(f)
-    for members in by_group.values():
-        pooled = bl.pool_group_dispersion([f.result.baseline for f in members
-                                           if f.result is not None
-                                           and f.result.baseline is not None])
+    for (group, step), members in by_group.items():
+        here = {f.out["detector_id"] for f in members}
+        with read_transaction(engine) as conn:
+            others = [d for d in group_members(conn, group) if d not in here]
+            mates = [bl.own_dispersion(b) for b in current_baselines(conn, others).values()
+                     if b.interval_s == step]
+        own = [f.result.baseline for f in members
+               if f.result is not None and f.result.baseline is not None]
+        pooled = bl.pool_group_dispersion(own + mates)[: len(own)]
         for f, base in zip(members, pooled, strict=True):
             assert f.result is not None
             f.result = dataclasses.replace(f.result, baseline=base)

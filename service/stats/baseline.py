@@ -77,6 +77,7 @@ __all__ = [
     "FitResult",
     "daily_profile_summary",
     "fit_baseline",
+    "own_dispersion",
     "pool_alphas",
     "pool_group_dispersion",
 ]
@@ -780,6 +781,20 @@ def pool_group_dispersion(baselines, *, day_prior_days: float = GROUP_DAY_ALPHA_
                 log_se=log_se, smoothing=_json_safe(smoothing))
     return [dataclasses.replace(b, profiles=prof) for b, prof in zip(out, new_profiles,
                                                                      strict=True)]
+
+
+def own_dispersion(baseline: Baseline) -> Baseline:
+    """The baseline with each profile's dispersion as it was before
+    :func:`pool_group_dispersion` (unchanged if it never was pooled across a group): what a
+    stored group mate contributes when one detector of the group is refitted alone."""
+    profiles = {}
+    for name, p in baseline.profiles.items():
+        if "day_alpha_own" not in p.smoothing:
+            return baseline
+        profiles[name] = dataclasses.replace(
+            p, day_alpha=float(p.smoothing["day_alpha_own"]),
+            interval_alpha=float(p.smoothing["interval_alpha_own"]))
+    return dataclasses.replace(baseline, profiles=profiles)
 
 
 def _wild_days(ratio, groups, candidates):

@@ -38,8 +38,8 @@ def test_fit_many_pools_day_level_dispersion_across_the_group(database_url, engi
     """Three lanes of one group, two with 8 weeks of history and one whose first 5 weeks were
     never stored: every stored profile records the group's value (the same for the whole
     group), the 3-week lane's day-level dispersion moves at least a quarter of the way from
-    its own estimate toward it, farther (as a share of the distance) than an 8-week lane's,
-    and a detector fitted alone keeps its own value."""
+    its own estimate toward it, farther (as a share of the distance) than an 8-week lane's;
+    refitted alone, the lane is pooled with its mates' stored values just the same."""
     net = small_network(GROUP, history_days=56, test_days=1, seed=4)
     load_network(engine, net, until_s=net.test_start_s)
     with write_transaction(engine) as conn:
@@ -60,9 +60,11 @@ def test_fit_many_pools_day_level_dispersion_across_the_group(database_url, engi
         for d in GROUP:
             if d != SHORT:
                 assert _share(profs[d], g) < _share(profs[SHORT], g), (name, d)
+    # refitted alone (a nightly refit), the lane pools with its mates' stored own values:
+    # the same result as when the group was fitted together
     alone = fitting.fit_one(engine, SHORT, as_of_s=net.test_start_s, settings=settings)
     base = _baselines(engine, [alone])[SHORT]
     for name in DAY_TYPES:
-        assert "group_day_alpha" not in base.profiles[name].smoothing
-        assert base.profiles[name].day_alpha == pytest.approx(
-            fitted[SHORT].profiles[name].smoothing["day_alpha_own"])
+        for key in ("day_alpha", "interval_alpha"):
+            assert getattr(base.profiles[name], key) == pytest.approx(
+                getattr(fitted[SHORT].profiles[name], key), rel=1e-12)

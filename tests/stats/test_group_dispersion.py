@@ -78,8 +78,9 @@ def test_the_floor_holds_and_lone_or_mixed_interval_detectors_are_unchanged():
 
 
 def test_pooled_baselines_round_trip_and_expect_their_new_values():
-    """The pooled baselines are ordinary baselines: stored as JSON and read back equal, and
-    ``expected_for`` serves the pooled alphas."""
+    """The pooled baselines are ordinary baselines: stored as JSON and read back equal,
+    ``expected_for`` serves the pooled alphas, and ``own_dispersion`` gives back the values
+    before pooling."""
     pooled = bl.pool_group_dispersion([_baseline(LONG, 0.02, 0.03),
                                        _baseline(SHORT, 0.06, 0.05)])
     again = bl.Baseline.from_dict(pooled[1].to_dict())
@@ -87,3 +88,8 @@ def test_pooled_baselines_round_trip_and_expect_their_new_values():
     exp = pooled[1].expected_for([0], [0])
     assert float(exp.day_alpha[0]) == pytest.approx(pooled[1].profiles["weekday"].day_alpha)
     assert float(exp.interval_alpha[0]) < 0.05
+    own = bl.own_dispersion(again)  # what a stored group mate contributes to a later refit
+    assert own.profiles["weekday"].day_alpha == 0.06
+    assert own.profiles["weekday"].interval_alpha == 0.05
+    unpooled = _baseline(SHORT, 0.06, 0.05)
+    assert bl.own_dispersion(unpooled) is unpooled
