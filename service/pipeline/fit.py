@@ -2,8 +2,10 @@
 
 The statistics live in ``service.stats.baseline`` (pure numpy). This module loads each detector's
 counts in the fit window, leaves out intervals inside alerts already raised, stores the
-versioned result, and points the detector's scoring state at it. ``fit_many`` spreads the
-work over processes; each opens its own database connection.
+versioned result, and points the detector's scoring state at it. The detectors of one group
+are fitted together and their dispersion is pooled across the group before anything is stored
+(``fit_together``). ``fit_many`` spreads the work over processes, a group within one; each
+process opens its own database connection.
 """
 
 from __future__ import annotations
@@ -91,8 +93,8 @@ def summarize(result: bl.FitResult) -> dict[str, Any]:
 def fit_one(engine: Engine, detector_id: str, *, as_of_s: int, settings: Settings,
             thresholds: bool = True) -> dict[str, Any]:
     """Fit one detector and store the baseline; with ``thresholds``, also derive its scoring
-    thresholds from the false-alert budget (otherwise the first scoring pass does). Alone, its
-    dispersion is not pooled with its group's (``fit_together`` does that)."""
+    thresholds from the false-alert budget (otherwise the first scoring pass does). Its
+    dispersion is pooled with its group mates' current baselines (``fit_together``)."""
     return fit_together(engine, [detector_id], as_of_s=as_of_s, settings=settings,
                         thresholds=thresholds)[0]
 
