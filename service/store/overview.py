@@ -146,9 +146,11 @@ def _recent_counts_grouped(conn: Connection, detector_ids: list[str], *, lo_s: i
 def alert_list(engine: Engine, *, status: str, kind: str | None, cause: str | None,
                group: str | None, limit: int) -> tuple[int, list[dict[str, Any]], int]:
     """(the highest alert seq committed, the ``limit`` latest-starting alerts matching the
-    filters in their public shape, how many match in all). Group members' shares are hidden."""
+    filters in their public shape, how many match in all). Group members' shares are hidden,
+    and so are alerts raised while their detector was out of service (as GET /v1/alerts
+    without ``suppressed=true`` and the seq feed of the page's live updates)."""
     a = tables.alerts
-    cond: list[ColumnElement[bool]] = [a.c.part_of.is_(None)]
+    cond: list[ColumnElement[bool]] = [a.c.part_of.is_(None), a.c.suppressed == 0]
     if status != "any":
         cond.append(a.c.status == status)
     if kind is not None:

@@ -624,7 +624,8 @@ def detector_view(request: Request, session: Session, detector_id: str, date_: s
         prof_html = '<p class="muted">No baseline fitted yet.</p>'
     recent_rows = "".join(
         f'<tr><td><a href="/ui/alerts/{a["id"]}">{a["id"]}</a></td><td>{h(a["kind"])}</td>'
-        f'<td>{h(a["cause"])}</td><td>{h(a["status"])}</td>'
+        f'<td>{h(a["cause"])}</td><td>{h(a["status"])}'
+        f'{" (suppressed: raised out of service)" if a.get("suppressed") else ""}</td>'
         f'<td>{h(local_time(a["start_s"], det["timezone"]))}</td>'
         f'<td>{duration(a["end_s"] - a["start_s"])}</td><td class="summary">{h(a["summary"])}</td>'
         '</tr>' for a in recent)
