@@ -73,7 +73,7 @@ def network(engine: Engine, settings: Settings) -> tuple[float, list[NetworkRow]
                                    d.c.lanes, d.c.interval_s, d.c.timezone, d.c.lon, d.c.lat)
                             .order_by(d.c.detector_id)).all()
         if conn.dialect.name == "postgresql":
-            latest, present = _recent_counts_grouped(conn, [r.detector_id for r in rows],
+            latest, present = _recent_counts_grouped(conn, [r[0] for r in rows],
                                                      lo_s=lo, hi_s=hi)
         else:
             latest, present = _recent_counts_per_detector(conn, lo_s=lo, hi_s=hi)
@@ -83,15 +83,17 @@ def network(engine: Engine, settings: Settings) -> tuple[float, list[NetworkRow]
             kinds.setdefault(det, []).append(kind)
         fitted = {r[0] for r in conn.execute(select(b.c.detector_id).distinct())}
     out = []
-    for r in rows:
-        open_kinds = tuple(sorted(set(kinds.get(r.detector_id, ()))))
-        has_baseline = r.detector_id in fitted
+    # Rows unpacked as tuples: reading a Row's fields by name costs more than the rest here.
+    for det, label, group, road_class, lanes, interval_s, timezone, lon, lat in rows:
+        det_kinds = kinds.get(det, ())
+        open_kinds = tuple(sorted(set(det_kinds)))
+        has_baseline = det in fitted
+        last_start_s = latest.get(det)
         out.append(NetworkRow(
-            r.detector_id, r.label, r.group_id, r.road_class, r.lanes, r.interval_s, r.timezone,
-            r.lon, r.lat, latest.get(r.detector_id), len(kinds.get(r.detector_id, ())),
-            open_kinds,
-            min(1.0, present.get(r.detector_id, 0) / (DAY_S // r.interval_s)), has_baseline,
-            _state(last_start_s=latest.get(r.detector_id), interval_s=r.interval_s, now_s=now,
+            det, label, group, road_class, lanes, interval_s, timezone, lon, lat, last_start_s,
+            len(det_kinds), open_kinds, min(1.0, present.get(det, 0) / (DAY_S // interval_s)),
+            has_baseline,
+            _state(last_start_s=last_start_s, interval_s=interval_s, now_s=now,
                    grace_s=settings.missing_grace_s, kinds=open_kinds,
                    has_baseline=has_baseline)))
     return now, out
