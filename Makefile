@@ -27,8 +27,10 @@ $(DEMO_STAMP): pyproject.toml | $(BIN)/python
 demo: $(DEMO_STAMP)
 	$(BIN)/tallyward demo
 
+# Two pytest processes (pytest-xdist): much of the suite waits on servers, browsers and
+# databases, so two share the 2 cores well; each has its own throw-away databases.
 test: $(STAMP)
-	$(BIN)/python -m pytest
+	$(BIN)/python -m pytest -n 2
 
 # The fast tier: pure statistics and logic, no database or process (seconds).
 test-fast: $(STAMP)

@@ -2,16 +2,20 @@
 
 The statistics live in ``service.stats.baseline`` (pure numpy). This module loads each detector's
 counts in the fit window, leaves out intervals inside alerts already raised, stores the
-versioned result, and points the detector's scoring state at it. ``fit_many`` spreads the
-work over processes; each opens its own database connection.
+versioned result, and points the detector's scoring state at it. The detectors of one group
+are fitted together and their dispersion is pooled across the group before anything is stored
+(``fit_together``). ``fit_many`` spreads the work over processes, a group within one; each
+process opens its own database connection.
 """
 
 from __future__ import annotations
 
+import dataclasses
 import itertools
 import time
 from collections.abc import Callable, Sequence
 from concurrent.futures import ProcessPoolExecutor, as_completed
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -23,8 +27,14 @@ from service.stats import baseline as bl
 from service.stats.baseline_thresholds import thresholds_for_baseline
 from service.stats.windows import window_sums
 from service.store import tables as models
-from service.store.baselines import insert_baseline, point_scoring_at, thresholds_to_json
+from service.store.baselines import (
+    current_baselines,
+    insert_baseline,
+    point_scoring_at,
+    thresholds_to_json,
+)
 from service.store.engine import make_worker_engine, read_transaction, write_transaction
+from service.store.scoring import group_members
 
 DAY_S = 86_400
 
@@ -83,14 +93,62 @@ def summarize(result: bl.FitResult) -> dict[str, Any]:
 def fit_one(engine: Engine, detector_id: str, *, as_of_s: int, settings: Settings,
             thresholds: bool = True) -> dict[str, Any]:
     """Fit one detector and store the baseline; with ``thresholds``, also derive its scoring
-    thresholds from the false-alert budget (otherwise the first scoring pass does)."""
+    thresholds from the false-alert budget (otherwise the first scoring pass does). Its
+    dispersion is pooled with its group mates' current baselines (``fit_together``)."""
+    return fit_together(engine, [detector_id], as_of_s=as_of_s, settings=settings,
+                        thresholds=thresholds)[0]
+
+
+@dataclass
+class _Fitted:
+    """One detector's fit, not stored yet."""
+
+    out: dict[str, Any]
+    group: str | None
+    step: int
+    result: bl.FitResult | None
+    started: float
+
+
+def fit_together(engine: Engine, detector_ids: Sequence[str], *, as_of_s: int,
+                 settings: Settings, thresholds: bool = True) -> list[dict[str, Any]]:
+    """Fit detectors, pool the dispersion of each group's across the group
+    (``baseline.pool_group_dispersion``), and store each baseline (with its thresholds when
+    ``thresholds``). Results in the order given. A group's detectors not fitted here take part
+    with their current baselines' own values (``baseline.own_dispersion``), so a detector
+    refitted alone is pooled as it was when the whole network was fitted."""
+    fitted = [_fit_detector(engine, det, as_of_s=as_of_s, settings=settings)
+              for det in detector_ids]
+    by_group: dict[tuple[str, int], list[_Fitted]] = {}
+    for f in fitted:
+        if f.group is not None and f.result is not None and f.result.baseline is not None:
+            by_group.setdefault((f.group, f.step), []).append(f)
+    for (group, step), members in by_group.items():
+        here = {f.out["detector_id"] for f in members}
+        with read_transaction(engine) as conn:
+            others = [d for d in group_members(conn, group) if d not in here]
+            mates = [bl.own_dispersion(b) for b in current_baselines(conn, others).values()
+                     if b.interval_s == step]
+        own = [f.result.baseline for f in members
+               if f.result is not None and f.result.baseline is not None]
+        pooled = bl.pool_group_dispersion(own + mates)[: len(own)]
+        for f, base in zip(members, pooled, strict=True):
+            assert f.result is not None
+            f.result = dataclasses.replace(f.result, baseline=base)
+    return [_store_fit(engine, f, as_of_s=as_of_s, settings=settings, thresholds=thresholds)
+            for f in fitted]
+
+
+def _fit_detector(engine: Engine, detector_id: str, *, as_of_s: int, settings: Settings
+                  ) -> _Fitted:
     started = time.perf_counter()
     lo = as_of_s - settings.fit_window_days * DAY_S
     with read_transaction(engine) as conn:
         det = conn.execute(select(models.detectors).where(
             models.detectors.c.detector_id == detector_id)).first()
         if det is None:
-            return {"detector_id": detector_id, "status": "failed", "reason": "unknown detector"}
+            return _Fitted({"detector_id": detector_id, "status": "failed",
+                            "reason": "unknown detector"}, None, 0, None, started)
         start_s, counts = _load_history(conn, detector_id, lo, as_of_s)
         step = scoring_interval_s(det.interval_s)
         if step != det.interval_s:
@@ -102,17 +160,25 @@ def fit_one(engine: Engine, detector_id: str, *, as_of_s: int, settings: Setting
         result = _fit(det, start_s, counts, exclude, interval_s=step, as_of_s=as_of_s,
                       settings=settings)
     except Exception as exc:  # noqa: BLE001 - one detector's failure must not stop the network
-        return {"detector_id": detector_id, "status": "failed",
-                "reason": f"{type(exc).__name__}: {exc}"}
+        return _Fitted({"detector_id": detector_id, "status": "failed",
+                        "reason": f"{type(exc).__name__}: {exc}"}, det.group_id, step, None,
+                       started)
     out: dict[str, Any] = {"detector_id": detector_id, "status": result.status,
                            "reason": result.reason, "intervals": int(start_s.size)}
-    if result.status != "fitted" or result.baseline is None:
+    return _Fitted(out, det.group_id, step, result, started)
+
+
+def _store_fit(engine: Engine, f: _Fitted, *, as_of_s: int, settings: Settings,
+               thresholds: bool) -> dict[str, Any]:
+    out, result = f.out, f.result
+    if result is None or result.status != "fitted" or result.baseline is None:
         return out
+    detector_id = out["detector_id"]
     summary = summarize(result)
     thresholds_json = None
     if thresholds:
         thresholds_json = thresholds_to_json(thresholds_for_baseline(
-            result.baseline, interval_s=step,
+            result.baseline, interval_s=f.step,
             false_alerts_per_week=settings.false_alerts_per_week))
     now = time.time()
     with write_transaction(engine) as conn:
@@ -122,7 +188,7 @@ def fit_one(engine: Engine, detector_id: str, *, as_of_s: int, settings: Setting
         point_scoring_at(conn, detector_id=detector_id, baseline_id=baseline_id,
                          as_of_s=as_of_s, now=now)
     out.update(baseline_id=baseline_id, summary=summary,
-               seconds=round(time.perf_counter() - started, 3))
+               seconds=round(time.perf_counter() - f.started, 3))
     return out
 
 
@@ -154,8 +220,8 @@ def _init_worker(settings_json: str) -> None:
 
 def _fit_chunk(detector_ids: list[str], as_of_s: int, thresholds: bool) -> list[dict[str, Any]]:
     assert _worker_engine is not None and _worker_settings is not None
-    return [fit_one(_worker_engine, det, as_of_s=as_of_s, settings=_worker_settings,
-                    thresholds=thresholds) for det in detector_ids]
+    return fit_together(_worker_engine, detector_ids, as_of_s=as_of_s,
+                        settings=_worker_settings, thresholds=thresholds)
 
 
 def all_detector_ids(engine: Engine) -> list[str]:
@@ -174,19 +240,27 @@ def default_as_of(engine: Engine) -> int:
 def fit_many(settings: Settings, engine: Engine, *, detector_ids: Sequence[str] | None = None,
              as_of_s: int | None = None, workers: int = 1, thresholds: bool = True,
              progress: Callable[[int], None] | None = None) -> list[dict[str, Any]]:
-    """Fit many detectors, over ``workers`` processes; results in detector order."""
+    """Fit many detectors, over ``workers`` processes; results in detector order. The
+    detectors of one group are fitted together (one process), so that their dispersion is
+    pooled across the group (``fit_together``)."""
     ids = list(detector_ids) if detector_ids else all_detector_ids(engine)
     as_of = as_of_s if as_of_s is not None else default_as_of(engine)
+    units = _group_units(engine, ids)
     results: list[dict[str, Any]] = []
     if workers <= 1 or len(ids) < 4:
-        for det in ids:
-            results.append(fit_one(engine, det, as_of_s=as_of, settings=settings,
-                                   thresholds=thresholds))
+        for unit in units:
+            results.extend(fit_together(engine, unit, as_of_s=as_of, settings=settings,
+                                        thresholds=thresholds))
             if progress:
-                progress(1)
+                progress(len(unit))
     else:
-        chunk = max(1, min(25, len(ids) // (workers * 4) or 1))
-        chunks = [ids[i : i + chunk] for i in range(0, len(ids), chunk)]
+        size = max(1, min(25, len(ids) // (workers * 4) or 1))
+        chunks: list[list[str]] = []
+        for unit in units:  # a group is never split across chunks
+            if chunks and len(chunks[-1]) + len(unit) <= size:
+                chunks[-1].extend(unit)
+            else:
+                chunks.append(list(unit))
         with ProcessPoolExecutor(max_workers=workers, initializer=_init_worker,
                                  initargs=(settings.model_dump_json(),)) as pool:
             futures = [pool.submit(_fit_chunk, c, as_of, thresholds) for c in chunks]
@@ -198,3 +272,17 @@ def fit_many(settings: Settings, engine: Engine, *, detector_ids: Sequence[str] 
     order = {det: i for i, det in enumerate(ids)}
     results.sort(key=lambda r: order[r["detector_id"]])
     return results
+
+
+def _group_units(engine: Engine, ids: Sequence[str]) -> list[list[str]]:
+    """``ids`` as units fitted together: each group's detectors (in the order given), and
+    each detector of no group alone, in order of first appearance."""
+    d = models.detectors
+    with read_transaction(engine) as conn:
+        group_of = dict(conn.execute(select(d.c.detector_id, d.c.group_id)).all())
+    units: dict[str, list[str]] = {}
+    for det in ids:
+        group = group_of.get(det)
+        key = f"g:{group}" if group is not None else f"d:{det}"
+        units.setdefault(key, []).append(det)
+    return list(units.values())

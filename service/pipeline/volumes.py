@@ -82,7 +82,7 @@ def clean_series(engine: Engine, detector_id: str, *, from_s: int, until_s: int)
     flag = np.asarray(lookup.flags(sched), dtype=object)
     flag[~present] = quality.MISSING
     replaced = np.fromiter((quality.replaced_by_imputation(f) for f in flag), dtype=bool,
-                           count=flag.size) if lookup.alert_flag else np.zeros(flag.size, bool)
+                           count=flag.size) if lookup.replaces_any else np.zeros(flag.size, bool)
     usable = present & ~replaced
     expected = base.expected_for(grid.day_type, grid.bin)
     first_day = int(grid.local_day[0]) if sched.size else 0

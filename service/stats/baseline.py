@@ -77,7 +77,9 @@ __all__ = [
     "FitResult",
     "daily_profile_summary",
     "fit_baseline",
+    "own_dispersion",
     "pool_alphas",
+    "pool_group_dispersion",
 ]
 
 OVERDISPERSION_LEVEL = 0.001  # combined p-value below which the profile is negative binomial
@@ -99,6 +101,14 @@ LEVEL_VAR_FLOOR = 0.05**2
 # 8 weeks) keep mostly their own value, a weekend type (8 days) moves about halfway.
 DAY_ALPHA_PRIOR_DAYS = 10.0
 INTERVAL_ALPHA_PRIOR_CELLS = 500.0
+# Prior strength, in days of history, of a group's pooled dispersion in the partial pooling
+# across the detectors of a group (:func:`pool_group_dispersion`). Own choice: a detector with
+# 3 weeks of history moves about a third of the way to the group's value, one with 8 weeks
+# about a seventh. Lanes of one site share their day-to-day swings (weather, events, the
+# calendar) more than their interval-to-interval excess (platoons, turning traffic), so the
+# interval level borrows less.
+GROUP_DAY_ALPHA_PRIOR_DAYS = 10.0
+GROUP_INTERVAL_ALPHA_PRIOR_DAYS = 3.0
 # ---------------------------------------------------------------------------------------------
 # Results
 # ---------------------------------------------------------------------------------------------
@@ -706,6 +716,85 @@ def pool_alphas(estimates, dofs, means, *, prior_dof: float, floor: float = 0.0
         value = (w * e + prior_dof * pooled) / nu
         shrunk.append(max(value * nu / max(nu - 2.0, 1.0), floor))
     return pooled, shrunk
+
+
+def pool_group_dispersion(baselines, *, day_prior_days: float = GROUP_DAY_ALPHA_PRIOR_DAYS,
+                          interval_prior_days: float = GROUP_INTERVAL_ALPHA_PRIOR_DAYS
+                          ) -> list[Baseline]:
+    """Partial pooling of dispersion across the detectors of one group (empirical Bayes).
+
+    For each day type, the group's value is the mean of its detectors' ``day_alpha`` (and
+    ``interval_alpha``) weighted by each detector's days of history (``days_used`` summed over
+    its day types: a day type's value already borrows from the detector's other day types,
+    :func:`pool_alphas`); each detector's value then moves toward it as a posterior mean with
+    the group's value as a prior worth ``day_prior_days`` (``interval_prior_days``) days:
+    ``(n a + k g) / (n + k)``, ``n`` the detector's days. More days, less shrinkage. This is
+    the shrinkage of Efron & Morris (1975, *JASA* 70: "Data analysis using Stein's estimator
+    and its generalizations"; from memory) with a fixed prior strength instead of one estimated
+    from the spread between detectors: groups are small (three or four lanes), too few to
+    estimate that spread. The values pooled are the detectors' own (already pooled across their
+    day types by :func:`pool_alphas`, and inflated for a short history); the day level keeps
+    the floor :data:`LEVEL_VAR_FLOOR`. An own profile's ``log_se`` keeps its day-level term
+    ``day_alpha / effective_days`` in step. Baselines of a different interval length are not
+    comparable and are returned unchanged, as is a group of one.
+
+    Parameters
+    ----------
+    baselines : sequence of Baseline
+        The group's detectors fitted together, on the same interval length.
+    day_prior_days, interval_prior_days : float
+        Prior strength of the group's value, in days of history.
+
+    Returns
+    -------
+    list of Baseline
+        In order; each profile's ``smoothing`` records ``group_day_alpha``,
+        ``group_interval_alpha`` and the values before (``day_alpha_own``,
+        ``interval_alpha_own``).
+    """
+    out = list(baselines)
+    if len(out) < 2 or len({b.interval_s for b in out}) != 1:
+        return out
+    new_profiles: list[dict[str, DayTypeProfile]] = [dict(b.profiles) for b in out]
+    days = np.array([float(sum(max(p.days_used, 0) for p in b.profiles.values()))
+                     for b in out])
+    for name in DAY_TYPES:
+        profs = [b.profiles[name] for b in out]
+        day = np.array([float(p.day_alpha) for p in profs])
+        inter = np.array([float(p.interval_alpha) for p in profs])
+        wts = days if days.sum() > 0 else np.ones(days.size)
+        g_day = max(float(np.sum(wts * day) / np.sum(wts)), LEVEL_VAR_FLOOR)
+        g_int = float(np.sum(wts * inter) / np.sum(wts))
+        day_new = np.maximum((days * day + day_prior_days * g_day) / (days + day_prior_days),
+                             LEVEL_VAR_FLOOR)
+        int_new = (days * inter + interval_prior_days * g_int) / (days + interval_prior_days)
+        for k, p in enumerate(profs):
+            log_se = p.log_se
+            d_eff = float(p.smoothing.get("effective_days") or 0.0)
+            if p.fitted_from == p.day_type and d_eff > 0:
+                log_var = p.log_se**2 + (float(day_new[k]) - p.day_alpha) / d_eff
+                log_se = np.sqrt(np.maximum(log_var, 0.0))
+            smoothing = dict(p.smoothing, group_day_alpha=g_day, group_interval_alpha=g_int,
+                             day_alpha_own=p.day_alpha, interval_alpha_own=p.interval_alpha)
+            new_profiles[k][name] = dataclasses.replace(
+                p, day_alpha=float(day_new[k]), interval_alpha=float(int_new[k]),
+                log_se=log_se, smoothing=_json_safe(smoothing))
+    return [dataclasses.replace(b, profiles=prof) for b, prof in zip(out, new_profiles,
+                                                                     strict=True)]
+
+
+def own_dispersion(baseline: Baseline) -> Baseline:
+    """The baseline with each profile's dispersion as it was before
+    :func:`pool_group_dispersion` (unchanged if it never was pooled across a group): what a
+    stored group mate contributes when one detector of the group is refitted alone."""
+    profiles = {}
+    for name, p in baseline.profiles.items():
+        if "day_alpha_own" not in p.smoothing:
+            return baseline
+        profiles[name] = dataclasses.replace(
+            p, day_alpha=float(p.smoothing["day_alpha_own"]),
+            interval_alpha=float(p.smoothing["interval_alpha_own"]))
+    return dataclasses.replace(baseline, profiles=profiles)
 
 
 def _wild_days(ratio, groups, candidates):

@@ -370,6 +370,8 @@ class _Timeline:
         self.flag["over_capacity"][:] = self.over
         self.flag["no_reports"][:] = self.miss_len >= thresholds.missing_run
         self.log_p["no_reports"][:] = self.miss_len * thresholds.log_missing_rate
+        # The level the counts themselves show (no interval held out): the repeat test's.
+        self.raw_level, self.raw_level_var = self._level(0, n, np.zeros(self.hist + n, bool))
 
     # -- state just after interval i - 1 -------------------------------------------------------
     def _before(self, key: str, i: int, warm_value):
@@ -483,7 +485,13 @@ class _Timeline:
         # repeated values
         rfirst = self.rep_first_p[p0:p1]
         rep_lp = np.zeros(yp.size)  # each repeat adds log P(a repetition), whatever the value
-        rep_lp[~rfirst] = log_repeat_p(mp[~rfirst], ap[~rfirst])
+        # judged at the level today's counts show, flagged intervals included: a level shift
+        # (held out of ``level`` so that it stays alerted) narrows the counts' spread and makes
+        # repeats common; it is no evidence of a frozen value
+        rl, rv = self.raw_level[pi], self.raw_level_var[pi]
+        r_own = 0.0 if BASELINE_ERROR_IN_LEVEL else self.se2[pi]
+        r_alpha = np.expm1(np.log1p(rv) + r_own + np.log1p(self.ia[pi]))
+        rep_lp[~rfirst] = log_repeat_p(self.mu[pi][~rfirst] * rl[~rfirst], r_alpha[~rfirst])
         contrib = np.where(rfirst, 0, to_fixed(rep_lp))
         rep_sum = segment_sums(contrib, rfirst, int(self._before("rep_sum", i0,
                                                                  self.warm.repeat_sum)))

@@ -27,6 +27,16 @@ def load_baseline(conn: Connection, baseline_id: int) -> bl.Baseline:
     return bl.Baseline.from_dict(orjson.loads(model))
 
 
+def current_baselines(conn: Connection, detector_ids: list[str]) -> dict[str, bl.Baseline]:
+    """The fitted model each detector is scored with now (detectors without one left out)."""
+    if not detector_ids:
+        return {}
+    b, st = tables.baselines, tables.detector_state
+    rows = conn.execute(select(st.c.detector_id, b.c.model).join(
+        b, b.c.baseline_id == st.c.baseline_id).where(st.c.detector_id.in_(detector_ids)))
+    return {r.detector_id: bl.Baseline.from_dict(orjson.loads(r.model)) for r in rows}
+
+
 def thresholds_to_json(th: Thresholds) -> str:
     return orjson.dumps(dataclasses.asdict(th)).decode()
 

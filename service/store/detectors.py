@@ -247,7 +247,8 @@ def _unsuppress_open(conn: Connection, detector_id: str, *, now: float) -> int:
 
 def set_service_state(engine: Engine, detector_id: str, *, state: str, reason: str | None,
                       until_s: float | None, by: str, may_retire: bool,
-                      clock: Callable[[Connection], float], now: float | None = None
+                      clock: Callable[[Connection], float], now: float | None = None,
+                      period_clock: Callable[[Connection], float] | None = None
                       ) -> dict[str, Any]:
     """Put a detector in or out of service, or retire it; the detector afterwards.
 
@@ -255,7 +256,12 @@ def set_service_state(engine: Engine, detector_id: str, *, state: str, reason: s
     clock, or by a later change). Returning to service raises its suppressed alerts that are
     still open. Retiring, or changing a retired detector, needs ``may_retire`` (admin).
     Retiring marks the detector for rescoring from ``clock(conn)`` (the scoring clock), so
-    that missing data from then on stops being evidence."""
+    that missing data from then on stops being evidence.
+
+    In the same transaction the detector's out-of-service period (``service_periods``) is
+    opened or closed at ``period_clock(conn)`` (default ``clock``): the clock count starts are
+    on. A second out_of_service closes the open period and opens the next at the same time,
+    so each reason is kept."""
     now = time.time() if now is None else now
     if state not in SERVICE_STATES:
         raise ValidationFailed(f"unknown service state {state!r}; states are "
@@ -280,9 +286,14 @@ def set_service_state(engine: Engine, detector_id: str, *, state: str, reason: s
             raise Forbidden("only an admin key may retire a detector or return a retired one "
                             "to service; operate keys may set in_service and out_of_service")
         clock_s = clock(conn)
+        at_s = clock_s if period_clock is None else period_clock(conn)
         conn.execute(update(d).where(d.c.detector_id == detector_id).values(
             service_state=state, service_reason=reason, service_by=by, service_since_s=now,
             service_until_s=until_s, service_clock_s=int(clock_s), updated_s=now))
+        close_service_period(conn, detector_id, to_s=at_s, by=by)
+        if state == "out_of_service":
+            conn.execute(models.service_periods.insert().values(
+                detector_id=detector_id, from_s=at_s, reason=reason, actor=by))
         if state == "in_service":
             _unsuppress_open(conn, detector_id, now=now)
         if state == "retired" or row.service_state == "retired":
@@ -302,6 +313,41 @@ def _rescore_from(conn: Connection, detector_id: str, from_s: int, *, now: float
         dirty_from_s=start, pending_since_s=func.coalesce(s.c.pending_since_s, now)))
 
 
+def close_service_period(conn: Connection, detector_id: str, *, to_s: float | None = None,
+                         by: str | None = None, until_s: float | None = None,
+                         since_s: float | None = None) -> None:
+    """Close the detector's open out-of-service period, if any: at ``to_s`` (scoring clock),
+    or, when it ended by itself, as long after its start as ``since_s``..``until_s`` (wall
+    clock) lasted, so a replay's data-clock period keeps its declared length."""
+    p = models.service_periods
+    open_period = conn.execute(select(p.c.period_id, p.c.from_s).where(
+        p.c.detector_id == detector_id, p.c.to_s.is_(None))
+        .order_by(p.c.from_s.desc()).limit(1)).first()
+    if open_period is None:
+        return
+    if to_s is None:
+        length = (until_s - since_s) if until_s is not None and since_s is not None else 0.0
+        to_s = open_period.from_s + max(length, 0.0)
+    conn.execute(update(p).where(p.c.period_id == open_period.period_id).values(
+        to_s=max(to_s, open_period.from_s), closed_by=by))
+
+
+def service_periods(engine: Engine, detector_id: str, *, limit: int = 100) -> dict[str, Any]:
+    """The detector's out-of-service periods, newest first (at most ``limit``); ``NotFound``
+    for an unknown detector. An open period has ``until`` null."""
+    p = models.service_periods
+    with read_transaction(engine) as conn:
+        if conn.execute(select(models.detectors.c.detector_id).where(
+                models.detectors.c.detector_id == detector_id)).first() is None:
+            raise NotFound(f"unknown detector {detector_id!r}")
+        rows = conn.execute(select(p).where(p.c.detector_id == detector_id)
+                            .order_by(p.c.from_s.desc(), p.c.period_id.desc())
+                            .limit(limit)).all()
+    return {"detector_id": detector_id, "periods": [
+        {"from": format_utc(r.from_s), "until": None if r.to_s is None else format_utc(r.to_s),
+         "reason": r.reason, "by": r.actor, "closed_by": r.closed_by} for r in rows]}
+
+
 def return_due(engine: Engine, *, now: float | None = None) -> list[str]:
     """Return to service every detector whose out-of-service period has ended (``until``
     passed, wall clock), raising its still-open suppressed alerts; the ids returned.
@@ -318,11 +364,13 @@ def return_due(engine: Engine, *, now: float | None = None) -> list[str]:
     with write_transaction(engine) as conn:
         ids = [r[0] for r in conn.execute(due)]
         for detector_id in ids:
-            until = conn.execute(select(d.c.service_until_s).where(
-                d.c.detector_id == detector_id)).scalar_one()
+            was = conn.execute(select(d.c.service_until_s, d.c.service_since_s).where(
+                d.c.detector_id == detector_id)).one()
             conn.execute(update(d).where(d.c.detector_id == detector_id).values(
                 service_state="in_service", service_reason=RETURNED_BY_ITSELF, service_by=None,
-                service_since_s=until, service_until_s=None, updated_s=now))
+                service_since_s=was.service_until_s, service_until_s=None, updated_s=now))
+            close_service_period(conn, detector_id, until_s=was.service_until_s,
+                                 since_s=was.service_since_s)
             _unsuppress_open(conn, detector_id, now=now)
     return ids
 

@@ -76,6 +76,13 @@ def clock_now(conn: Connection, settings: Settings) -> float:
     return float(latest) if latest is not None else 0.0
 
 
+def period_clock_now(conn: Connection, settings: Settings) -> float:
+    """The clock out-of-service periods open and close on: wall time, or in data-clock mode
+    just after the latest interval start (the intervals already seen are before the change,
+    the next ones after it)."""
+    return clock_now(conn, settings) + (0.0 if settings.clock == "wall" else 1.0)
+
+
 # ----------------------------------------------------------------------------- claiming
 
 

@@ -222,6 +222,9 @@ alerts = Table(
     Index("ix_alerts_subject_kind_start_s", "subject", "kind", "start_s", unique=True),
     Index("ix_alerts_detector_id_end_s", "detector_id", "end_s"),
     Index("ix_alerts_group_id", "group_id"),
+    # Open alerts only (migration 0009): the network page reads them for every detector.
+    Index("ix_alerts_open", "detector_id", "kind", sqlite_where=text("status = 'open'"),
+          postgresql_where=text("status = 'open'")),
 )
 
 counters = Table(
@@ -265,6 +268,24 @@ count_corrections = Table(
     Column("conflict_id", Integer, nullable=True),  # the conflict whose offered value was taken
     CheckConstraint("new_count >= 0", name="new_count_not_negative"),
     Index("ix_count_corrections_detector_id_correction_id", "detector_id", "correction_id"),
+)
+
+# Out-of-service periods of a detector (migration 0009): opened when it is taken out of
+# service, closed when it returns (by a change or at its ``until``) or is retired. Times are on
+# the scoring clock (wall time live, the data clock in replays), as count starts are; an
+# interval whose start is in [from_s, to_s) is flagged out_of_service.
+service_periods = Table(
+    "service_periods",
+    metadata,
+    Column("period_id", Integer, primary_key=True, autoincrement=True),
+    Column("detector_id", String(64), ForeignKey("detectors.detector_id", ondelete="CASCADE"),
+           nullable=False),
+    Column("from_s", Float, nullable=False),
+    Column("to_s", Float, nullable=True),  # null while the period is open
+    Column("reason", Text, nullable=True),
+    Column("actor", String(100), nullable=True),  # the API key's name that opened it
+    Column("closed_by", String(100), nullable=True),  # null when it ended by itself at until
+    Index("ix_service_periods_detector_id_from_s", "detector_id", "from_s"),
 )
 
 # Long tasks asked for through the API (migration 0006): a job, and its work one detector a

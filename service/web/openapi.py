@@ -227,6 +227,7 @@ EXTRA: dict[tuple[str, str], dict[int | str, dict[str, Any]]] = {
                    "stored counts cannot change."),
     },
     ("GET", "/v1/detectors/{detector_id}"): {404: _not_found("unknown detector")},
+    ("GET", "/v1/detectors/{detector_id}/service-periods"): {404: _not_found("unknown detector")},
     ("POST", "/v1/baselines/fit"): {404: _not_found("an unknown detector in `detector_ids`")},
     ("GET", "/v1/jobs/{job_id}"): {404: _not_found("unknown job id")},
     ("GET", "/v1/detectors/{detector_id}/baseline"): {

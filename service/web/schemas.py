@@ -140,8 +140,13 @@ class CountPublic(BaseModel):
     detector_id: str
     start: str = Field(description="RFC 3339 interval start (UTC).")
     count: int
-    flag: str = Field(description="Quality flag (service.store.quality): ok, an evidence kind, "
-                                   "alert:<kind>[:traffic], out_of_service or corrected.")
+    flag: str = Field(description="Quality flag (service.store.quality), the first that "
+                                   "applies: corrected (replaced by an admin correction; used "
+                                   "as observed by the clean volumes), out_of_service (the "
+                                   "start lies in a period the detector was out of service; "
+                                   "imputed by the clean volumes), alert:<kind>[:traffic] "
+                                   "(inside an alert episode), an evidence kind (e.g. "
+                                   "high_volume), or ok.")
 
 
 class CountsPage(BaseModel):
@@ -276,6 +281,23 @@ class ServiceChange(BaseModel):
     until: Annotated[str | None, Field(max_length=64), AfterValidator(plain_text)] = Field(
         None, description="out_of_service only: RFC 3339 time (wall clock, in the future) at "
                           "which the detector returns to service by itself.")
+
+
+class ServicePeriodPublic(BaseModel):
+    from_: str = Field(alias="from", description="RFC 3339 UTC start (the scoring clock's time "
+                                                 "when it was taken out of service).")
+    until: str | None = Field(description="RFC 3339 UTC end; null while it is still out of "
+                                          "service.")
+    reason: str | None
+    by: str | None = Field(description="Name of the API key that took it out of service.")
+    closed_by: str | None = Field(description="Name of the key that returned it to service; "
+                                              "null when it returned by itself at its until.")
+    model_config = ConfigDict(populate_by_name=True)
+
+
+class ServicePeriodsPublic(BaseModel):
+    detector_id: str
+    periods: list[ServicePeriodPublic]
 
 
 # ---------------------------------------------------------------------------- alert history

@@ -30,7 +30,8 @@ def axe_violations(page: Any) -> list[dict[str, Any]]:
 @pytest.mark.parametrize("scheme", ["light", "dark"])
 def test_main_pages_have_no_serious_accessibility_violation(live_server: Site, browser,
                                                             scheme: str) -> None:
-    """Sign-in, network, alerts, one alert and one detector's day pass axe's A/AA rules."""
+    """Sign-in, network, alerts, one alert, one detector's day and its planners' figures pass
+    axe's A/AA rules."""
     alert = live_server.dead_alert()
     # The pages forbid inline script (CSP); the test context lets axe's injected copy run.
     context = browser.new_context(bypass_csp=True, color_scheme=scheme,
@@ -42,7 +43,9 @@ def test_main_pages_have_no_serious_accessibility_violation(live_server: Site, b
         sign_in(page, live_server, "operate")
         for name, path in (("network", "/ui/network"), ("alerts", "/ui/alerts?status=any"),
                            ("alert", f"/ui/alerts/{alert['id']}"),
-                           ("detector", f"/ui/detectors/{DEAD}?date={live_server.test_day}")):
+                           ("detector", f"/ui/detectors/{DEAD}?date={live_server.test_day}"),
+                           ("figures",
+                            f"/ui/detectors/{DEAD}/figures?year={live_server.test_day[:4]}")):
             page.goto(live_server.url + path)
             found[name] = axe_violations(page)
             if scheme == "dark":

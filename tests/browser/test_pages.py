@@ -3,7 +3,10 @@ acknowledgement by role, the detector's day, redirects, revocation and the reque
 
 from __future__ import annotations
 
+import time
+from datetime import datetime, timedelta
 from urllib.parse import urlsplit
+from zoneinfo import ZoneInfo
 
 import httpx
 import pytest
@@ -11,6 +14,8 @@ from sqlalchemy import func, select
 
 from service.store import keys as security
 from service.store import tables
+from service.store.engine import write_transaction
+from service.store.scoring import AlertWriter
 from tests.browser.conftest import (
     DEAD,
     NO_LOCATION,
@@ -19,6 +24,7 @@ from tests.browser.conftest import (
     sign_in,
 )
 from tests.conftest import auth
+from tests.web.test_alerts import alert_values
 
 pytestmark = pytest.mark.browser
 ALERT_WAIT_MS = 10_000  # the issue's bound: an alert shows within 10 s without a reload
@@ -214,3 +220,83 @@ def test_pages_request_nothing_but_the_service(live_server: Site, context) -> No
     page.goto(live_server.url + "/ui/alerts")
     page.wait_for_timeout(3500)  # at least one poll of the live updates
     assert hosts == {urlsplit(live_server.url).netloc}
+
+
+# A count station outside the dead detector's group: its alerts join no group alert of DEAD's.
+SERVICE_DETECTOR = "qry-01-eb"
+
+
+def _alerts_of(site: Site, detector_id: str, **params: str) -> list[dict]:
+    return httpx.get(f"{site.url}/v1/alerts", params={"detector_id": detector_id, **params},
+                     headers=auth(site.keys["read"]), timeout=10).json()["data"]
+
+
+def test_operate_key_takes_a_detector_out_of_service_and_returns_it(
+        live_server: Site, context, browser) -> None:
+    """An operate key takes a count station out of service through the detector page's form
+    (reason, until in local time); the page shows the state, reason, who and until when, as
+    the API does. Zeros it reports meanwhile raise an alert kept as suppressed: not among the
+    open alerts. Returning it to service with the page's button (from the keyboard) raises that
+    alert, which the open alerts page then shows by its live updates. A read key's page has no
+    such control."""
+    live_server.dead_alert()  # the morning's data clock, as the other tests leave it
+    zone = httpx.get(f"{live_server.url}/v1/detectors/{SERVICE_DETECTOR}",
+                     headers=auth(live_server.keys["read"])).json()["timezone"]
+    until = (datetime.now(ZoneInfo(zone)) + timedelta(days=2)).replace(second=0, microsecond=0)
+    page = context.new_page()
+    sign_in(page, live_server, "operate")
+    page.goto(f"{live_server.url}/ui/detectors/{SERVICE_DETECTOR}")
+    state = page.locator("#service-state")
+    assert "in service" in state.inner_text()
+    page.get_by_label("Reason (the fault, the work order)").fill("Loop cut by road works, WO 5521")
+    page.get_by_label("Until (local time").fill(until.strftime("%Y-%m-%dT%H:%M"))
+    page.get_by_role("button", name="Take out of service").click()
+    page.get_by_role("button", name="Return to service").wait_for()
+    shown = state.inner_text()
+    assert "out of service" in shown and "WO 5521" in shown and "ui-operate" in shown
+    assert until.strftime("%Y-%m-%d %H:%M") in shown
+    api = httpx.get(f"{live_server.url}/v1/detectors/{SERVICE_DETECTOR}",
+                    headers=auth(live_server.keys["read"])).json()["service"]
+    assert api["state"] == "out_of_service" and api["by"] == "ui-operate"
+    assert api["reason"] == "Loop cut by road works, WO 5521"
+    screenshot(page, "detector-out-of-service")
+
+    # An alert raised while out of service is kept as suppressed: not among the open alerts.
+    # Written as the scorer writes one (the station's own zeros at this hour are too few to
+    # alert on); the scorer leaves the station alone, as no counts of it arrive meanwhile.
+    with write_transaction(live_server.engine) as conn:
+        alert_id = AlertWriter(conn, time.time()).upsert(None, alert_values(
+            SERVICE_DETECTOR, live_server.test_start_s + 5 * 3600, suppressed=1,
+            group_id=None, summary="zeros while out of service"))
+    kept = _alerts_of(live_server, SERVICE_DETECTOR, status="open", suppressed="true")
+    assert [a["id"] for a in kept] == [alert_id]
+    assert all(a["suppressed"] for a in kept)
+    assert _alerts_of(live_server, SERVICE_DETECTOR, status="open") == []
+
+    # A read key sees the state but no control.
+    reader = browser.new_context()
+    try:
+        other = reader.new_page()
+        sign_in(other, live_server, "read")
+        other.goto(f"{live_server.url}/ui/detectors/{SERVICE_DETECTOR}")
+        assert "out of service" in other.locator("#service-state").inner_text()
+        assert other.locator("form.service-form").count() == 0
+        assert other.get_by_role("button", name="Return to service").count() == 0
+    finally:
+        reader.close()
+
+    # Back in service, from the keyboard: the suppressed alert is raised, and the open alerts
+    # page (open beside) shows it by its live updates.
+    listing = context.new_page()
+    listing.goto(f"{live_server.url}/ui/alerts?status=open")
+    row = listing.locator(f'#alerts tbody tr:has(a[href="/ui/detectors/{SERVICE_DETECTOR}"])')
+    assert row.count() == 0
+    page.goto(f"{live_server.url}/ui/detectors/{SERVICE_DETECTOR}")
+    page.get_by_role("button", name="Return to service").focus()
+    page.keyboard.press("Enter")
+    page.get_by_role("button", name="Take out of service").wait_for()
+    assert "in service" in state.inner_text()
+    raised = _alerts_of(live_server, SERVICE_DETECTOR, status="open")
+    assert [a["id"] for a in raised] == [alert_id] and not raised[0]["suppressed"]
+    row.first.wait_for(timeout=ALERT_WAIT_MS)
+    screenshot(page, "detector-back-in-service")

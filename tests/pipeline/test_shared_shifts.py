@@ -43,10 +43,6 @@ def live_alerts(engine):  # type: ignore[no-untyped-def]
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(strict=True, reason=(
-    "known gap: with flagged intervals nearly held out of today's level (so that a lasting "
-    "fault stays one open alert: tests/stats/test_scoring.py), the whole-day drop leaves one "
-    "short repeated_value alert on one lane (kfw-nb-031-l3) outside its group's traffic alert"))
 def test_unlisted_holiday_is_one_traffic_alert_per_group(database_url, engine) -> None:
     """A network-wide drop to 55 % of normal traffic for a whole day (an unlisted holiday)
     shows at most one visible alert per group, each caused by traffic, none a repeated value;

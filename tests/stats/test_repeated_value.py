@@ -65,6 +65,27 @@ def test_a_level_drop_is_not_taken_for_a_repeating_controller():
     assert not ev.flag["repeated_value"].any()
 
 
+def test_a_lasting_level_drop_with_a_run_of_small_values_is_low_volume_only():
+    """At 20 vehicles expected, the counts fall to about a third for four hours (a holiday
+    nobody listed) and six in a row read 6. low_volume holds the drop alerted, so its
+    intervals are kept out of the level the tail tests use (which stays near 1); the repeat
+    is judged at the level the counts themselves show (about 0.3: spread of a count near 6,
+    where a repeat has probability about 1 / (2 sqrt(pi) sqrt(6)) = 0.12), so six equal
+    values are no frozen controller."""
+    th = calibrate(0.05, interval_s=STEP, mu_week=np.full(7 * PER_DAY, 20.0),
+                   interval_alpha=0.01, day_alpha=0.02, log_se=0.03)
+    rng = np.random.default_rng(7)
+    drop = rng.poisson(6.0, 48)
+    drop[np.flatnonzero(drop[1:] == drop[:-1]) + 1] += 1  # the only run is the one below
+    drop[30:36] = 6
+    drop[29], drop[36] = 4, 8
+    counts = np.concatenate([rng.poisson(20.0, 120), drop])
+    ev = _score(counts, 20.0, th)
+    assert ev.flag["low_volume"][130:].mean() > 0.8
+    assert ev.level[150:].max() > 0.7  # the tail tests' level did not learn the drop
+    assert not ev.flag["repeated_value"].any()
+
+
 def test_a_frozen_count_is_flagged_once_its_run_is_improbable():
     """A controller repeating 21 at 20 vehicles expected is flagged within 12 intervals (each
     repeat has probability about 1 / (2 sqrt(pi) sd) = 0.06 here), and not before the run

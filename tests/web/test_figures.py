@@ -202,3 +202,37 @@ def test_profile_names_the_busiest_hour_share_and_rounds(client, keys, fitted) -
     assert "share_of_expected_day" in wk["busiest_hour"] and "peak_hour" not in wk
     daily = wk["daily_volume"]
     assert daily == float(f"{daily:.3g}")
+
+
+def test_web_view_shows_a_detectors_figures_with_the_share_imputed(client, keys,
+                                                                  fitted) -> None:
+    """The planners' page of the web view shows the same figures as the API (AADT with its
+    interval, K30, the share imputed, the sufficiency rule, AM/PM peak-hour factors, the
+    factors), links back to the day; a bad year is a 400 page, an unknown detector a 404, a
+    year without counts says so, and without a session it redirects to the sign-in."""
+    path = "/ui/detectors/bra3-nb-t1/figures"
+    assert client.get(path, follow_redirects=True).url.path == "/ui/login"
+    api = client.get("/v1/detectors/bra3-nb-t1/figures", params={"year": 2026},
+                     headers=auth(keys["read"])).json()
+    r = client.post("/ui/login", data={"key": keys["read"], "next": path},
+                    follow_redirects=False)
+    assert r.status_code == 303 and r.headers["location"] == path
+    page = client.get(path, params={"year": 2026})
+    assert page.status_code == 200, page.text
+    text = page.text
+    aadt = api["aadt"]
+    assert f'{aadt["value"]:,}' in text and f'{aadt["low"]:,} to {aadt["high"]:,}' in text
+    assert f'{api["k30"]["value"]:.3f}' in text
+    assert f'{api["imputed_share"]:.1%} of the volume is imputed' in text
+    assert "Data sufficiency rule: not met" in text
+    pm = api["peak_hours"]["weekday"]["pm"]
+    assert f'{pm["phf"]:.2f} ({pm["phf_low"]:.2f} to {pm["phf_high"]:.2f})' in text
+    assert "Monthly factors" in text and "Day-of-week factors" in text
+    assert 'href="/ui/detectors/bra3-nb-t1"' in text
+    day = client.get("/ui/detectors/bra3-nb-t1")
+    assert 'href="/ui/detectors/bra3-nb-t1/figures"' in day.text
+    bad = client.get(path, params={"year": "20x6"})
+    assert bad.status_code == 400 and "is not a year 1990..2100" in bad.text
+    assert client.get("/ui/detectors/nope-1/figures").status_code == 404
+    empty = client.get(path, params={"year": 2019})
+    assert empty.status_code == 200 and "No figures for 2019" in empty.text

@@ -174,3 +174,69 @@ def test_ui_routes_are_not_in_the_api_document(client) -> None:
     """The view is not part of the JSON API contract."""
     paths = client.get("/openapi.json").json()["paths"]
     assert not any(p.startswith("/ui") for p in paths) and "/" not in paths
+
+
+def _service(client: TestClient, key: str, detector_id: str = "D1") -> dict:
+    return client.get(f"/v1/detectors/{detector_id}",
+                      headers={"Authorization": f"Bearer {key}"}).json()["service"]
+
+
+def test_service_state_form_needs_csrf_and_operate(client, engine, keys) -> None:
+    """A read key sees the detector's service state but no form, and its POST (with its own
+    token) is 403; an operate key's POST without the token is 403; with the token it takes the
+    detector out of service and returns it, as the API records."""
+    make_detector(engine, "D1")
+    sign_in(client, keys["read"])
+    page = client.get("/ui/detectors/D1").text
+    assert "Service state" in page and "in service" in page
+    assert 'action="/ui/detectors/D1/service"' not in page
+    r = client.post("/ui/detectors/D1/service", data={
+        "csrf": csrf_of(page), "state": "out_of_service", "reason": "forged"})
+    assert r.status_code == 403 and "may not change" in r.text
+    assert _service(client, keys["read"])["state"] == "in_service"
+    client.cookies.clear()
+    sign_in(client, keys["operate"])
+    r = client.post("/ui/detectors/D1/service",
+                    data={"state": "out_of_service", "reason": "no token"})
+    assert r.status_code == 403 and "CSRF" in r.text
+    assert _service(client, keys["read"])["state"] == "in_service"
+    page = client.get("/ui/detectors/D1").text
+    assert 'action="/ui/detectors/D1/service"' in page
+    r = client.post("/ui/detectors/D1/service", data={
+        "csrf": csrf_of(page), "state": "out_of_service", "reason": "loop cut by road works",
+        "until": "2099-06-01T08:30"}, follow_redirects=False)
+    assert r.status_code == 303 and r.headers["location"].startswith("/ui/detectors/D1")
+    api = _service(client, keys["read"])
+    assert api["state"] == "out_of_service" and api["by"] == "operate-key"
+    assert api["reason"] == "loop cut by road works" and api["until"] is not None
+    page = client.get("/ui/detectors/D1").text
+    assert "out of service" in page and "loop cut by road works" in page
+    assert "2099-06-01 08:30" in page and "Return to service" in page
+    r = client.post("/ui/detectors/D1/service",
+                    data={"csrf": csrf_of(page), "state": "in_service"}, follow_redirects=True)
+    assert r.status_code == 200 and "Take out of service" in r.text
+    assert _service(client, keys["read"])["state"] == "in_service"
+
+
+@pytest.mark.parametrize(("fields", "said"), [
+    ({"reason": "   "}, "reason is required"),
+    ({"reason": "cabinet open", "until": "2001-01-01T00:00"}, "not in the future"),
+    ({"reason": "cabinet open", "until": "next tuesday"}, "YYYY-MM-DDTHH:MM"),
+    ({"reason": "cabinet open", "until": "2099-03-08T02:30"}, "does not exist"),
+    ({"reason": "a\x00b"}, "control character"),
+    ({"reason": "x" * 501}, "at most 500"),
+    ({"reason": "cabinet open", "state": "retired"}, "in_service or out_of_service"),
+])
+def test_service_state_form_refuses_bad_input_with_the_page_and_a_message(
+        client, engine, keys, fields, said) -> None:
+    """An empty reason, an until in the past, unparseable or skipped by the clocks, a control
+    character or an over-long reason, or a state this page does not set: a 400 page (the
+    detector's own, form filled in again) saying what was wrong; nothing changes."""
+    make_detector(engine, "D1", timezone="America/Chicago")
+    sign_in(client, keys["operate"])
+    token = csrf_of(client.get("/ui/detectors/D1").text)
+    r = client.post("/ui/detectors/D1/service",
+                    data={"csrf": token, "state": "out_of_service", **fields})
+    assert r.status_code == 400 and said in r.text, r.text[-1500:]
+    assert 'id="service-error"' in r.text and "Detector D1" in r.text
+    assert _service(client, keys["read"])["state"] == "in_service"

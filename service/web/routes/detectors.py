@@ -14,7 +14,7 @@ from service.errors import BadRequest, ValidationFailed
 from service.pipeline import ingest
 from service.store import detectors as registry
 from service.store.engine import write_transaction
-from service.store.scoring import clock_now
+from service.store.scoring import clock_now, period_clock_now
 from service.timefmt import parse_rfc3339
 from service.web.deps import AdminDep, EngineDep, OperateDep, ReadDep, SettingsDep
 from service.web.openapi import IMPORT_BODY
@@ -24,6 +24,7 @@ from service.web.schemas import (
     DetectorPublic,
     DetectorsPublic,
     ServiceChange,
+    ServicePeriodsPublic,
 )
 
 router = APIRouter(prefix="/v1/detectors", tags=["detectors"])
@@ -45,7 +46,9 @@ service, or retire it.
 
 Out of service: its counts are still stored and scored, but alerts it raises are kept as
 suppressed (listed by `GET /v1/alerts?suppressed=true`); at `until` (wall clock) it returns to
-service by itself, and its suppressed alerts still open are raised then. Retired: no longer
+service by itself, and its suppressed alerts still open are raised then. The period out of
+service is kept after it returns: counts whose start lies in it are flagged `out_of_service` in
+`GET /v1/counts` and imputed by the clean volumes. Retired: no longer
 expected to report, so missing data raises nothing; kept for history. Operate and admin keys
 may set `in_service` and `out_of_service`; only admin keys may retire a detector or change a
 retired one. 422: unknown state, `until` not in the future or given with another state,
@@ -65,7 +68,18 @@ def patch_detector(detector_id: DetectorId, change: ServiceChange, engine: Engin
     return registry.set_service_state(
         engine, detector_id, state=change.state, reason=change.reason, until_s=until_s,
         by=principal.name, may_retire=principal.may("admin"),
-        clock=lambda conn: clock_now(conn, settings))
+        clock=lambda conn: clock_now(conn, settings),
+        period_clock=lambda conn: period_clock_now(conn, settings))
+
+
+@router.get("/{detector_id}/service-periods", response_model=ServicePeriodsPublic,
+            response_model_by_alias=True, summary="A detector's out-of-service periods")
+def get_service_periods(detector_id: DetectorId, engine: EngineDep, _: ReadDep,
+                        limit: int = Query(100, ge=1, le=1000)) -> dict[str, Any]:
+    """The periods the detector was (or is) out of service, newest first: start, end (null
+    while open), reason, who took it out and who returned it. Counts whose start lies in a
+    period are flagged `out_of_service` in `GET /v1/counts`."""
+    return registry.service_periods(engine, detector_id, limit=limit)
 
 
 @router.get("", response_model=DetectorsPublic)

@@ -6,6 +6,7 @@ extent (no tiles), and the day chart is plain SVG with a title on every mark.
 
 from __future__ import annotations
 
+import functools
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
@@ -36,6 +37,7 @@ def shape(state: str, x: float, y: float, r: float = 5.5) -> str:
             f'{y + r * 1.1:.1f}L{x - r:.1f},{y:.1f}Z"/>')
 
 
+@functools.cache  # one per state: the network table draws one per detector
 def legend_icon(state: str) -> str:
     return (f'<svg class="icon" width="14" height="14" viewBox="0 0 14 14" aria-hidden="true" '
             f'focusable="false">{shape(state, 7, 7.5, 5)}</svg>')

@@ -7,7 +7,7 @@ from __future__ import annotations
 import secrets
 from datetime import date, datetime, timedelta
 from typing import Annotated, Any
-from urllib.parse import parse_qs
+from urllib.parse import parse_qs, quote
 from zoneinfo import ZoneInfo
 
 from fastapi import APIRouter, Depends, Query, Request
@@ -15,12 +15,12 @@ from fastapi.concurrency import run_in_threadpool
 from fastapi.responses import HTMLResponse, JSONResponse, RedirectResponse, Response
 
 from service.domain import CAUSES, KINDS, ROAD_CLASSES, prose
-from service.errors import NotFound
+from service.errors import Forbidden, NotFound, ValidationFailed
 from service.pipeline import baseline_day
 from service.store import alerts as alert_store
 from service.store import detectors as registry
 from service.store import overview
-from service.store.scoring import clock_now
+from service.store.scoring import clock_now, period_clock_now
 from service.web.ui import charts
 from service.web.ui.assets import ASSETS, CACHE_FOREVER
 from service.web.ui.render import (
@@ -521,6 +521,14 @@ def detector_page(
     detector_id: str, request: Request, session: SessionDep,
     date_: Annotated[str | None, Query(alias="date", max_length=10)] = None,
 ) -> Response:
+    return detector_view(request, session, detector_id, date_)
+
+
+def detector_view(request: Request, session: Session, detector_id: str, date_: str | None, *,
+                  message: str = "", entered: dict[str, str] | None = None,
+                  status: int = 200) -> Response:
+    """The detector's page; ``message`` (with the form values ``entered``) when a service-state
+    change was not accepted."""
     settings, engine = request.app.state.settings, request.app.state.engine
     try:
         det = registry.get_detector(engine, detector_id)
@@ -610,13 +618,15 @@ def detector_page(
             '<th scope="col">Busiest-hour volume</th><th scope="col">Share of expected day</th>'
             '<th scope="col">Fitted from</th></tr></thead>'
             f'<tbody>{"".join(prow)}</tbody></table>'
-            '<p class="muted">Peak-hour factors and K30 come from counted data: '
-            f'GET /v1/detectors/{h(detector_id)}/figures.</p>')
+            '<p class="muted">Peak-hour factors, AADT and K30 come from counted data: '
+            f'<a href="/ui/detectors/{h(detector_id)}/figures">planners\' figures of the '
+            'year</a>.</p>')
     else:
         prof_html = '<p class="muted">No baseline fitted yet.</p>'
     recent_rows = "".join(
         f'<tr><td><a href="/ui/alerts/{a["id"]}">{a["id"]}</a></td><td>{h(a["kind"])}</td>'
-        f'<td>{h(a["cause"])}</td><td>{h(a["status"])}</td>'
+        f'<td>{h(a["cause"])}</td><td>{h(a["status"])}'
+        f'{" (suppressed: raised out of service)" if a.get("suppressed") else ""}</td>'
         f'<td>{h(local_time(a["start_s"], det["timezone"]))}</td>'
         f'<td>{duration(a["end_s"] - a["start_s"])}</td><td class="summary">{h(a["summary"])}</td>'
         '</tr>' for a in recent)
@@ -627,8 +637,7 @@ def detector_page(
         f'<th scope="col">Summary</th></tr></thead><tbody>{recent_rows}</tbody></table>'
         if recent else '<p class="muted">No alerts for this detector.</p>')
     open_alerts = [a for a in recent if a["status"] == "open"]
-    # Operator actions for this detector: acknowledging its open alerts today; a service-state
-    # control is meant to join this section as another form.
+    # Operator actions for this detector: acknowledging its open alerts, and its service state.
     if open_alerts and session.may("operate"):
         actions = "".join(f'<li><a href="/ui/alerts/{a["id"]}">Review and acknowledge alert '
                           f'{a["id"]} ({h(a["kind"])})</a></li>' for a in open_alerts)
@@ -647,11 +656,138 @@ def detector_page(
         '(squares: outside the band) <span class="key key-shade"></span> alert</p>'
         f'{chart}<p id="readout" class="readout" aria-live="polite">Point at or tab to a count '
         'to read its values.</p></section>'
-        f'<section aria-labelledby="act-h"><h2 id="act-h">Actions</h2>{actions_html}</section>'
+        f'<section aria-labelledby="act-h"><h2 id="act-h">Actions</h2>{actions_html}'
+        f'{service_section(session, det, message=message, entered=entered or {})}</section>'
         f'<div class="cols"><section aria-label="Health">{health_html}</section>'
         f'<section aria-label="Profiles">{prof_html}</section></div>'
         f'<section aria-label="Recent alerts">{recent_html}</section>')
-    return framed(session, title=f"Detector {detector_id}", body=body, active="network")
+    return framed(session, title=f"Detector {detector_id}", body=body, active="network",
+                  status=status)
+
+
+# ---------------------------------------------------------------------------- service state
+
+SERVICE_REASON_MAX = 500  # characters, as the API's service-state reason
+UNTIL_MAX = 64  # characters, as the API's until
+
+
+def service_section(session: Session, det: dict[str, Any], *, message: str,
+                    entered: dict[str, str]) -> str:
+    """The detector's service state (state, reason, by whom, since and until when, in its local
+    time) and, for an operate key, the form that changes it."""
+    svc, zone, state = det["service"], det["timezone"], det["service"]["state"]
+
+    def when(text: str | None) -> str | None:
+        return local_time(parse_utc(text), zone) if text else None
+
+    until = when(svc["until"]) or ("until changed" if state == "out_of_service" else None)
+    facts = [("State", state.replace("_", " ")), ("Reason", svc["reason"]), ("Set by", svc["by"]),
+             ("Since", when(svc["since"])), ("Until", until)]
+    dl = "".join(f"<dt>{h(k)}</dt><dd>{h(v)}</dd>" for k, v in facts if v is not None)
+    error = f'<p class="error" role="alert" id="service-error">{h(message)}</p>' if message else ""
+    described = ' aria-describedby="service-error"' if message else ""
+    start = (f'<form method="post" action="/ui/detectors/{h(det["detector_id"])}/service" '
+             f'class="service-form"><input type="hidden" name="csrf" value="{h(session.csrf)}">')
+    if not session.may("operate"):
+        control = ('<p class="muted">Your key\'s role may view the service state; changing it '
+                   'needs a key with role operate.</p>')
+    elif state == "retired":
+        control = ('<p class="muted">A retired detector is returned to service by an admin key '
+                   'through the API (PATCH /v1/detectors/{id}).</p>')
+    elif state == "out_of_service":
+        control = (f'{start}<input type="hidden" name="state" value="in_service">'
+                   '<button type="submit">Return to service</button></form>')
+    else:
+        control = (
+            f'{start}<input type="hidden" name="state" value="out_of_service">'
+            '<label for="service-reason">Reason (the fault, the work order)</label>'
+            f'<input id="service-reason" name="reason" type="text" required '
+            f'maxlength="{SERVICE_REASON_MAX}" value="{h(entered.get("reason", ""))}"'
+            f'{described}>'
+            f'<label for="service-until">Until (local time, {h(zone)}; optional)</label>'
+            '<input id="service-until" name="until" type="datetime-local" '
+            f'value="{h(entered.get("until", ""))}"{described}>'
+            '<button type="submit">Take out of service</button></form>')
+    return (
+        f'<section aria-labelledby="svc-h"><h3 id="svc-h">Service state</h3>{error}'
+        f'<dl class="facts" id="service-state">{dl}</dl>{control}'
+        '<p class="muted">Out of service, the detector\'s counts are still stored and scored, '
+        'but alerts it raises are kept as suppressed (not listed as open) until it returns to '
+        'service, by hand or at the until time; then its suppressed alerts still open are '
+        'raised. Alerts already open stay as they are.</p></section>')
+
+
+def parse_local(text: str, zone: str) -> float:
+    """A local date and time typed in the form (``YYYY-MM-DDTHH:MM``) on ``zone``'s wall
+    clock, in epoch s; BadInput saying what is accepted when it is not one."""
+    accepted = "a local date and time YYYY-MM-DDTHH:MM"
+    try:
+        naive = datetime.fromisoformat(text)
+    except ValueError:
+        raise BadInput(f"until {text[:40]!r} is not {accepted}") from None
+    if naive.tzinfo is not None:
+        raise BadInput(f"until {text[:40]!r} carries a UTC offset; give {accepted} in {zone}")
+    if not 1990 <= naive.year <= 2100:
+        raise BadInput(f"until {text[:40]!r} is outside the years 1990..2100")
+    moment = naive.replace(tzinfo=ZoneInfo(zone))
+    if datetime.fromtimestamp(moment.timestamp(), ZoneInfo(zone)).replace(tzinfo=None) != naive:
+        raise BadInput(f"until {text[:40]!r} does not exist in {zone} (the clocks skip it)")
+    return moment.timestamp()
+
+
+@router.post("/detectors/{detector_id}/service")
+async def set_service(detector_id: str, request: Request) -> Response:
+    fields = await form_of(request)
+    session = await run_in_threadpool(require_session, request)
+    session.check_csrf(fields.get("csrf"))
+    if not session.may("operate"):
+        return framed(session, title="Not allowed", status=403, body=(
+            f'<p>Key {h(session.principal.name)} has role {h(session.principal.role)}, which may '
+            'not change a detector\'s service state; that needs a key with role operate or '
+            'admin.</p>'))
+    settings, engine = request.app.state.settings, request.app.state.engine
+    try:
+        det = await run_in_threadpool(registry.get_detector, engine, detector_id)
+    except NotFound:
+        return framed(session, title="No such detector", status=404,
+                      body=f"<p>There is no detector {h(detector_id)}.</p>")
+    state = fields.get("state", "")
+    reason = fields.get("reason", "").strip() or None
+    until_text = fields.get("until", "").strip()
+    entered = {"reason": fields.get("reason", "")[:SERVICE_REASON_MAX],
+               "until": until_text[:UNTIL_MAX]}
+    problem = None
+    try:
+        if state not in ("in_service", "out_of_service"):
+            raise BadInput(f"state {state[:40]!r} is not one this page sets; it is "
+                           "in_service or out_of_service")
+        if reason is not None and len(reason) > SERVICE_REASON_MAX:
+            raise BadInput(f"the reason is {len(reason):,} characters; a reason holds at most "
+                           f"{SERVICE_REASON_MAX:,}")
+        try:
+            prose(reason)
+        except ValueError as exc:
+            raise BadInput(f"the reason {exc}") from None
+        if len(until_text) > UNTIL_MAX:
+            raise BadInput(f"until is over {UNTIL_MAX} characters; give a local date and time "
+                           "YYYY-MM-DDTHH:MM")
+        until_s = parse_local(until_text, det["timezone"]) if until_text else None
+        # The same store call as PATCH /v1/detectors/{id}: its rules (a reason required, until
+        # in the future and only when out of service, retiring for admins) hold here too.
+        await run_in_threadpool(lambda: registry.set_service_state(
+            engine, detector_id, state=state, reason=reason, until_s=until_s,
+            by=session.principal.name, may_retire=session.may("admin"),
+            clock=lambda conn: clock_now(conn, settings),
+            period_clock=lambda conn: period_clock_now(conn, settings)))
+    except (BadInput, ValidationFailed) as exc:
+        problem = f"Not changed: {exc}."
+    except Forbidden as exc:
+        return framed(session, title="Not allowed", status=403, body=f"<p>{h(exc)}.</p>")
+    if problem:
+        return await run_in_threadpool(lambda: detector_view(
+            request, session, detector_id, None, message=problem, entered=entered, status=400))
+    return session.keep_alive(RedirectResponse(
+        f"/ui/detectors/{quote(detector_id, safe='')}#svc-h", status_code=303))
 
 
 # ---------------------------------------------------------------------------- wiring

@@ -1,0 +1,70 @@
+"""Fitting a network pools each group's dispersion across its detectors: a lane with a short
+history borrows its day-level dispersion from its group (``fit.fit_many`` through
+``baseline.pool_group_dispersion``), on a real database."""
+
+from __future__ import annotations
+
+import pytest
+from sqlalchemy import delete
+
+from service.config import Settings
+from service.pipeline import fit as fitting
+from service.stats.calendar import DAY_TYPES
+from service.store import tables
+from service.store.baselines import load_baseline
+from service.store.engine import read_transaction, write_transaction
+from tests.factories import load_network, small_network
+
+GROUP = ("bra3-nb-lt", "bra3-nb-t1", "bra3-nb-t2")
+SHORT = "bra3-nb-t2"
+DAY_S = 86_400
+
+
+def _share(p, g: float) -> float:  # type: ignore[no-untyped-def]
+    """Share of the way from the profile's own day-level value to the group's ``g``."""
+    own = p.smoothing["day_alpha_own"]
+    return (p.day_alpha - own) / (g - own) if g != own else 0.0
+
+
+def _baselines(engine, results):  # type: ignore[no-untyped-def]
+    with read_transaction(engine) as conn:
+        return {r["detector_id"]: load_baseline(conn, r["baseline_id"]) for r in results}
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("workers", [1, 2])
+def test_fit_many_pools_day_level_dispersion_across_the_group(database_url, engine, workers
+                                                               ) -> None:
+    """Three lanes of one group, two with 8 weeks of history and one whose first 5 weeks were
+    never stored: every stored profile records the group's value (the same for the whole
+    group), the 3-week lane's day-level dispersion moves at least a quarter of the way from
+    its own estimate toward it, farther (as a share of the distance) than an 8-week lane's;
+    refitted alone, the lane is pooled with its mates' stored values just the same."""
+    net = small_network(GROUP, history_days=56, test_days=1, seed=4)
+    load_network(engine, net, until_s=net.test_start_s)
+    with write_transaction(engine) as conn:
+        conn.execute(delete(tables.counts).where(
+            tables.counts.c.detector_id == SHORT,
+            tables.counts.c.start_s < net.test_start_s - 21 * DAY_S))
+    settings = Settings(database_url=database_url)
+    results = fitting.fit_many(settings, engine, as_of_s=net.test_start_s, workers=workers)
+    assert all(r["status"] == "fitted" for r in results), results
+    fitted = _baselines(engine, results)
+    assert sum(p.days_used for p in fitted[SHORT].profiles.values()) <= 21
+    for name in DAY_TYPES:
+        profs = {d: fitted[d].profiles[name] for d in GROUP}
+        groups = {p.smoothing["group_day_alpha"] for p in profs.values()}
+        assert len(groups) == 1, groups
+        g = groups.pop()
+        assert _share(profs[SHORT], g) >= 0.25, (name, _share(profs[SHORT], g))
+        for d in GROUP:
+            if d != SHORT:
+                assert _share(profs[d], g) < _share(profs[SHORT], g), (name, d)
+    # refitted alone (a nightly refit), the lane pools with its mates' stored own values:
+    # the same result as when the group was fitted together
+    alone = fitting.fit_one(engine, SHORT, as_of_s=net.test_start_s, settings=settings)
+    base = _baselines(engine, [alone])[SHORT]
+    for name in DAY_TYPES:
+        for key in ("day_alpha", "interval_alpha"):
+            assert getattr(base.profiles[name], key) == pytest.approx(
+                getattr(fitted[SHORT].profiles[name], key), rel=1e-12)
