@@ -405,27 +405,39 @@ class _Timeline:
         base = i0 + hist - w  # the earliest ext index any window here can use
         top = i1 + hist
         span = top - base
-        keep = ~self._left_out(flags[base:top + g])[:span]
-        # rows: weighted counts and expectations; the same at 2**-FLAG_SHIFT of their weight
-        # (left-out intervals still count that much; exact integers); the window's mix of both
-        parts = np.empty((6, span), dtype=np.int64)
-        parts[0], parts[1] = self.qy[base:top], self.qm[base:top]
-        np.right_shift(parts[0:2], FLAG_SHIFT, out=parts[2:4])
-        parts[4:6] = np.where(keep, parts[0:2], parts[2:4])
-        sums = np.zeros((6, span + 1), dtype=np.int64)  # running sums, a leading zero each
-        np.cumsum(parts, axis=1, out=sums[:, 1:])
-        cuy, cum, cdy, cdm, csy, csm = sums
-        e = np.arange(i0, i1) + hist - base  # position of t in these cumulative arrays
-        day_lo = e - np.minimum(self.day_age[i0:i1], w)
         early = max(0, base - g)  # flags this far back can still cut a recent part
-        flagged_at = np.where(flags[early:top], np.arange(early - base, top - base), -g - 1)
-        last_flag = np.maximum.accumulate(flagged_at)[e + base - early - 1]
+        e = np.arange(i0, i1) + hist - base  # position of t in the cumulative arrays below
+        day_lo = e - np.minimum(self.day_age[i0:i1], w)
         old_hi = np.maximum(e - g, day_lo)  # the recent part is [old_hi, e)
-        rec_lo = np.maximum(old_hi, last_flag + 1)  # full weight from here on
-        rec_m = cum[e] - cum[rec_lo] + cdm[rec_lo] - cdm[old_hi]
-        rec_y = cuy[e] - cuy[rec_lo] + cdy[rec_lo] - cdy[old_hi]
+        if not flags[early:top + g].any():
+            # no flag anywhere these windows look: every interval at full weight (the same
+            # integers as below with nothing left out and no recent part cut)
+            sums = np.zeros((2, span + 1), dtype=np.int64)
+            np.cumsum(self.qy[base:top], out=sums[0, 1:])
+            np.cumsum(self.qm[base:top], out=sums[1, 1:])
+            cuy, cum = sums
+            csy, csm = cuy, cum
+            rec_m = cum[e] - cum[old_hi]
+            rec_y = cuy[e] - cuy[old_hi]
+        else:
+            keep = ~self._left_out(flags[base:top + g])[:span]
+            # rows: weighted counts and expectations; the same at 2**-FLAG_SHIFT of their
+            # weight (left-out intervals still count that much; exact integers); the window's
+            # mix of both
+            parts = np.empty((6, span), dtype=np.int64)
+            parts[0], parts[1] = self.qy[base:top], self.qm[base:top]
+            np.right_shift(parts[0:2], FLAG_SHIFT, out=parts[2:4])
+            parts[4:6] = np.where(keep, parts[0:2], parts[2:4])
+            sums = np.zeros((6, span + 1), dtype=np.int64)  # running sums, a leading zero each
+            np.cumsum(parts, axis=1, out=sums[:, 1:])
+            cuy, cum, cdy, cdm, csy, csm = sums
+            flagged_at = np.where(flags[early:top], np.arange(early - base, top - base), -g - 1)
+            last_flag = np.maximum.accumulate(flagged_at)[e + base - early - 1]
+            rec_lo = np.maximum(old_hi, last_flag + 1)  # full weight from here on
+            rec_m = cum[e] - cum[rec_lo] + cdm[rec_lo] - cdm[old_hi]
+            rec_y = cuy[e] - cuy[rec_lo] + cdy[rec_lo] - cdy[old_hi]
         j = np.searchsorted(csm, csm[old_hi] + rec_m - self.information, side="right") - 1
-        old_lo = np.clip(j, e - w, e - self.shortest)
+        old_lo = np.minimum(np.maximum(j, e - w), e - self.shortest)  # clip
         old_lo = np.minimum(np.maximum(old_lo, day_lo), old_hi)
         sum_y = (rec_y + csy[old_hi] - csy[old_lo]) / FIX_SCALE
         sum_m = (rec_m + csm[old_hi] - csm[old_lo]) / FIX_SCALE
