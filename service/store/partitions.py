@@ -85,7 +85,9 @@ def lock_counts(conn: Connection) -> None:
     Every query takes the parent before its partitions. ``CREATE TABLE ... PARTITION OF`` or
     ``DETACH PARTITION`` after a read of a partition in the same transaction would take them
     the other way round, and deadlock with ingest and the scorers' reads (seen with two
-    workers starting beside a feeding API)."""
+    workers starting beside a feeding API); and without the lock, counts stored into the
+    default partition between moving its rows out and ``ATTACH PARTITION`` make the attach
+    fail (tests/store/test_retention.py)."""
     conn.execute(text(f"SET LOCAL lock_timeout = {LOCK_WAIT_MS}"))
     conn.execute(text("LOCK TABLE counts IN ACCESS EXCLUSIVE MODE"))
 
