@@ -14,9 +14,9 @@ What it does, per database (PostgreSQL first, then SQLite unless --skip-sqlite):
    a half and all of the network, so that linear growth shows.
 4. Stores ``--alerts`` alerts (100,000 by default) for the polling figure.
 5. Feeds ``--feed-hours`` more at ``--speed`` times real time through the HTTP API: on
-   PostgreSQL 2 API processes (``tallyward serve --workers 2``, scoring off) and 2 scoring
-   processes (``tallyward score --loop``: the stand-in for a dedicated worker); on SQLite one
-   API process scoring inline. Every 5 minutes of data time is posted in 1,000-count batches
+   PostgreSQL 2 API processes (``tallyward serve --workers 2``, ``TALLYWARD_SCORING=worker``)
+   and 2 ``tallyward worker`` processes sharing the scoring; on SQLite one API process
+   scoring inline. Every 5 minutes of data time is posted in 1,000-count batches
    by two client threads. Prints the sustained ingest rate, the scoring lag (per detector
    and 5-minute slot: seconds from the slot's last batch committed to the detector's
    ``scored_through_s`` passing the slot), alert polling latency (caught-up polls and pages
@@ -204,7 +204,9 @@ def feed(url: str, engine, network: Network, *, from_s: int, hours: float, speed
            "TALLYWARD_FUTURE_TOLERANCE_S": str(10**9)}
     procs = [start(["serve", "--port", str(port), "--workers", str(api_workers)], env,
                    logdir / "api.log")]
-    procs += [start(["score", "--loop", "--idle", "0.2"], env, logdir / f"score{i}.log")
+    # TALLYWARD_REFITS=off: a nightly refit in the fed hours would only add noise here.
+    procs += [start(["worker"], {**env, "TALLYWARD_WORKER_POLL_S": "0.2",
+                                 "TALLYWARD_REFITS": "off"}, logdir / f"worker{i}.log")
               for i in range(scorers)]
     base = f"http://127.0.0.1:{port}"
     headers = {"Authorization": f"Bearer {key}", "Content-Type": "application/json"}
@@ -429,8 +431,8 @@ def main() -> int:
                 conn.execute(text(f'CREATE DATABASE "{name}"'))
             url = admin_url.set(database=name).render_as_string(hide_password=False)
             try:
-                results.append(run(url, args, label="PostgreSQL, 2 API processes + 2 scorers",
-                                   api_workers=2, scorers=2, scoring="off", logdir=logdir))
+                results.append(run(url, args, label="PostgreSQL, 2 API processes + 2 workers",
+                                   api_workers=2, scorers=2, scoring="worker", logdir=logdir))
             finally:
                 with admin.connect() as conn:
                     conn.execute(text(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)'))

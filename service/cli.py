@@ -267,7 +267,7 @@ def cmd_score(args: argparse.Namespace, settings: Settings) -> int:
     cache = ScoringCache()  # baselines parsed once for the life of this command
     total = 0
     while True:
-        n = score_pass(engine, settings, cache=cache)
+        n = score_pass(engine, settings, limit=settings.scoring_batch, cache=cache)
         total += n
         if n == 0:
             if not args.loop:

@@ -173,6 +173,10 @@ class Settings(BaseSettings):
     worker_poll_s: float = Field(
         1.0, gt=0, le=60, description="Seconds an idle worker waits before looking for work "
         "again (scoring, missing-data sweep, jobs).")
+    scoring_batch: int = Field(
+        64, ge=1, le=1000, description="Detectors a scorer claims per scoring pass (one "
+        "claim, one read, one write transaction). Several workers split the backlog in "
+        "batches of this size.")
     worker_lease_s: float = Field(
         120.0, ge=1, le=3600, description="Seconds a scorer's claim on a detector holds: work "
         "of a worker that dies is taken over by another after this long. Longer than a "

@@ -78,12 +78,17 @@ def maintain_storage(engine: Engine, settings: Settings, now: float | None = Non
 def _make_partitions(engine: Engine, settings: Settings, now: float,
                      report: MaintenanceReport) -> None:
     span = settings.partition_days * DAY_S
+    ahead = (int(now), int(now) + settings.partition_ahead_days * DAY_S)
+    with read_transaction(engine) as conn:  # most passes have nothing to make: no lock then
+        if parts.default_span(conn) is None and not parts.missing_ranges(conn, *ahead,
+                                                                          span_s=span):
+            return
     with write_transaction(engine) as conn:
+        parts.lock_counts(conn)  # before any read of a partition: see lock_counts
         stray = parts.default_span(conn)
         if stray is not None:
             report.partitions_created += parts.ensure_partitions(conn, *stray, span_s=span)
-        report.partitions_created += parts.ensure_partitions(
-            conn, int(now), int(now) + settings.partition_ahead_days * DAY_S, span_s=span)
+        report.partitions_created += parts.ensure_partitions(conn, *ahead, span_s=span)
 
 
 def _drop_partitions(engine: Engine, cutoff: int, report: MaintenanceReport) -> None:
@@ -93,6 +98,9 @@ def _drop_partitions(engine: Engine, cutoff: int, report: MaintenanceReport) -> 
         expired = [p for p in parts.partitions(conn) if p.hi_s <= cutoff]
     for part in expired:
         with write_transaction(engine) as conn:
+            parts.lock_counts(conn)  # before finalize_hours reads the partition
+            if part.name not in {p.name for p in parts.partitions(conn)}:
+                continue  # another worker dropped it meanwhile
             rollup.finalize_hours(conn, part.lo_s, part.hi_s)
             parts.drop_partition(conn, part)
         report.partitions_dropped.append(part.name)

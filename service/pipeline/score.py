@@ -34,6 +34,8 @@ from __future__ import annotations
 import dataclasses
 import logging
 import math
+import os
+import socket
 import time
 from collections.abc import Sequence
 from dataclasses import dataclass, field
@@ -335,7 +337,28 @@ def write_scored(engine: Engine, scored: Sequence[Scored], settings: Settings, *
         store.mark_succeeded(conn, list(succeeded), now=now)
         for detector_id, exc, redo_from_s in failures:
             store.mark_failed(conn, detector_id, exc, now=now, redo_from_s=redo_from_s)
-        return writer.changes
+    _log_batch(scored, succeeded, failures, writer.changes)
+    return writer.changes
+
+
+def scorer_id() -> str:
+    """Who scored a batch, in the logs: host and process id (several workers share a host)."""
+    return f"{socket.gethostname()}:{os.getpid()}"
+
+
+def _log_batch(scored: Sequence[Scored], succeeded: dict[str, None], failures: list[Failure],
+               changes: int) -> None:
+    """One DEBUG line per committed batch: the scorer, and for each detector written the span
+    of intervals it scored (``[keep_from_s, end_s)``, epoch s; rescored spans included), so
+    the logs of several workers show who scored what."""
+    if not log.isEnabledFor(logging.DEBUG):
+        return
+    spans = {sc.info.detector_id: [sc.keep_from_s, sc.end_s] for sc in scored
+             if sc.info.detector_id in succeeded and sc.end_s > sc.keep_from_s >= 0}
+    log.debug("scored batch", extra={"fields": {
+        "scorer": scorer_id(),
+        "detectors": len({sc.info.detector_id for sc in scored} | {f[0] for f in failures}),
+        "spans": spans, "failed": sorted({f[0] for f in failures}), "alert_changes": changes}})
 
 
 def _write_detectors(conn: Connection, writer: store.AlertWriter, scored: Sequence[Scored],

@@ -53,8 +53,8 @@ def default_tasks(engine: Any, settings: Settings, *, refits: bool, storage: boo
     cache = ScoringCache()  # parsed baselines and thresholds, for the worker's life
     poll = settings.worker_poll_s
     tasks = [
-        PeriodicTask("score", poll, lambda: score_pass(engine, settings, cache=cache),
-                     wakes=True),
+        PeriodicTask("score", poll, lambda: score_pass(
+            engine, settings, limit=settings.scoring_batch, cache=cache), wakes=True),
         PeriodicTask("fit_jobs", poll, lambda: jobs.run_job_items(engine, settings)),
     ]
     if refits:

@@ -74,9 +74,36 @@ def default_span(conn: Connection) -> tuple[int, int] | None:
     return None if row[0] is None else (int(row[0]), int(row[1]) + 1)
 
 
+LOCK_WAIT_MS = 5000  # longest wait for the exclusive lock on counts (ms); ingest queues behind it
+
+
+def lock_counts(conn: Connection) -> None:
+    """Lock ``counts`` exclusively, parent first (``LOCK TABLE`` then takes every partition),
+    for the rest of the transaction; wait at most ``LOCK_WAIT_MS`` (then
+    ``sqlalchemy.exc.OperationalError``, lock not available).
+
+    Every query takes the parent before its partitions. ``CREATE TABLE ... PARTITION OF`` or
+    ``DETACH PARTITION`` after a read of a partition in the same transaction would take them
+    the other way round, and deadlock with ingest and the scorers' reads (seen with two
+    workers starting beside a feeding API); and without the lock, counts stored into the
+    default partition between moving its rows out and ``ATTACH PARTITION`` make the attach
+    fail (tests/store/test_retention.py)."""
+    conn.execute(text(f"SET LOCAL lock_timeout = {LOCK_WAIT_MS}"))
+    conn.execute(text("LOCK TABLE counts IN ACCESS EXCLUSIVE MODE"))
+
+
+def missing_ranges(conn: Connection, lo_s: int, hi_s: int, *, span_s: int
+                   ) -> list[tuple[int, int]]:
+    """The ranges of [lo_s, hi_s) that no partition covers yet (no lock taken)."""
+    existing = partitions(conn)
+    return [(lo, hi) for lo, hi in ranges_covering(lo_s, hi_s, span_s)
+            if not any(p.lo_s < hi and lo < p.hi_s for p in existing)]
+
+
 def ensure_partitions(conn: Connection, lo_s: int, hi_s: int, *, span_s: int) -> list[str]:
     """Create the range partitions that cover [lo_s, hi_s) and do not exist yet, moving any
-    rows of their ranges out of the default partition; the names created.
+    rows of their ranges out of the default partition; the names created. Call it after
+    ``lock_counts`` in the same transaction.
 
     Ranges already covered by a partition of another span are left alone."""
     existing = partitions(conn)

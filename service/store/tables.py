@@ -221,10 +221,13 @@ alerts = Table(
     Index("ix_alerts_start_s", "start_s"),
     Index("ix_alerts_subject_kind_start_s", "subject", "kind", "start_s", unique=True),
     Index("ix_alerts_detector_id_end_s", "detector_id", "end_s"),
-    Index("ix_alerts_group_id", "group_id"),
-    # Open alerts only (migration 0009): the network page reads them for every detector.
+    # Open alerts only (migration 0010): the network page reads them for every detector.
     Index("ix_alerts_open", "detector_id", "kind", sqlite_where=text("status = 'open'"),
           postgresql_where=text("status = 'open'")),
+    # Polls with a filter, far behind the top seq (migration 0011)
+    Index("ix_alerts_group_id_seq", "group_id", "seq"),
+    Index("ix_alerts_kind_seq", "kind", "seq"),
+    Index("ix_alerts_status_seq", "status", "seq"),
 )
 
 counters = Table(

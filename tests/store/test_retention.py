@@ -218,3 +218,56 @@ def test_scorer_fit_and_api_counts_queries_read_only_the_partitions_they_need(da
         fit_sql = fitting.HISTORY_SQL.format(mark="%s")
         assert _scanned(conn, fit_sql, ("X1", base + 2 * week, base + 4 * week)) == {
             names[base + 2 * week], names[base + 3 * week]}
+
+
+@pg_only
+def test_partition_upkeep_beside_ingest_and_reads_fails_nothing_and_loses_nothing(
+        database_url, engine) -> None:
+    """PostgreSQL: maintenance making partitions (and moving stray rows out of the default
+    partition) while three writers store counts into the default partition and read the
+    latest interval: every statement succeeds and every count is kept. (Without the
+    exclusive lock on ``counts`` first, rows stored between the move and the attach made the
+    attach fail, and the partition DDL could deadlock with ingest.)"""
+    import threading
+
+    if engine.dialect.name != "postgresql":
+        pytest.skip("partitions are PostgreSQL's")
+    make_detector(engine, "W1", interval_s=300, group=None)
+    stop = threading.Event()
+    errors: list[str] = []
+    stored = [0, 0, 0]
+    far = NOW_S - 400 * DAY_S  # no partition holds these: they land in the default partition
+
+    def writer(k: int) -> None:
+        i = 0
+        while not stop.is_set():
+            try:
+                with engine.begin() as conn:
+                    conn.execute(text("SELECT max(start_s) FROM counts")).scalar()
+                    conn.execute(text(
+                        "INSERT INTO counts (detector_id, start_s, count, received_s) "
+                        "VALUES ('W1', :t, 1, 0)"), {"t": far + 300 * (3 * i + k)})
+                stored[k] += 1
+                i += 1
+            except Exception as exc:  # noqa: BLE001 - collected for the assertion
+                errors.append(f"writer: {type(exc).__name__}: {exc}"[:300])
+    threads = [threading.Thread(target=writer, args=(k,)) for k in range(3)]
+    for t in threads:
+        t.start()
+    try:
+        for k in range(6):
+            try:
+                maintain_storage(engine, Settings(database_url=database_url, partition_days=1,
+                                                  partition_ahead_days=10),
+                                 NOW_S + k * 10 * DAY_S)
+            except Exception as exc:  # noqa: BLE001 - collected for the assertion
+                errors.append(f"maintain: {type(exc).__name__}: {exc}"[:300])
+    finally:
+        stop.set()
+        for t in threads:
+            t.join(30)
+    assert errors == []
+    assert sum(stored) > 0
+    with engine.connect() as conn:
+        assert conn.execute(text("SELECT count(*) FROM counts WHERE detector_id = 'W1'")
+                            ).scalar() == sum(stored)
