@@ -55,8 +55,8 @@ def fresh_db(folder: Path, name: str, n_detectors: int) -> str:
     url = f"sqlite:///{folder / name}"
     migrate.upgrade(url)
     engine = make_engine(Settings(database_url=url))
-    for d in range(n_detectors):
-        make_detector(engine, f"B{d:04d}")
+    for d in range(n_detectors):  # stations of four lanes, each its own group
+        make_detector(engine, f"B{d:04d}", group=f"G-B{d // 4:03d}")
     engine.dispose()
     return url
 

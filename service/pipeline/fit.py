@@ -203,6 +203,9 @@ def _fit(det: Any, start_s: np.ndarray, counts: np.ndarray, exclude: np.ndarray,
         min_completeness=settings.fit_min_completeness, exclude=exclude)
 
 
+# Most detectors of one group fitted together in one process (see _group_units).
+MAX_GROUP_UNIT = 32
+
 _worker_engine: Engine | None = None
 _worker_settings: Settings | None = None
 
@@ -275,8 +278,9 @@ def fit_many(settings: Settings, engine: Engine, *, detector_ids: Sequence[str] 
 
 
 def _group_units(engine: Engine, ids: Sequence[str]) -> list[list[str]]:
-    """``ids`` as units fitted together: each group's detectors (in the order given), and
-    each detector of no group alone, in order of first appearance."""
+    """``ids`` as units fitted together: each group's detectors (in the order given, in
+    pieces of at most ``MAX_GROUP_UNIT``), and each detector of no group alone, in order of
+    first appearance."""
     d = models.detectors
     with read_transaction(engine) as conn:
         group_of = dict(conn.execute(select(d.c.detector_id, d.c.group_id)).all())
@@ -285,4 +289,8 @@ def _group_units(engine: Engine, ids: Sequence[str]) -> list[list[str]]:
         group = group_of.get(det)
         key = f"g:{group}" if group is not None else f"d:{det}"
         units.setdefault(key, []).append(det)
-    return list(units.values())
+    # A very large group (a whole corridor under one code) would put one process to work alone:
+    # it is fitted in pieces, each pooled with its own members and the stored baselines of
+    # the rest (as a detector refitted alone is).
+    return [unit[i:i + MAX_GROUP_UNIT] for unit in units.values()
+            for i in range(0, len(unit), MAX_GROUP_UNIT)]

@@ -68,3 +68,19 @@ def test_fit_many_pools_day_level_dispersion_across_the_group(database_url, engi
         for key in ("day_alpha", "interval_alpha"):
             assert getattr(base.profiles[name], key) == pytest.approx(
                 getattr(fitted[SHORT].profiles[name], key), rel=1e-12)
+
+
+def test_a_very_large_group_is_fitted_in_pieces_so_every_process_has_work(engine) -> None:
+    """Detectors of one group are fitted together, but a group bigger than MAX_GROUP_UNIT
+    (a whole corridor under one code) is cut into pieces, so that fit_many's processes share
+    it; detectors of no group are units of one."""
+    from service.tools.networks import make_detector
+
+    size = fitting.MAX_GROUP_UNIT
+    big = [f"C{i:03d}" for i in range(2 * size + 5)]
+    for det in big:
+        make_detector(engine, det, group="G-CORRIDOR")
+    make_detector(engine, "LONE1", group=None)
+    units = fitting._group_units(engine, big + ["LONE1"])
+    assert [len(u) for u in units] == [size, size, 5, 1]
+    assert [d for u in units[:3] for d in u] == big and units[3] == ["LONE1"]
