@@ -49,7 +49,7 @@ def counts_csv(client, keys, detector_id: str, **params) -> list[list[str]]:  # 
 def correct(client, keys, detector_id: str, start_s: int, count: int) -> dict:  # type: ignore[type-arg, no-untyped-def]
     r = client.post("/v1/counts/corrections", headers=auth(keys["admin"]),
                     json={"detector_id": detector_id, "start": format_utc(start_s),
-                          "count": count, "reason": "manual count from the video survey"})
+                          "count": count, "reason": "manual count from the tube survey"})
     assert r.status_code == 201, r.text
     return r.json()
 
