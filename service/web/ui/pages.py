@@ -76,6 +76,13 @@ def framed(session: Session, *, title: str, body: str, active: str = "",
                                csrf=session.csrf), status)
 
 
+def no_such_detector(session: Session, detector_id: str) -> Response:
+    """The 404 page of a detector page whose detector is not registered."""
+    return framed(session, title="No such detector", status=404,
+                  body=f'<p>There is no detector {h(detector_id)}.</p>'
+                       '<p><a href="/ui/network">Back to the network</a></p>')
+
+
 def one_of(name: str, value: str | None, allowed: tuple[str, ...]) -> str | None:
     if value in (None, ""):
         return None
@@ -533,9 +540,7 @@ def detector_view(request: Request, session: Session, detector_id: str, date_: s
     try:
         det = registry.get_detector(engine, detector_id)
     except NotFound:
-        return framed(session, title="No such detector", status=404,
-                      body=f'<p>There is no detector {h(detector_id)}.</p>'
-                           '<p><a href="/ui/network">Back to the network</a></p>')
+        return no_such_detector(session, detector_id)
     zone = ZoneInfo(det["timezone"])
     if date_:
         try:

@@ -22,7 +22,7 @@ from service.errors import NotFound, TallywardError
 from service.pipeline import figures as planning
 from service.store import detectors as registry
 from service.store import overview
-from service.web.ui.pages import BadInput, SessionDep, framed
+from service.web.ui.pages import BadInput, SessionDep, framed, no_such_detector
 from service.web.ui.render import h
 
 router = APIRouter(prefix="/ui", include_in_schema=False)
@@ -143,9 +143,7 @@ def figures_page(
     try:
         det = registry.get_detector(engine, detector_id)
     except NotFound:
-        return framed(session, title="No such detector", status=404,
-                      body=f'<p>There is no detector {h(detector_id)}.</p>'
-                           '<p><a href="/ui/network">Back to the network</a></p>')
+        return no_such_detector(session, detector_id)
     if year:
         if not (year.isascii() and year.isdigit()) or not (
                 planning.FIRST_YEAR <= int(year) <= planning.LAST_YEAR):
