@@ -246,7 +246,8 @@ def fit_many(settings: Settings, engine: Engine, *, detector_ids: Sequence[str] 
     """Fit many detectors, over ``workers`` processes; results in detector order. The
     detectors of one group are fitted together (one process), so that their dispersion is
     pooled across the group (``fit_together``)."""
-    ids = list(detector_ids) if detector_ids else all_detector_ids(engine)
+    # A detector named twice is fitted once (a second fit would store a second baseline).
+    ids = list(dict.fromkeys(detector_ids)) if detector_ids else all_detector_ids(engine)
     as_of = as_of_s if as_of_s is not None else default_as_of(engine)
     units = _group_units(engine, ids)
     results: list[dict[str, Any]] = []

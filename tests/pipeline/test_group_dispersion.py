@@ -5,7 +5,7 @@ history borrows its day-level dispersion from its group (``fit.fit_many`` throug
 from __future__ import annotations
 
 import pytest
-from sqlalchemy import delete
+from sqlalchemy import delete, func, select
 
 from service.config import Settings
 from service.pipeline import fit as fitting
@@ -84,3 +84,19 @@ def test_a_very_large_group_is_fitted_in_pieces_so_every_process_has_work(engine
     units = fitting._group_units(engine, big + ["LONE1"])
     assert [len(u) for u in units] == [size, size, 5, 1]
     assert [d for u in units[:3] for d in u] == big and units[3] == ["LONE1"]
+
+
+@pytest.mark.slow
+def test_a_detector_named_twice_is_fitted_once(database_url, engine) -> None:
+    """``fit_many`` given the same detector twice fits and stores it once: one result, one
+    baseline row."""
+    net = small_network(GROUP[:1], history_days=14, test_days=1, seed=5)
+    load_network(engine, net, until_s=net.test_start_s)
+    settings = Settings(database_url=database_url)
+    results = fitting.fit_many(settings, engine, detector_ids=[GROUP[0], GROUP[0]],
+                               as_of_s=net.test_start_s, workers=1)
+    assert [r["detector_id"] for r in results] == [GROUP[0]]
+    with read_transaction(engine) as conn:
+        stored = conn.execute(select(func.count()).select_from(tables.baselines).where(
+            tables.baselines.c.detector_id == GROUP[0])).scalar_one()
+    assert stored == 1

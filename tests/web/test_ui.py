@@ -240,3 +240,30 @@ def test_service_state_form_refuses_bad_input_with_the_page_and_a_message(
     assert r.status_code == 400 and said in r.text, r.text[-1500:]
     assert 'id="service-error"' in r.text and "Detector D1" in r.text
     assert _service(client, keys["read"])["state"] == "in_service"
+
+
+HOSTILE = '<img src=x onerror="alert(1)">&\'"'
+
+
+def test_text_people_typed_is_shown_as_text_on_every_page(client, engine, keys) -> None:
+    """A detector label, an out-of-service reason, an acknowledgement note and a key name that
+    hold markup are shown escaped on every page that shows them: the markup never reaches the
+    page as markup."""
+    from tests.web.test_alerts import BASE_T, write_alert
+
+    make_detector(engine, "D1", label=HOSTILE)
+    alert_id = write_alert(engine, "D1", BASE_T)
+    hostile_key = security.create_key(engine, name=HOSTILE, role="admin")
+    sign_in(client, hostile_key)
+    page = client.get("/ui/detectors/D1").text
+    client.post("/ui/detectors/D1/service", data={
+        "csrf": csrf_of(page), "state": "out_of_service", "reason": HOSTILE})
+    token = csrf_of(client.get(f"/ui/alerts/{alert_id}").text)
+    client.post(f"/ui/alerts/{alert_id}/acknowledge", data={"csrf": token, "note": HOSTILE})
+    escaped = "&lt;img src=x onerror=&quot;alert(1)&quot;&gt;&amp;&#x27;&quot;"
+    for path in ("/ui/network", "/ui/alerts?status=open", f"/ui/alerts/{alert_id}",
+                 "/ui/detectors/D1", "/ui/detectors/D1/figures"):
+        r = client.get(path)
+        assert r.status_code == 200, (path, r.text[:300])
+        assert "<img" not in r.text and "onerror=\"" not in r.text, path
+        assert escaped in r.text, path
