@@ -38,6 +38,7 @@ import tempfile
 import threading
 import time
 import uuid
+from concurrent.futures import ThreadPoolExecutor
 from datetime import UTC, datetime
 from pathlib import Path
 
@@ -166,46 +167,57 @@ def load_history(engine, network: Network, *, weeks: int,  # type: ignore[no-unt
     print(f"  product ingest: {len(chunk):,} counts, "
           f"{len(chunk) / out['ingest_s']:,.0f} counts/s", file=sys.stderr)
     pg = engine.dialect.name == "postgresql"
+
+    def build(day: int) -> tuple[object, int]:
+        """One day's rows, ready to send: COPY text on PostgreSQL, tuples on SQLite."""
+        ids, det, start, count = day_arrays(network, START_S + day * DAY_S)
+        keep = start >= first
+        rows = zip(det[keep].tolist(), start[keep].tolist(), count[keep].tolist(), strict=True)
+        if pg:
+            return "".join(f"{ids[d]}\t{t}\t{c}\t{t + 60}\n" for d, t, c in rows), int(keep.sum())
+        return [(ids[d], t, c, float(t + 60)) for d, t, c in rows], int(keep.sum())
+
     started = time.perf_counter()
     total = 0
-    for day in range(weeks * 7):
-        lo = START_S + day * DAY_S
-        ids, det, start, count = day_arrays(network, lo)
-        keep = start >= first
-        det, start, count = det[keep], start[keep], count[keep]
-        raw = engine.raw_connection()
-        try:
-            cur = raw.cursor()
-            if pg:
-                # Foreign-key triggers off for the copy (superuser only; the ids are the
-                # registered ones), as a data-only restore with triggers disabled does.
-                try:
-                    cur.execute("SET session_replication_role = replica")
-                except Exception:  # noqa: BLE001 - not a superuser: copy with the checks on
-                    raw.rollback()
-                body = "".join(f"{ids[d]}\t{t}\t{c}\t{t + 60}\n" for d, t, c
-                               in zip(det.tolist(), start.tolist(), count.tolist(), strict=True))
-                with cur.copy("COPY counts (detector_id, start_s, count, received_s) "
-                              "FROM STDIN") as copy:
-                    copy.write(body)
-            else:
-                cur.executemany("INSERT INTO counts (detector_id, start_s, count, received_s) "
-                                "VALUES (?, ?, ?, ?)",
-                                [(ids[d], t, c, float(t + 60)) for d, t, c
-                                 in zip(det.tolist(), start.tolist(), count.tolist(),
-                                        strict=True)])
-            raw.commit()
-        finally:
-            raw.close()
-        total += int(det.size)
-        elapsed = time.perf_counter() - started
-        print(f"  bulk day {day + 1}/{weeks * 7}: {total:,} counts, {total / elapsed:,.0f} "
-              f"counts/s", file=sys.stderr)
+    # The next day is built while the database takes the current one.
+    with ThreadPoolExecutor(max_workers=1) as builder:
+        pending = builder.submit(build, 0)
+        for day in range(weeks * 7):
+            payload, n = pending.result()
+            if day + 1 < weeks * 7:
+                pending = builder.submit(build, day + 1)
+            raw = engine.raw_connection()
+            try:
+                cur = raw.cursor()
+                if pg:
+                    # No statement timeout for a bulk copy; foreign-key triggers off (superuser
+                    # only; the ids are the registered ones), as a data-only restore with
+                    # triggers disabled does.
+                    cur.execute("SET LOCAL statement_timeout = 0")
+                    try:
+                        cur.execute("SET LOCAL session_replication_role = replica")
+                    except Exception:  # noqa: BLE001 - not a superuser: copy with checks on
+                        raw.rollback()
+                        cur.execute("SET LOCAL statement_timeout = 0")
+                    with cur.copy("COPY counts (detector_id, start_s, count, received_s) "
+                                  "FROM STDIN") as copy:
+                        copy.write(payload)
+                else:
+                    cur.executemany("INSERT INTO counts (detector_id, start_s, count, "
+                                    "received_s) VALUES (?, ?, ?, ?)", payload)
+                raw.commit()
+            finally:
+                raw.close()
+            total += n
+            elapsed = time.perf_counter() - started
+            print(f"  bulk day {day + 1}/{weeks * 7}: {total:,} counts, "
+                  f"{total / elapsed:,.0f} counts/s", file=sys.stderr)
     out["bulk_counts"], out["bulk_s"] = total, time.perf_counter() - started
     if pg:
         with engine.connect() as conn:
-            conn.execution_options(isolation_level="AUTOCOMMIT").exec_driver_sql(
-                "ANALYZE counts")
+            conn = conn.execution_options(isolation_level="AUTOCOMMIT")
+            conn.exec_driver_sql("SET statement_timeout = 0")
+            conn.exec_driver_sql("ANALYZE counts")
     return out
 
 
