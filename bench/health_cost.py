@@ -16,7 +16,6 @@ import statistics
 import sys
 import tempfile
 import time
-import uuid
 from pathlib import Path
 
 REPO = Path(__file__).resolve().parent.parent
@@ -25,12 +24,12 @@ sys.path.insert(0, str(REPO))
 import httpx  # noqa: E402
 from fastapi import Response  # noqa: E402
 from sqlalchemy import create_engine, text  # noqa: E402
-from sqlalchemy.engine import make_url  # noqa: E402
 from starlette.testclient import TestClient  # noqa: E402
 
 from service.config import Settings  # noqa: E402
 from service.store import migrations as migrate  # noqa: E402
 from service.store.engine import make_engine  # noqa: E402
+from service.store.scratch import scratch_database  # noqa: E402
 from service.tools.networks import serving  # noqa: E402
 from service.web.app import create_app  # noqa: E402
 from service.web.routes.health import health  # noqa: E402
@@ -133,18 +132,8 @@ def main() -> None:
     parser.add_argument("--pg", help="a PostgreSQL server URL; a throw-away database is made")
     args = parser.parse_args()
     if args.pg:
-        server = make_url(args.pg.replace("postgresql://", "postgresql+psycopg://", 1))
-        name = f"tallyward_health_{uuid.uuid4().hex[:8]}"
-        admin = create_engine(server, isolation_level="AUTOCOMMIT")
-        with admin.connect() as conn:
-            conn.execute(text(f'CREATE DATABASE "{name}"'))
-        try:
-            measure(server.set(database=name).render_as_string(hide_password=False),
-                    n_counts=args.counts, n_detectors=args.detectors, repeats=args.repeats)
-        finally:
-            with admin.connect() as conn:
-                conn.execute(text(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)'))
-            admin.dispose()
+        with scratch_database(args.pg, "tallyward_health", migrate=False) as url:
+            measure(url, n_counts=args.counts, n_detectors=args.detectors, repeats=args.repeats)
         return
     with tempfile.TemporaryDirectory() as folder:
         measure(f"sqlite:///{Path(folder) / 'health.db'}", n_counts=args.counts,

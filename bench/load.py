@@ -45,7 +45,7 @@ from pathlib import Path
 import httpx
 import numpy as np
 import orjson
-from sqlalchemy import create_engine, text
+from sqlalchemy import text
 from sqlalchemy.engine import make_url
 
 REPO = Path(__file__).resolve().parent.parent
@@ -60,6 +60,7 @@ from service.store import migrations as migrate  # noqa: E402
 from service.store import tables  # noqa: E402
 from service.store.alerts import next_seqs  # noqa: E402
 from service.store.engine import make_engine, write_transaction  # noqa: E402
+from service.store.scratch import scratch_database  # noqa: E402
 from service.timefmt import format_utc  # noqa: E402
 
 DAY_S = 86_400
@@ -504,19 +505,9 @@ def main() -> int:
     with tempfile.TemporaryDirectory(prefix="tallyward-load-") as tmp:
         logdir = Path(tmp)
         if not args.skip_pg:
-            admin_url = make_url(args.pg)
-            name = f"tallyward_load_{uuid.uuid4().hex[:8]}"
-            admin = create_engine(admin_url, isolation_level="AUTOCOMMIT")
-            with admin.connect() as conn:
-                conn.execute(text(f'CREATE DATABASE "{name}"'))
-            url = admin_url.set(database=name).render_as_string(hide_password=False)
-            try:
+            with scratch_database(args.pg, "tallyward_load", migrate=False) as url:
                 results.append(run(url, args, label="PostgreSQL, 2 API processes + 2 workers",
                                    api_workers=2, scorers=2, scoring="worker", logdir=logdir))
-            finally:
-                with admin.connect() as conn:
-                    conn.execute(text(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)'))
-                admin.dispose()
         if not args.skip_sqlite:
             url = f"sqlite:///{logdir / 'load.db'}"
             results.append(run(url, args, label="SQLite, 1 API process scoring inline",

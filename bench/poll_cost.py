@@ -21,7 +21,6 @@ import statistics
 import sys
 import tempfile
 import time
-import uuid
 from collections.abc import Callable
 from pathlib import Path
 from typing import Any
@@ -34,7 +33,6 @@ import httpx  # noqa: E402
 from fastapi import Response  # noqa: E402
 from health_cost import fill  # noqa: E402
 from sqlalchemy import create_engine, text  # noqa: E402
-from sqlalchemy.engine import make_url  # noqa: E402
 
 from service.config import Settings  # noqa: E402
 from service.domain import CAUSES, KINDS  # noqa: E402
@@ -42,6 +40,7 @@ from service.store import alerts as alert_store  # noqa: E402
 from service.store import migrations as migrate  # noqa: E402
 from service.store.engine import make_engine  # noqa: E402
 from service.store.keys import create_key  # noqa: E402
+from service.store.scratch import scratch_database  # noqa: E402
 from service.tools.networks import serving  # noqa: E402
 from service.web.routes.health import health  # noqa: E402
 
@@ -203,17 +202,8 @@ def main() -> None:
     sizes = {"n_alerts": args.alerts, "n_detectors": args.detectors, "n_counts": args.counts,
              "repeats": args.repeats}
     if args.pg:
-        server = make_url(args.pg.replace("postgresql://", "postgresql+psycopg://", 1))
-        name = f"tallyward_poll_{uuid.uuid4().hex[:8]}"
-        admin = create_engine(server, isolation_level="AUTOCOMMIT")
-        with admin.connect() as conn:
-            conn.execute(text(f'CREATE DATABASE "{name}"'))
-        try:
-            measure(server.set(database=name).render_as_string(hide_password=False), **sizes)
-        finally:
-            with admin.connect() as conn:
-                conn.execute(text(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)'))
-            admin.dispose()
+        with scratch_database(args.pg, "tallyward_poll", migrate=False) as url:
+            measure(url, **sizes)
         return
     with tempfile.TemporaryDirectory() as folder:
         measure(f"sqlite:///{Path(folder) / 'poll.db'}", **sizes)

@@ -19,14 +19,12 @@ import statistics
 import sys
 import tempfile
 import time
-import uuid
 from pathlib import Path
 
 REPO = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(REPO))
 
 from sqlalchemy import create_engine, text  # noqa: E402
-from sqlalchemy.engine import make_url  # noqa: E402
 from starlette.testclient import TestClient  # noqa: E402
 
 from service.config import Settings  # noqa: E402
@@ -34,6 +32,7 @@ from service.pipeline import fit as fitting  # noqa: E402
 from service.store import keys as security  # noqa: E402
 from service.store import migrations as migrate  # noqa: E402
 from service.store.engine import make_engine  # noqa: E402
+from service.store.scratch import scratch_database  # noqa: E402
 from service.tools.networks import load_network, small_network  # noqa: E402
 from service.web.app import create_app  # noqa: E402
 
@@ -148,20 +147,8 @@ def main() -> int:
             run(f"sqlite:///{folder}/ui.db", n_detectors=args.detectors, n_alerts=args.alerts,
                 rounds=args.rounds)
         return 0
-    server = make_url(args.pg.replace("postgresql://", "postgresql+psycopg://", 1))
-    name = f"tallyward_bench_ui_{uuid.uuid4().hex[:8]}"
-    admin = create_engine(server, isolation_level="AUTOCOMMIT")
-    with admin.connect() as conn:
-        conn.execute(text(f'CREATE DATABASE "{name}"'))
-    try:
-        run(server.set(database=name).render_as_string(hide_password=False),
-            n_detectors=args.detectors, n_alerts=args.alerts, rounds=args.rounds)
-    finally:
-        with admin.connect() as conn:
-            conn.execute(text("SELECT pg_terminate_backend(pid) FROM pg_stat_activity "
-                              f"WHERE datname = '{name}'"))
-            conn.execute(text(f'DROP DATABASE IF EXISTS "{name}"'))
-        admin.dispose()
+    with scratch_database(args.pg, "tallyward_bench_ui", migrate=False) as url:
+        run(url, n_detectors=args.detectors, n_alerts=args.alerts, rounds=args.rounds)
     return 0
 
 
