@@ -429,8 +429,16 @@ def run(url: str, args: argparse.Namespace, *, label: str, api_workers: int, sco
     maintain_storage(engine, settings, START_S)  # partitions ahead (PostgreSQL)
     n_short = args.short if args.short is not None else args.detectors // 20
     network = Network(args.detectors, n_short)
-    network.register(engine)
-    hist = load_history(engine, network, weeks=args.weeks, ingest_hours=args.ingest_hours)
+    if args.loaded:
+        # A database this script loaded with the same --detectors, --short and --weeks, kept
+        # (for instance after a run was stopped): fit and feed again without reloading.
+        hist = {"ingest_counts": 0, "ingest_s": 0.0, "bulk_counts": 0, "bulk_s": 0.0}
+        with engine.connect() as conn:
+            conn.execute(text("DELETE FROM api_keys WHERE name LIKE 'load-%'"))
+            conn.commit()
+    else:
+        network.register(engine)
+        hist = load_history(engine, network, weeks=args.weeks, ingest_hours=args.ingest_hours)
     as_of = START_S + args.weeks * 7 * DAY_S
     ids = network.long_ids + network.short_ids
     np.random.default_rng(3).shuffle(ids)  # subsets hold both kinds in proportion
@@ -443,6 +451,11 @@ def run(url: str, args: argparse.Namespace, *, label: str, api_workers: int, sco
                api_workers=api_workers, scorers=scorers, scoring=scoring, key=key,
                logdir=logdir)
     n_counts = hist["ingest_counts"] + hist["bulk_counts"] + fed["posted"]
+    if args.loaded:  # the planner's row estimate of every partition (ANALYZE ran at load)
+        with engine.connect() as conn:
+            n_counts = int(conn.execute(text(
+                "SELECT sum(reltuples) FROM pg_class WHERE relname LIKE 'counts_p%' "
+                "AND relkind = 'r'")).scalar() or 0) + fed["posted"]
     size = db_size_bytes(url, engine)
     engine.dispose()
     return {"label": label, "detectors": len(ids), "short": n_short, "history": hist,
@@ -455,12 +468,15 @@ def report(r: dict, args: argparse.Namespace) -> None:
     print(f"\n### {r['label']}: {r['detectors']:,} detectors ({r['short']:,} at 20 s), "
           f"{args.weeks} weeks of history, {args.feed_hours} h fed at {args.speed:g}x")
     h = r["history"]
-    print(f"history load, product ingest (in process, first {args.ingest_hours:g} h): "
-          f"{h['ingest_counts']:,} counts in {h['ingest_s']:.1f} s = "
-          f"{h['ingest_counts'] / h['ingest_s']:,.0f} counts/s")
-    print(f"history load, bulk (COPY / executemany, detector by detector): "
-          f"{h['bulk_counts']:,} counts in {h['bulk_s']:.1f} s = "
-          f"{h['bulk_counts'] / max(h['bulk_s'], 1e-9):,.0f} counts/s")
+    if h["ingest_counts"] or h["bulk_counts"]:
+        print(f"history load, product ingest (in process, first {args.ingest_hours:g} h): "
+              f"{h['ingest_counts']:,} counts in {h['ingest_s']:.1f} s = "
+              f"{h['ingest_counts'] / h['ingest_s']:,.0f} counts/s")
+        print(f"history load, bulk (COPY / executemany, detector by detector): "
+              f"{h['bulk_counts']:,} counts in {h['bulk_s']:.1f} s = "
+              f"{h['bulk_counts'] / max(h['bulk_s'], 1e-9):,.0f} counts/s")
+    else:
+        print("history load: not measured in this run (--loaded: an earlier run's database)")
     for n, secs, fitted in r["fits"]:
         print(f"fit with thresholds, 2 processes: {n:,} detectors in {secs:.1f} s "
               f"({1000 * secs / n:.1f} ms per detector; {fitted:,} fitted)")
@@ -498,6 +514,9 @@ def main() -> int:
                    help="fit at these shares of the network (1,000 / 5,000 / 10,000 at full)")
     p.add_argument("--pg", default="postgresql+psycopg://postgres@127.0.0.1:5432/postgres",
                    help="a PostgreSQL server URL; a throw-away database is made on it")
+    p.add_argument("--loaded", metavar="URL",
+                   help="reuse a PostgreSQL database an earlier run of this script loaded with "
+                   "the same --detectors/--short/--weeks (kept, not dropped): fit and feed only")
     p.add_argument("--skip-pg", action="store_true")
     p.add_argument("--skip-sqlite", action="store_true")
     args = p.parse_args()
@@ -505,9 +524,14 @@ def main() -> int:
     with tempfile.TemporaryDirectory(prefix="tallyward-load-") as tmp:
         logdir = Path(tmp)
         if not args.skip_pg:
-            with scratch_database(args.pg, "tallyward_load", migrate=False) as url:
-                results.append(run(url, args, label="PostgreSQL, 2 API processes + 2 workers",
-                                   api_workers=2, scorers=2, scoring="worker", logdir=logdir))
+            label = "PostgreSQL, 2 API processes + 2 workers"
+            if args.loaded:
+                results.append(run(args.loaded, args, label=label, api_workers=2, scorers=2,
+                                   scoring="worker", logdir=logdir))
+            else:
+                with scratch_database(args.pg, "tallyward_load", migrate=False) as url:
+                    results.append(run(url, args, label=label, api_workers=2, scorers=2,
+                                       scoring="worker", logdir=logdir))
         if not args.skip_sqlite:
             url = f"sqlite:///{logdir / 'load.db'}"
             results.append(run(url, args, label="SQLite, 1 API process scoring inline",
