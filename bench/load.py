@@ -41,6 +41,7 @@ import uuid
 from concurrent.futures import ThreadPoolExecutor
 from datetime import UTC, datetime
 from pathlib import Path
+from zoneinfo import ZoneInfo
 
 import httpx
 import numpy as np
@@ -60,6 +61,7 @@ from service.store import migrations as migrate  # noqa: E402
 from service.store import tables  # noqa: E402
 from service.store.alerts import next_seqs  # noqa: E402
 from service.store.engine import make_engine, write_transaction  # noqa: E402
+from service.store.scoring import vacuum_hot_tables  # noqa: E402
 from service.store.scratch import scratch_database  # noqa: E402
 from service.timefmt import format_utc  # noqa: E402
 
@@ -73,11 +75,23 @@ START_S = int(datetime(2026, 9, 7, 5, 0, tzinfo=UTC).timestamp())
 # ----------------------------------------------------------------------------- the network
 
 
+ZONE = ZoneInfo("America/Chicago")
+
+
+def local_offsets(t: np.ndarray) -> np.ndarray:
+    """UTC offset (seconds) of Central time at each epoch second of ``t`` (DST included)."""
+    hours = t // 3600
+    unique, index = np.unique(hours, return_inverse=True)
+    offsets = np.array([int(datetime.fromtimestamp(int(h) * 3600, ZONE).utcoffset()
+                            .total_seconds()) for h in unique])
+    return offsets[index]
+
+
 def profile(step_s: int, n_days: int, start_s: int) -> np.ndarray:
     """Vehicles per ``step_s`` for a unit detector at each interval of ``n_days`` (two peaks,
-    lighter weekends; Central time, DST ignored: the data is synthetic)."""
+    lighter weekends), on Central local time as the detectors are registered."""
     t = np.arange(start_s, start_s + n_days * DAY_S, step_s)
-    local = t - 5 * 3600
+    local = t + local_offsets(t)
     hour = (local % DAY_S) / 3600.0
     weekday = ((local // DAY_S) + 3) % 7  # 1970-01-01 was a Thursday
     per_hour = 80 + 900 * np.exp(-((hour - 8) ** 2) / 3) + 1000 * np.exp(-((hour - 17) ** 2) / 4)
@@ -318,6 +332,7 @@ def _feed_and_measure(base: str, headers: dict, engine, network: Network, *, fro
 
     def watch() -> None:
         seen: dict[str, int] = {}
+        tidied = 0.0
         with engine.connect() as conn:
             while not stop.is_set():
                 now = time.time()
@@ -334,6 +349,11 @@ def _feed_and_measure(base: str, headers: dict, engine, network: Network, *, fro
                         if prev < end <= through:
                             lags.append(max(0.0, now - at))
                     seen[det] = max(prev, through)
+                if time.time() - tidied > 60:
+                    # What `tallyward maintain` does for these tables every few minutes (this
+                    # server runs with autovacuum off; see vacuum_hot_tables).
+                    vacuum_hot_tables(engine)
+                    tidied = time.time()
                 time.sleep(0.5)
 
     watcher = threading.Thread(target=watch, daemon=True)
@@ -443,11 +463,14 @@ def run(url: str, args: argparse.Namespace, *, label: str, api_workers: int, sco
     ids = network.long_ids + network.short_ids
     np.random.default_rng(3).shuffle(ids)  # subsets hold both kinds in proportion
     fractions = [float(f) for f in args.fit_fractions.split(",")]
-    fits = fit_network(settings, engine, ids, as_of_s=as_of, fractions=fractions)
-    store_alerts(engine, network.long_ids, args.alerts, before_s=as_of)
+    if args.skip_fit:  # --loaded with baselines and alerts stored by an earlier run
+        fits = []
+    else:
+        fits = fit_network(settings, engine, ids, as_of_s=as_of, fractions=fractions)
+        store_alerts(engine, network.long_ids, args.alerts, before_s=as_of)
     key = security.create_key(engine, name=f"load-{uuid.uuid4().hex[:6]}", role="admin")
     # Scoring state starts at as_of: the feed is what gets scored.
-    fed = feed(url, engine, network, from_s=as_of, hours=args.feed_hours, speed=args.speed,
+    fed = feed(url, engine, network, from_s=as_of + int(args.feed_after_hours * 3600), hours=args.feed_hours, speed=args.speed,
                api_workers=api_workers, scorers=scorers, scoring=scoring, key=key,
                logdir=logdir)
     n_counts = hist["ingest_counts"] + hist["bulk_counts"] + fed["posted"]
@@ -517,6 +540,11 @@ def main() -> int:
     p.add_argument("--loaded", metavar="URL",
                    help="reuse a PostgreSQL database an earlier run of this script loaded with "
                    "the same --detectors/--short/--weeks (kept, not dropped): fit and feed only")
+    p.add_argument("--skip-fit", action="store_true",
+                   help="with --loaded: keep the baselines and alerts stored by the earlier run")
+    p.add_argument("--feed-after-hours", type=float, default=0.0,
+                   help="with --loaded: start the feed this many hours after the history ends "
+                   "(where an earlier feed on the same database stopped)")
     p.add_argument("--skip-pg", action="store_true")
     p.add_argument("--skip-sqlite", action="store_true")
     args = p.parse_args()

@@ -14,6 +14,8 @@ few minutes. It:
    removes them in the same transaction: whole partitions dropped on PostgreSQL, a bounded
    delete (``retention_batch_rows`` per transaction, oldest hours first) on SQLite and for
    stray rows in PostgreSQL's default partition.
+4. PostgreSQL: vacuums and analyzes the scoring state and the registry
+   (``service.store.scoring.vacuum_hot_tables``), in case autovacuum is off or behind.
 """
 
 from __future__ import annotations
@@ -29,6 +31,7 @@ from service.config import Settings
 from service.store import partitions as parts
 from service.store import rollup
 from service.store.engine import read_transaction, write_transaction
+from service.store.scoring import vacuum_hot_tables
 
 __all__ = ["MaintenanceReport", "maintain_storage"]
 
@@ -45,6 +48,7 @@ class MaintenanceReport:
     hours_refreshed: int = 0  # detector-hours recomputed from recent intervals
     rows_expired: int = 0  # raw intervals removed by a delete (dropped partitions not counted)
     expired_before_s: int | None = None  # raw intervals before this were expired
+    vacuumed: list[str] = field(default_factory=list)  # PostgreSQL tables vacuumed
 
     def to_dict(self) -> dict[str, Any]:
         return asdict(self)
@@ -71,6 +75,7 @@ def maintain_storage(engine: Engine, settings: Settings, now: float | None = Non
         if partitioned:
             _drop_partitions(engine, cutoff, report)
         _delete_expired(engine, settings, cutoff, report)
+    report.vacuumed = vacuum_hot_tables(engine)
     log.info("storage maintained", extra={"fields": report.to_dict()})
     return report
 
