@@ -14,8 +14,8 @@ few minutes. It:
    removes them in the same transaction: whole partitions dropped on PostgreSQL, a bounded
    delete (``retention_batch_rows`` per transaction, oldest hours first) on SQLite and for
    stray rows in PostgreSQL's default partition.
-4. PostgreSQL: vacuums and analyzes the scoring state and the registry
-   (``service.store.scoring.vacuum_hot_tables``), in case autovacuum is off or behind.
+4. PostgreSQL: vacuums and analyzes the scoring state and the registry, and analyzes the
+   alerts (``service.store.scoring.vacuum_hot_tables``), in case autovacuum is off or behind.
 """
 
 from __future__ import annotations
@@ -48,7 +48,7 @@ class MaintenanceReport:
     hours_refreshed: int = 0  # detector-hours recomputed from recent intervals
     rows_expired: int = 0  # raw intervals removed by a delete (dropped partitions not counted)
     expired_before_s: int | None = None  # raw intervals before this were expired
-    vacuumed: list[str] = field(default_factory=list)  # PostgreSQL tables vacuumed
+    vacuumed: list[str] = field(default_factory=list)  # PostgreSQL tables vacuumed/analyzed
 
     def to_dict(self) -> dict[str, Any]:
         return asdict(self)

@@ -276,14 +276,16 @@ def test_partition_upkeep_beside_ingest_and_reads_fails_nothing_and_loses_nothin
 @pg_only
 def test_maintenance_vacuums_the_scoring_state_and_the_registry(database_url, engine) -> None:
     """PostgreSQL: a maintenance pass vacuums and analyzes detector_state and detectors (the
-    tables every scoring pass rewrites or joins), whether or not autovacuum runs."""
+    tables every scoring pass rewrites or joins) and analyzes alerts, whether or not
+    autovacuum runs."""
     if engine.dialect.name != "postgresql":
         pytest.skip("VACUUM is PostgreSQL's")
     settings = Settings(database_url=database_url)
     report = maintain_storage(engine, settings, NOW_S)
-    assert report.vacuumed == ["detector_state", "detectors"]
+    assert report.vacuumed == ["detector_state", "detectors", "alerts"]
     with engine.connect() as conn:
         done = dict(conn.execute(text(
-            "SELECT relname, last_vacuum IS NOT NULL AND last_analyze IS NOT NULL "
-            "FROM pg_stat_user_tables WHERE relname IN ('detector_state', 'detectors')")).all())
-    assert done == {"detector_state": True, "detectors": True}
+            "SELECT relname, (last_vacuum IS NOT NULL OR relname = 'alerts') "
+            "AND last_analyze IS NOT NULL FROM pg_stat_user_tables "
+            "WHERE relname IN ('detector_state', 'detectors', 'alerts')")).all())
+    assert done == {"detector_state": True, "detectors": True, "alerts": True}
