@@ -503,14 +503,15 @@ def report(r: dict, args: argparse.Namespace) -> None:
     for n, secs, fitted in r["fits"]:
         print(f"fit with thresholds, 2 processes: {n:,} detectors in {secs:.1f} s "
               f"({1000 * secs / n:.1f} ms per detector; {fitted:,} fitted)")
-    offered = fed["posted"] / (fed["slots"] * SLOT_S / args.speed)
-    print(f"ingest: {fed['posted']:,} counts over {fed['feed_wall_s']:.1f} s wall "
-          f"(offered {offered:,.0f} counts/s at {args.speed:g}x; posting busy "
-          f"{fed['busy_s']:.1f} s = {fed['posted'] / max(fed['busy_s'], 1e-9):,.0f} counts/s "
-          f"while posting; {fed['late_slots']} of {fed['slots']} slots late)")
-    print(f"scoring lag (commit -> scored), {len(lags):,} of {fed['expected_lags']:,} "
-          f"detector-slots scored: median {percentile(lags, 50):.1f} s, "
-          f"p99 {percentile(lags, 99):.1f} s")
+    if fed["slots"]:  # --feed-hours 0 measures only the polls and health
+        offered = fed["posted"] / (fed["slots"] * SLOT_S / args.speed)
+        print(f"ingest: {fed['posted']:,} counts over {fed['feed_wall_s']:.1f} s wall "
+              f"(offered {offered:,.0f} counts/s at {args.speed:g}x; posting busy "
+              f"{fed['busy_s']:.1f} s = {fed['posted'] / max(fed['busy_s'], 1e-9):,.0f} counts/s "
+              f"while posting; {fed['late_slots']} of {fed['slots']} slots late)")
+        print(f"scoring lag (commit -> scored), {len(lags):,} of {fed['expected_lags']:,} "
+              f"detector-slots scored: median {percentile(lags, 50):.1f} s, "
+              f"p99 {percentile(lags, 99):.1f} s")
     print(f"alert polls with {fed['alerts_high_seq']:,} alert changes stored: caught-up p99 "
           f"{1000 * percentile(fed['polls'], 99):.1f} ms (median "
           f"{1000 * statistics.median(fed['polls']):.1f}); page of 100 p99 "
