@@ -22,6 +22,7 @@ from typing import Any
 import numpy as np
 import orjson
 from sqlalchemy import Connection, Engine, and_, case, delete, func, literal, or_, select, update
+from sqlalchemy.exc import DBAPIError
 
 from service.config import Settings
 from service.domain import (
@@ -584,10 +585,16 @@ def vacuum_hot_tables(engine: Engine) -> list[str]:
     size; nothing on SQLite."""
     if engine.dialect.name != "postgresql":
         return []
+    done: list[str] = []
     with engine.connect() as conn:
         conn = conn.execution_options(isolation_level="AUTOCOMMIT")
-        for table in HOT_TABLES:
-            conn.exec_driver_sql(f"VACUUM (ANALYZE) {table}")
-        for table in ANALYZED_TABLES:
-            conn.exec_driver_sql(f"ANALYZE {table}")
-    return [*HOT_TABLES, *ANALYZED_TABLES]
+        for table in (*HOT_TABLES, *ANALYZED_TABLES):
+            command = "VACUUM (ANALYZE)" if table in HOT_TABLES else "ANALYZE"
+            try:
+                conn.exec_driver_sql(f"{command} {table}")
+            except DBAPIError as exc:  # a lock or statement timeout: the next pass does it
+                log.warning("table upkeep skipped", extra={"fields": {
+                    "table": table, "error": type(exc.orig).__name__}})
+                continue
+            done.append(table)
+    return done
