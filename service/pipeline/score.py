@@ -18,7 +18,9 @@ decides *what* to score and keeps alerts a pure function of the stored counts an
   and reconciled with stored alerts (``service.pipeline.reconcile``). A change gets a new
   ``seq``.
 - One detector's failure never stops the others: each detector is scored on its own and
-  written inside its own SAVEPOINT. A failure is logged, counted on the detector's
+  written inside its own SAVEPOINT, except that detectors with nothing flagged and no alert
+  within reach (most of a pass) are written together in one; should that batch fail, its
+  detectors are written one by one. A failure is logged, counted on the detector's
   ``detector_state`` row and retried with exponential backoff (``retry_after_s``, in the
   database so every scorer process agrees); ``GET /v1/health`` names detectors that keep
   failing. A failure of a whole pass is retried detector by detector, so a failure that only
@@ -139,31 +141,52 @@ def plan_segments(claim: Claim, info: DetectorInfo, *, latest_present_s: int | N
     Each UTC-day block is scored from ``WARMUP_S`` before it with a fresh state, unless the
     claim simply continues where the last pass stopped inside the same block."""
     step, tz = info.interval_s, info.timezone
-    score_from = align_down(claim.score_from_s + step - 1, step, tz, offsets)
-    cont = claim.scored_through_s if claim.scored_through_s is not None else score_from
-    start = cont
-    if claim.from_s is not None:
-        start = min(cont, max(align_down(claim.from_s, step, tz, offsets), score_from))
+    start = _rescore_start(claim, info, offsets)
     end = align_down(int(clock) - grace_s - step, step, tz, offsets) + step
     if latest_present_s is not None:
         end = max(end, latest_present_s + step)
     if end <= start:
         return []
-    continuing = (claim.scored_through_s is not None and start == claim.scored_through_s
-                  and claim.warm_state is not None)
     pieces: list[Piece] = []
     t = start
     while t < end:
-        block = t - t % BLOCK_S
-        seg_end = min(end, block + BLOCK_S)
-        if t == start and continuing and (claim.scored_through_s - 1) // BLOCK_S * BLOCK_S == block \
-                and claim.scored_through_s % BLOCK_S != 0:
-            pieces.append((t, t, seg_end, claim.warm_state))
-        else:
-            run_from = max(score_from, align_down(block - WARMUP_S, step, tz, offsets))
-            pieces.append((run_from, t, seg_end, None))
+        seg_end = min(end, t - t % BLOCK_S + BLOCK_S)
+        run_from, warm = _piece_start(claim, info, t, first=t == start, offsets=offsets)
+        pieces.append((run_from, t, seg_end, warm))
         t = seg_end
     return pieces
+
+
+def _rescore_start(claim: Claim, info: DetectorInfo, offsets: LocalOffsets) -> int:
+    """The first interval the claim (re)scores."""
+    step, tz = info.interval_s, info.timezone
+    score_from = align_down(claim.score_from_s + step - 1, step, tz, offsets)
+    cont = claim.scored_through_s if claim.scored_through_s is not None else score_from
+    if claim.from_s is None:
+        return cont
+    return min(cont, max(align_down(claim.from_s, step, tz, offsets), score_from))
+
+
+def _piece_start(claim: Claim, info: DetectorInfo, t: int, *, first: bool,
+                 offsets: LocalOffsets) -> tuple[int, Any]:
+    """Where the piece kept from ``t`` starts scoring, and its warm state: the claim's state
+    when it simply continues where the last pass stopped inside the same block, else a fresh
+    state ``WARMUP_S`` before the block."""
+    step, tz = info.interval_s, info.timezone
+    block = t - t % BLOCK_S
+    through = claim.scored_through_s
+    if first and through is not None and t == through and claim.warm_state is not None \
+            and (through - 1) // BLOCK_S * BLOCK_S == block and through % BLOCK_S != 0:
+        return t, claim.warm_state
+    score_from = align_down(claim.score_from_s + step - 1, step, tz, offsets)
+    return max(score_from, align_down(block - WARMUP_S, step, tz, offsets)), None
+
+
+def read_from_s(claim: Claim, info: DetectorInfo, offsets: LocalOffsets) -> int:
+    """The earliest interval any piece of the claim reads, whatever its end: the counts a
+    pass needs for the claim start here."""
+    return _piece_start(claim, info, _rescore_start(claim, info, offsets), first=True,
+                        offsets=offsets)[0]
 
 
 def score_claims(conn: Connection, claims: Sequence[Claim], clock: float, settings: Settings,
@@ -179,26 +202,31 @@ def score_claims(conn: Connection, claims: Sequence[Claim], clock: float, settin
         settings = settings.model_copy(update={"false_alerts_per_week": budget})
     plans: list[tuple[Claim, DetectorInfo, list[Piece]]] = []
     failed: list[tuple[str, Exception]] = []
-    # Only an interval past the clock's end matters to plan_segments: read no further back
-    # (a partitioned table then reads only recent partitions), for the whole pass at once.
-    longest = max((i.interval_s for i in infos.values()), default=0)
-    latest = store.latest_count_starts(
-        conn, list(infos), since_s=int(clock) - settings.missing_grace_s - 2 * longest - 86_400)
+    # One read of counts for the pass, from the earliest interval any claim reads and with
+    # no upper end: the detectors' latest intervals (data past the clock's end extends what
+    # is scored) come from the same rows. An interval before a claim's read start cannot
+    # extend its span (the span starts after it).
+    ready: list[tuple[Claim, DetectorInfo, int]] = []
     for claim in claims:
         info = infos.get(claim.detector_id)
         if info is None:
             continue
         try:
-            plans.append(_plan(claim, info, latest.get(claim.detector_id), clock, settings,
-                               cache))
-        except DBAPIError:
-            raise
+            if isinstance(claim.warm_state, str):
+                claim = dataclasses.replace(claim, warm_state=orjson.loads(claim.warm_state))
+            ready.append((claim, info, read_from_s(claim, info, cache.offsets)))
         except Exception as exc:  # noqa: BLE001 - this detector fails alone; recorded
             failed.append((claim.detector_id, exc))
-    lo = min((p[0] for _, _, pieces in plans for p in pieces), default=None)
-    hi = max((p[2] for _, _, pieces in plans for p in pieces), default=None)
-    data = store.counts_between(conn, [cl.detector_id for cl, _, p in plans if p], lo, hi) \
-        if lo is not None and hi is not None else {}
+    lo = min((r[2] for r in ready), default=None)
+    data = store.counts_between(conn, [r[0].detector_id for r in ready], lo, None) \
+        if lo is not None else {}
+    for claim, info, _ in ready:
+        starts = data.get(claim.detector_id, (np.empty(0, np.int64),))[0]
+        latest = int(starts.max()) if starts.size else None
+        try:
+            plans.append(_plan(claim, info, latest, clock, settings, cache))
+        except Exception as exc:  # noqa: BLE001 - this detector fails alone; recorded
+            failed.append((claim.detector_id, exc))
     out: list[Scored] = []
     for claim, info, pieces in plans:
         try:
@@ -212,10 +240,8 @@ def score_claims(conn: Connection, claims: Sequence[Claim], clock: float, settin
 
 def _plan(claim: Claim, info: DetectorInfo, latest: int | None, clock: float,
           settings: Settings, cache: ScoringCache) -> tuple[Claim, DetectorInfo, list[Piece]]:
-    """The claim with its warm state parsed, and the pieces to score (``latest``: the
-    detector's latest recent interval start)."""
-    if isinstance(claim.warm_state, str):
-        claim = dataclasses.replace(claim, warm_state=orjson.loads(claim.warm_state))
+    """The claim and the pieces to score (``latest``: the detector's latest stored interval
+    start, or None)."""
     if latest is not None and info.reported_interval_s is not None:
         # Short intervals are scored on window sums: the last complete window's start.
         latest = complete_window_end(latest, interval_s=info.reported_interval_s,
@@ -369,6 +395,26 @@ def _write_detectors(conn: Connection, writer: store.AlertWriter, scored: Sequen
     succeeded: dict[str, None] = {}
     touched: Touched = {}
     alerted = _alerted(conn, scored, close_after=close_after)
+    # Most detectors in a pass have nothing flagged and no alert within reach: their state is
+    # written together (one SAVEPOINT), the others one by one. Should the quiet batch fail,
+    # its detectors are written one by one too, so the failure lands on its detector.
+    quiet = [sc for sc in scored if sc.new_thresholds is None and not sc.rows
+             and sc.info.detector_id not in alerted]
+    if len(quiet) > 1:
+        try:
+            with conn.begin_nested():
+                removed = store.store_quiet(conn, [
+                    store.QuietResult(sc.info.detector_id, sc.keep_from_s, sc.end_s,
+                                      sc.warm_state) for sc in quiet], now=now)
+        except Exception:  # noqa: BLE001 - written one by one below, failures pinned there
+            log.warning("writing a batch of quiet detectors failed; writing them one by one",
+                        exc_info=True)
+        else:
+            for sc in quiet:
+                succeeded[sc.info.detector_id] = None
+                if sc.info.detector_id in removed:
+                    _touch(touched, sc, (sc.keep_from_s, sc.end_s))
+            scored = [sc for sc in scored if sc.info.detector_id not in succeeded]
     for sc in scored:
         changes = writer.changes
         try:
@@ -380,15 +426,22 @@ def _write_detectors(conn: Connection, writer: store.AlertWriter, scored: Sequen
             failures.append((sc.info.detector_id, exc, None))
             continue
         succeeded[sc.info.detector_id] = None
-        group = sc.info.group
-        if span is not None and group is not None:
-            old = touched.get(group)
-            if old is None:
-                touched[group] = (span, [sc])
-            else:
-                (lo, hi), members = old
-                touched[group] = ((min(span[0], lo), max(span[1], hi)), [*members, sc])
+        if span is not None:
+            _touch(touched, sc, span)
     return succeeded, touched
+
+
+def _touch(touched: Touched, sc: Scored, span: tuple[int, int]) -> None:
+    """Note that the detector's group needs a refresh over ``span``."""
+    group = sc.info.group
+    if group is None:
+        return
+    old = touched.get(group)
+    if old is None:
+        touched[group] = (span, [sc])
+    else:
+        (lo, hi), members = old
+        touched[group] = ((min(span[0], lo), max(span[1], hi)), [*members, sc])
 
 
 def _refresh_groups(conn: Connection, writer: store.AlertWriter, touched: Touched,

@@ -21,7 +21,19 @@ from typing import Any
 
 import numpy as np
 import orjson
-from sqlalchemy import Connection, Engine, and_, case, delete, func, literal, or_, select, update
+from sqlalchemy import (
+    Connection,
+    Engine,
+    and_,
+    bindparam,
+    case,
+    delete,
+    func,
+    literal,
+    or_,
+    select,
+    update,
+)
 from sqlalchemy.exc import DBAPIError
 
 from service.config import Settings
@@ -137,14 +149,22 @@ def claim(engine: Engine, settings: Settings, *, limit: int = 64) -> tuple[list[
         if not is_sqlite(engine):
             q = q.with_for_update(of=s, skip_locked=True)
         rows = conn.execute(q).all()
+        if not rows:
+            return [], clock
+        # One statement for the batch: the rows are locked (FOR UPDATE, or SQLite's write
+        # lock), so the values computed here are those just read.
+        dirty, held = s.c.dirty_from_s, s.c.claimed_from_s
+        conn.execute(update(s).where(s.c.detector_id.in_([r.detector_id for r in rows]))
+                     .values(lease_until_s=now + settings.worker_lease_s, dirty_from_s=None,
+                             claimed_from_s=case((dirty.is_(None), held),
+                                                 (held.is_(None), dirty),
+                                                 (dirty < held, dirty), else_=held)))
         claims = []
         for r in rows:
             starts = [v for v in (r.dirty_from_s, r.claimed_from_s) if v is not None]
-            from_s = min(starts) if starts else None
-            conn.execute(update(s).where(s.c.detector_id == r.detector_id).values(
-                lease_until_s=now + settings.worker_lease_s, claimed_from_s=from_s, dirty_from_s=None))
-            claims.append(Claim(r.detector_id, r.baseline_id, r.score_from_s, from_s,
-                                r.scored_through_s, r.warm_state))
+            claims.append(Claim(r.detector_id, r.baseline_id, r.score_from_s,
+                                min(starts) if starts else None, r.scored_through_s,
+                                r.warm_state))
     return claims, clock
 
 
@@ -324,21 +344,6 @@ def latest_count_start(conn: Connection, detector_id: str, *, since_s: int | Non
     return conn.execute(q).scalar()
 
 
-def latest_count_starts(conn: Connection, detector_ids: Sequence[str], *, since_s: int
-                        ) -> dict[str, int]:
-    """Each detector's latest stored interval start at or after ``since_s`` (detectors with
-    none are left out): one query for a whole pass instead of one per detector."""
-    c = models.counts
-    out: dict[str, int] = {}
-    for i in range(0, len(detector_ids), 500):
-        chunk = list(detector_ids[i : i + 500])
-        out.update({det: int(t) for det, t in conn.execute(
-            select(c.c.detector_id, func.max(c.c.start_s))
-            .where(c.c.detector_id.in_(chunk), c.c.start_s >= since_s)
-            .group_by(c.c.detector_id))})
-    return out
-
-
 def subjects_with_recent_alerts(conn: Connection, detector_ids: Sequence[str], since_s: int
                                 ) -> set[str]:
     """The detectors (of ``detector_ids``) with an alert that is open or ends at or after
@@ -354,16 +359,19 @@ def subjects_with_recent_alerts(conn: Connection, detector_ids: Sequence[str], s
     return out
 
 
-def counts_between(conn: Connection, detector_ids: Sequence[str], lo: int, hi: int
+def counts_between(conn: Connection, detector_ids: Sequence[str], lo: int, hi: int | None
                    ) -> dict[str, tuple[np.ndarray, np.ndarray]]:
-    """Each detector's (start_s, count) arrays for intervals starting in [lo, hi)."""
+    """Each detector's (start_s, count) arrays, in start order, for intervals starting in
+    [lo, hi) (hi None: no upper end)."""
     c = models.counts
     out: dict[str, list[tuple[int, int]]] = {det: [] for det in detector_ids}
     for i in range(0, len(detector_ids), 200):
         chunk = list(detector_ids[i : i + 200])
-        for det, start, count in conn.execute(
-                select(c.c.detector_id, c.c.start_s, c.c.count)
-                .where(c.c.detector_id.in_(chunk), c.c.start_s >= lo, c.c.start_s < hi)):
+        q = select(c.c.detector_id, c.c.start_s, c.c.count).where(
+            c.c.detector_id.in_(chunk), c.c.start_s >= lo)
+        if hi is not None:
+            q = q.where(c.c.start_s < hi)
+        for det, start, count in conn.execute(q.order_by(c.c.detector_id, c.c.start_s)):
             out[det].append((start, count))
     result = {}
     for det, rows in out.items():
@@ -396,6 +404,52 @@ def store_scored(conn: Connection, *, detector_id: str, keep_from_s: int, end_s:
                       if warm_state is not None else None)
     conn.execute(update(s).where(s.c.detector_id == detector_id).values(**values))
     return live, removed
+
+
+@dataclass(frozen=True)
+class QuietResult:
+    """A detector whose rescored span has no flagged interval (``store_quiet``)."""
+
+    detector_id: str
+    keep_from_s: int
+    end_s: int
+    warm_state: Any
+
+
+def store_quiet(conn: Connection, results: Sequence[QuietResult], *, now: float) -> set[str]:
+    """``store_scored`` for many detectors without evidence rows, in a few statements: their
+    evidence in [keep_from_s, end_s) is removed, their scoring state advanced and their lease
+    released. Returns the detectors that had evidence removed.
+
+    Detectors continuing in step share their span, so the evidence is looked up (and, rarely,
+    deleted) once per distinct span, and the state is written with one executemany."""
+    e, s = models.evidence, models.detector_state
+    live = [r for r in results if r.end_s > r.keep_from_s >= 0]
+    spans: dict[tuple[int, int], list[str]] = {}
+    for r in live:
+        spans.setdefault((r.keep_from_s, r.end_s), []).append(r.detector_id)
+    removed: set[str] = set()
+    for (lo, hi), ids in spans.items():
+        for i in range(0, len(ids), 500):
+            chunk = ids[i : i + 500]
+            where = (e.c.detector_id.in_(chunk), e.c.start_s >= lo, e.c.start_s < hi)
+            had = set(conn.execute(select(e.c.detector_id).where(*where).distinct()).scalars())
+            if had:
+                conn.execute(delete(e).where(*where))
+                removed |= had
+    if live:
+        conn.execute(
+            update(s).where(s.c.detector_id == bindparam("d")).values(
+                lease_until_s=None, claimed_from_s=None, updated_s=now,
+                scored_through_s=bindparam("through"), warm_state=bindparam("warm")),
+            [{"d": r.detector_id, "through": r.end_s,
+              "warm": orjson.dumps(r.warm_state, option=orjson.OPT_SERIALIZE_NUMPY).decode()
+              if r.warm_state is not None else None} for r in live])
+    idle = [r.detector_id for r in results if not r.end_s > r.keep_from_s >= 0]
+    if idle:
+        conn.execute(update(s).where(s.c.detector_id.in_(idle)).values(
+            lease_until_s=None, claimed_from_s=None, updated_s=now))
+    return removed
 
 
 def evidence_rows(conn: Connection, detector_ids: Sequence[str], lo: int, hi: int,

@@ -324,3 +324,58 @@ def test_a_count_stored_as_text_fails_only_its_detector(sqlite_url, network) -> 
     fitted.assert_drained()
     assert visible_alerts(engine) == expected
     engine.dispose()
+
+
+REFUSE_STATE = {
+    "sqlite": ["CREATE TRIGGER refuse_state BEFORE UPDATE OF scored_through_s ON detector_state "
+               f"WHEN NEW.detector_id = '{BROKEN}' "
+               "BEGIN SELECT RAISE(ABORT, 'scoring state refused for this detector'); END"],
+    "postgresql": [
+        "CREATE FUNCTION refuse_state() RETURNS trigger LANGUAGE plpgsql AS $$ BEGIN "
+        f"IF NEW.detector_id = '{BROKEN}' THEN "
+        "RAISE EXCEPTION 'scoring state refused for this detector'; END IF; RETURN NEW; END $$",
+        "CREATE TRIGGER refuse_state BEFORE UPDATE OF scored_through_s ON detector_state "
+        "FOR EACH ROW EXECUTE FUNCTION refuse_state()"],
+}
+ALLOW_STATE = {"sqlite": ["DROP TRIGGER IF EXISTS refuse_state"],
+               "postgresql": ["DROP TRIGGER IF EXISTS refuse_state ON detector_state",
+                              "DROP FUNCTION IF EXISTS refuse_state()"]}
+
+
+def test_a_refused_write_among_quiet_detectors_fails_only_that_detector(
+        database_url, fitted, network, caplog) -> None:
+    """Detectors with nothing flagged are written together. When the database refuses one
+    of them, the batch is written again one detector at a time: the refused detector fails
+    alone (recorded, retried), the others are scored in the same pass."""
+    engine, settings = fitted.engine, fitted.settings
+    start = network.test_start_s
+    rows = [r for r in period_rows(network) if r[1] < start + 6 * HOUR]
+    # Precondition: with nothing refused, these hours flag nothing (the quiet path).
+    fitted.reset()
+    post(engine, rows)
+    score.score_until_idle(engine, settings)
+    fitted.assert_drained()
+    with engine.connect() as conn:
+        assert conn.execute(select(tables.evidence.c.detector_id)).first() is None
+    fitted.reset()
+    dialect = engine.dialect.name
+    run_sql(engine, REFUSE_STATE[dialect])
+    try:
+        post(engine, rows)
+        with caplog.at_level("WARNING", logger="tallyward.scoring"):
+            score.score_until_idle(engine, settings)
+        assert "writing a batch of quiet detectors failed" in caplog.text
+        assert "scoring pass failed" not in caplog.text  # the pass itself went through
+        broken = state(engine, BROKEN)
+        assert broken.failures == 1 and "scoring state refused" in broken.last_error
+        assert broken.scored_through_s is None and broken.claimed_from_s is not None
+        for det in GROUP:
+            if det != BROKEN:
+                ok = state(engine, det)
+                assert ok.failures == 0 and ok.scored_through_s >= start + 6 * HOUR - HOUR
+    finally:
+        run_sql(engine, ALLOW_STATE[dialect])
+    let_retry_time_pass(engine, BROKEN)
+    score.score_until_idle(engine, settings)
+    fitted.assert_drained()
+    assert state(engine, BROKEN).failures == 0
