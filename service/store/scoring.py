@@ -333,17 +333,6 @@ def load_infos(conn: Connection, ids: Iterable[str] | None = None) -> dict[str, 
     return out
 
 
-def latest_count_start(conn: Connection, detector_id: str, *, since_s: int | None = None
-                       ) -> int | None:
-    """Start of the detector's latest stored interval (at or after ``since_s`` when given, so
-    that a partitioned table reads only recent partitions), if any."""
-    c = models.counts
-    q = select(func.max(c.c.start_s)).where(c.c.detector_id == detector_id)
-    if since_s is not None:
-        q = q.where(c.c.start_s >= since_s)
-    return conn.execute(q).scalar()
-
-
 def subjects_with_recent_alerts(conn: Connection, detector_ids: Sequence[str], since_s: int
                                 ) -> set[str]:
     """The detectors (of ``detector_ids``) with an alert that is open or ends at or after
