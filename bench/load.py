@@ -316,6 +316,14 @@ def feed(url: str, engine, network: Network, *, from_s: int, hours: float, speed
                 p.wait(20)
             except subprocess.TimeoutExpired:
                 p.kill()
+        # The processes' warnings and errors (the logs go with the temporary folder).
+        for log in sorted(logdir.glob("*.log")):
+            lines = [ln for ln in log.read_text(errors="replace").splitlines()
+                     if '"level":"warning"' in ln or '"level":"error"' in ln
+                     or "Traceback" in ln]
+            if lines:
+                print(f"  {log.name}: {len(lines)} warning/error lines, first: "
+                      f"{lines[0][:400]}", file=sys.stderr)
 
 
 def _feed_and_measure(base: str, headers: dict, engine, network: Network, *, from_s: int,  # type: ignore[no-untyped-def]
@@ -345,10 +353,15 @@ def _feed_and_measure(base: str, headers: dict, engine, network: Network, *, fro
                     if through is None:
                         continue
                     prev = seen.get(det, from_s)
-                    for end, at in list(committed.items()):
-                        if prev < end <= through:
-                            lags.append(max(0.0, now - at))
-                    seen[det] = max(prev, through)
+                    # Only slots already committed count: a detector scored past a slot
+                    # before the slot's last batch returned is counted when that batch has
+                    # returned, with the lag the watcher sees then (at most its 0.5 s tick).
+                    covered = [(end, at) for end, at in list(committed.items())
+                               if prev < end <= through]
+                    for _end, at in covered:
+                        lags.append(max(0.0, now - at))
+                    if covered:
+                        seen[det] = max(end for end, _ in covered)
                 if time.time() - tidied > 60:
                     # What `tallyward maintain` does for these tables every few minutes (this
                     # server runs with autovacuum off; see vacuum_hot_tables).
@@ -401,6 +414,16 @@ def _feed_and_measure(base: str, headers: dict, engine, network: Network, *, fro
         time.sleep(1)
     stop.set()
     watcher.join(5)
+    # What was left unscored, and why: the detectors short of the last slot, by interval, and
+    # those whose scoring failed (their errors are in the workers' logs, printed below).
+    last_end = from_s + slots * SLOT_S
+    with engine.connect() as conn:
+        behind = dict(conn.execute(text(
+            "SELECT d.interval_s, count(*) FROM detector_state s JOIN detectors d "
+            "USING (detector_id) WHERE s.scored_through_s IS NULL OR s.scored_through_s < :end "
+            "GROUP BY d.interval_s"), {"end": last_end}).all())
+        failing = int(conn.execute(text(
+            "SELECT count(*) FROM detector_state WHERE failures > 0")).scalar_one())
 
     polls, pages, health = [], [], []
     client = clients[0]
@@ -424,7 +447,8 @@ def _feed_and_measure(base: str, headers: dict, engine, network: Network, *, fro
         c.close()
     return {"posted": posted, "feed_wall_s": feed_wall, "busy_s": busy, "late_slots": late_slots,
             "slots": slots, "lags": lags, "expected_lags": expected, "polls": polls,
-            "pages": pages, "health": health, "alerts_high_seq": high}
+            "pages": pages, "health": health, "alerts_high_seq": high,
+            "behind": behind, "failing": failing}
 
 
 def db_size_bytes(url: str, engine) -> int:  # type: ignore[no-untyped-def]
@@ -512,6 +536,9 @@ def report(r: dict, args: argparse.Namespace) -> None:
         print(f"scoring lag (commit -> scored), {len(lags):,} of {fed['expected_lags']:,} "
               f"detector-slots scored: median {percentile(lags, 50):.1f} s, "
               f"p99 {percentile(lags, 99):.1f} s")
+        behind = ", ".join(f"{n:,} at {step} s" for step, n in sorted(fed["behind"].items()))
+        print(f"after the feed: detectors short of the last slot: {behind or 'none'}; "
+              f"detectors failing: {fed['failing']:,}")
     print(f"alert polls with {fed['alerts_high_seq']:,} alert changes stored: caught-up p99 "
           f"{1000 * percentile(fed['polls'], 99):.1f} ms (median "
           f"{1000 * statistics.median(fed['polls']):.1f}); page of 100 p99 "
