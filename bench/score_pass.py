@@ -58,11 +58,9 @@ class PhaseTimer:
 
     def __init__(self) -> None:
         self.t = {"claim": 0.0, "read": 0.0, "compute": 0.0, "write": 0.0}
-        self._orig = {}
 
     def wrap(self, module, name: str, phase: str) -> None:  # type: ignore[no-untyped-def]
         orig = getattr(module, name)
-        self._orig[(module, name)] = orig
 
         def timed(*a, **k):  # type: ignore[no-untyped-def]
             t0 = time.perf_counter()
