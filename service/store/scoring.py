@@ -372,6 +372,18 @@ def counts_between(conn: Connection, detector_ids: Sequence[str], lo: int, hi: i
 # ----------------------------------------------------------------------------- evidence, state
 
 
+def _is_live(keep_from_s: int, end_s: int) -> bool:
+    """Whether a scored result holds new intervals (else its lease is only released)."""
+    return end_s > keep_from_s >= 0
+
+
+def _warm_json(warm_state: Any) -> str | None:
+    """The scorer's warm state as stored in ``detector_state.warm_state``."""
+    if warm_state is None:
+        return None
+    return orjson.dumps(warm_state, option=orjson.OPT_SERIALIZE_NUMPY).decode()
+
+
 def store_scored(conn: Connection, *, detector_id: str, keep_from_s: int, end_s: int,
                  rows: Sequence[dict[str, Any]], warm_state: Any, now: float) -> tuple[bool, int]:
     """Replace the detector's evidence in [keep_from_s, end_s) by ``rows``, advance its scoring
@@ -379,7 +391,7 @@ def store_scored(conn: Connection, *, detector_id: str, keep_from_s: int, end_s:
     released only) when nothing new was scored."""
     e, s = models.evidence, models.detector_state
     values: dict[str, Any] = {"lease_until_s": None, "claimed_from_s": None, "updated_s": now}
-    live = end_s > keep_from_s >= 0
+    live = _is_live(keep_from_s, end_s)
     removed = 0
     if live:
         removed = conn.execute(delete(e).where(e.c.detector_id == detector_id,
@@ -387,10 +399,7 @@ def store_scored(conn: Connection, *, detector_id: str, keep_from_s: int, end_s:
                                                e.c.start_s < end_s)).rowcount or 0
         if rows:
             conn.execute(e.insert(), list(rows))
-        values.update(scored_through_s=end_s,
-                      warm_state=orjson.dumps(warm_state,
-                                              option=orjson.OPT_SERIALIZE_NUMPY).decode()
-                      if warm_state is not None else None)
+        values.update(scored_through_s=end_s, warm_state=_warm_json(warm_state))
     conn.execute(update(s).where(s.c.detector_id == detector_id).values(**values))
     return live, removed
 
@@ -413,7 +422,7 @@ def store_quiet(conn: Connection, results: Sequence[QuietResult], *, now: float)
     Detectors continuing in step share their span, so the evidence is looked up (and, rarely,
     deleted) once per distinct span, and the state is written with one executemany."""
     e, s = models.evidence, models.detector_state
-    live = [r for r in results if r.end_s > r.keep_from_s >= 0]
+    live = [r for r in results if _is_live(r.keep_from_s, r.end_s)]
     spans: dict[tuple[int, int], list[str]] = {}
     for r in live:
         spans.setdefault((r.keep_from_s, r.end_s), []).append(r.detector_id)
@@ -431,10 +440,9 @@ def store_quiet(conn: Connection, results: Sequence[QuietResult], *, now: float)
             update(s).where(s.c.detector_id == bindparam("d")).values(
                 lease_until_s=None, claimed_from_s=None, updated_s=now,
                 scored_through_s=bindparam("through"), warm_state=bindparam("warm")),
-            [{"d": r.detector_id, "through": r.end_s,
-              "warm": orjson.dumps(r.warm_state, option=orjson.OPT_SERIALIZE_NUMPY).decode()
-              if r.warm_state is not None else None} for r in live])
-    idle = [r.detector_id for r in results if not r.end_s > r.keep_from_s >= 0]
+            [{"d": r.detector_id, "through": r.end_s, "warm": _warm_json(r.warm_state)}
+             for r in live])
+    idle = [r.detector_id for r in results if not _is_live(r.keep_from_s, r.end_s)]
     if idle:
         conn.execute(update(s).where(s.c.detector_id.in_(idle)).values(
             lease_until_s=None, claimed_from_s=None, updated_s=now))
